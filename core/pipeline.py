@@ -1,0 +1,412 @@
+"""The analysis pipeline: sources -> decoded blocks -> streaming SVD -> exact scoring pass.
+
+This is the one routine behind both the command line and the desktop program's worker thread:
+:func:`analyze` takes folders/files (or an already scanned :class:`SourceSet`), reports progress,
+checks a cancel flag between blocks, hands out streaming snapshots, and returns an
+:class:`AnalysisResult` whose decomposition is usable even when the run was cancelled.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as _dt
+import time
+from dataclasses import dataclass
+from importlib import metadata as _metadata
+from typing import Callable, Sequence
+
+import numpy as np
+
+from ._checks import check_choice, check_int
+from .decomposition import Decomposition
+from .errors import AnalysisCancelled, ModescopeError, SourceError
+from .isvd import StreamingSVD
+from .reader import analysis_shape, iter_blocks, load_image
+from .scoring import ProjectionAccumulator, project_block, rayleigh_ritz
+from .sources import Problem, SourceSet, scan_sources
+
+__all__ = ["AnalysisOptions", "Progress", "AnalysisResult", "scan", "analyze",
+           "load_analysis_image", "project_images", "version"]
+
+
+def version() -> str:
+    """Return the installed Modescope version ("unknown" when not installed)."""
+    try:
+        return _metadata.version("modescope")
+    except _metadata.PackageNotFoundError:  # pragma: no cover - only when run from a raw tree
+        return "unknown"
+
+
+@dataclass(frozen=True)
+class AnalysisOptions:
+    """Options of one analysis.
+
+    Attributes
+    ----------
+    rank : int
+        Number of basis images reported, k >= 1.
+    color : {"gray", "rgb"}
+    downscale : int
+        Integer area-average factor applied to every image before analysis (1 = none).
+    recursive : bool
+        Look into sub-folders.
+    resize_mismatched : bool
+        Resize images of another size to the reference size instead of skipping them.
+    block_size : int
+        Images per streaming update (64-128 is the measured sweet spot).
+    oversample : int
+        Extra directions kept internally to hold accuracy of the reported ones.
+    refine : bool
+        Run the Rayleigh-Ritz step of the scoring pass (exact singular values for the subspace).
+    workers : int
+        Decoding threads.
+    blas_threads : int
+        Threads for the matrix products (pinned with threadpoolctl so that decoding and BLAS do not
+        fight over the cores).
+    """
+
+    rank: int = 20
+    color: str = "gray"
+    downscale: int = 1
+    recursive: bool = False
+    resize_mismatched: bool = False
+    block_size: int = 64
+    oversample: int = 10
+    refine: bool = True
+    workers: int = 2
+    blas_threads: int = 1
+
+    def __post_init__(self):
+        check_int("rank", self.rank, minimum=1, maximum=10_000)
+        check_choice("color", self.color, ("gray", "rgb"))
+        check_int("downscale", self.downscale, minimum=1, maximum=1024)
+        check_int("block_size", self.block_size, minimum=1, maximum=100_000)
+        check_int("oversample", self.oversample, minimum=0, maximum=10_000)
+        check_int("workers", self.workers, minimum=1, maximum=256)
+        check_int("blas_threads", self.blas_threads, minimum=1, maximum=256)
+        for name in ("recursive", "resize_mismatched", "refine"):
+            if not isinstance(getattr(self, name), bool):
+                raise TypeError(f"{name} must be True or False, got {getattr(self, name)!r}")
+
+    def to_dict(self) -> dict:
+        """Return the options as a JSON-serialisable dict."""
+        return dataclasses.asdict(self)
+
+    @classmethod
+    def from_dict(cls, values: dict) -> "AnalysisOptions":
+        """Build options from a dict (unknown keys are ignored)."""
+        names = {f.name for f in dataclasses.fields(cls)}
+        return cls(**{k: v for k, v in dict(values).items() if k in names})
+
+
+@dataclass(frozen=True)
+class Progress:
+    """Progress of one stage of an analysis.
+
+    Attributes
+    ----------
+    stage : {"scan", "learn", "score"}
+    done, total : int
+        Images done in this stage, and the number the stage will handle.
+    elapsed : float
+        Seconds since the stage began.
+    rate : float
+        Images per second in this stage so far.
+    seconds_left : float or None
+        Estimate for the stage (None until a rate is known).
+    """
+
+    stage: str
+    done: int
+    total: int
+    elapsed: float
+    rate: float
+    seconds_left: float | None
+
+
+@dataclass(frozen=True)
+class AnalysisResult:
+    """Outcome of :func:`analyze`.
+
+    Attributes
+    ----------
+    decomposition : Decomposition or None
+        Exact (``exact=True``) when the run completed; a streaming snapshot when it was cancelled
+        during learning or scoring; None only when cancelled before the first block.
+    source_set : SourceSet
+    problems : tuple of Problem
+        Scan problems followed by decode problems.
+    cancelled : bool
+    """
+
+    decomposition: Decomposition | None
+    source_set: SourceSet
+    problems: tuple
+    cancelled: bool
+
+
+class _Clock:
+    def __init__(self, stage: str, total: int, progress: Callable | None):
+        self.stage, self.total, self.progress = stage, total, progress
+        self.start = time.perf_counter()
+
+    def report(self, done: int) -> None:
+        if self.progress is None:
+            return
+        elapsed = time.perf_counter() - self.start
+        rate = done / elapsed if elapsed > 0 else 0.0
+        left = (self.total - done) / rate if rate > 0 else None
+        self.progress(Progress(self.stage, done, self.total, elapsed, rate, left))
+
+
+def scan(sources, options: AnalysisOptions = AnalysisOptions(), *, progress=None,
+         cancel=None) -> SourceSet:
+    """Scan folders and files with the options' colour, recursion and size policy.
+
+    Raises
+    ------
+    NoUsableImagesError
+        If no usable image is found (the message lists the first problems).
+    """
+    clocks: dict = {}
+
+    def scan_progress(done, total):
+        clock = clocks.setdefault("scan", _Clock("scan", total, progress))
+        clock.total = total
+        clock.report(done)
+    return scan_sources(sources, recursive=options.recursive, color=options.color,
+                        resize_mismatched=options.resize_mismatched,
+                        progress=scan_progress if progress else None, cancel=cancel)
+
+
+def _blas_limit(threads: int):
+    try:
+        from threadpoolctl import threadpool_limits
+    except ImportError:  # pragma: no cover - threadpoolctl is a dependency
+        import contextlib
+        return contextlib.nullcontext()
+    return threadpool_limits(limits=threads, user_api="blas")
+
+
+def _metadata_for(options: AnalysisOptions, source_set: SourceSet, problems, stage: str,
+                  internal: int) -> dict:
+    import scipy
+    return {
+        "format": "modescope-model",
+        "format_version": 1,
+        "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
+        "versions": {"modescope": version(), "numpy": np.__version__, "scipy": scipy.__version__},
+        "options": options.to_dict(),
+        "source_size": list(source_set.reference_size),
+        "color": source_set.color,
+        "downscale": options.downscale,
+        "resize_mismatched": source_set.resize_mismatched,
+        "internal_directions": internal,
+        "stage": stage,
+        "problems": [{"path": p.path, "page": p.page, "reason": p.reason} for p in problems],
+    }
+
+
+def analyze(sources, options: AnalysisOptions | None = None, *,
+            progress: Callable[[Progress], None] | None = None,
+            cancel: Callable[[], bool] | None = None,
+            on_partial: Callable[[Decomposition], None] | None = None,
+            partial_interval: float = 0.0) -> AnalysisResult:
+    """Analyse a collection: stream it through the SVD engine, then score every image exactly.
+
+    Parameters
+    ----------
+    sources : sequence of str or path, or SourceSet
+        Folders and files, or the result of :func:`scan`.
+    options : AnalysisOptions, optional
+    progress : callable, optional
+        Called with a :class:`Progress` after every block of every stage.
+    cancel : callable, optional
+        Returns True to stop; checked between blocks. A cancelled run returns what it had.
+    on_partial : callable, optional
+        Called with a streaming :class:`Decomposition` snapshot after learning blocks (at most
+        every ``partial_interval`` seconds, and always after the first block).
+    partial_interval : float, optional
+        Minimum seconds between two snapshots handed to ``on_partial``.
+
+    Returns
+    -------
+    AnalysisResult
+
+    Raises
+    ------
+    NoUsableImagesError
+        If the sources hold no usable image, or every image failed to decode.
+    SourceError
+        If a file changed or became unreadable between the two passes.
+
+    Examples
+    --------
+    >>> result = analyze(["sample_images"], AnalysisOptions(rank=10))   # doctest: +SKIP
+    >>> result.decomposition.singular_values[:3]                          # doctest: +SKIP
+    """
+    options = AnalysisOptions() if options is None else options
+    if not isinstance(options, AnalysisOptions):
+        raise TypeError(f"options must be AnalysisOptions, got {type(options).__name__}")
+    cancel = cancel or (lambda: False)
+    if isinstance(sources, SourceSet):
+        source_set = sources
+    else:
+        try:
+            source_set = scan(sources, options, progress=progress, cancel=cancel)
+        except AnalysisCancelled:
+            raise
+    shape = analysis_shape(source_set, options.downscale)
+    pixels = int(np.prod(shape))
+    engine = StreamingSVD(pixels, options.rank, options.oversample)
+    problems: list[Problem] = list(source_set.problems)
+    kept: list[int] = []
+    cancelled = False
+    with _blas_limit(options.blas_threads):
+        # ---- learning pass ------------------------------------------------------------------
+        clock = _Clock("learn", source_set.n_images, progress)
+        last_partial = -np.inf
+        attempted = 0
+        for block in iter_blocks(source_set, block_size=options.block_size,
+                                 downscale=options.downscale, workers=options.workers,
+                                 cancel=cancel):
+            problems.extend(block.problems)
+            attempted = block.start + len(block.indices) + len(block.problems)
+            if block.data.shape[1]:
+                engine.update(block.data)
+                kept.extend(int(i) for i in block.indices)
+            clock.report(attempted)
+            if on_partial is not None and engine.n_seen and (
+                    time.perf_counter() - last_partial >= partial_interval):
+                last_partial = time.perf_counter()
+                on_partial(_snapshot(engine, source_set, kept, shape, options, problems,
+                                     "streaming"))
+            if cancel():
+                break
+        if cancel() or attempted < source_set.n_images:
+            cancelled = True
+        if engine.n_seen == 0:
+            if cancelled:
+                return AnalysisResult(None, source_set, tuple(problems), True)
+            from .errors import NoUsableImagesError
+            first = "; ".join(str(p) for p in problems[:5])
+            raise NoUsableImagesError(
+                f"none of the {source_set.n_images} images could be decoded: {first}")
+        if cancelled:
+            return AnalysisResult(
+                _snapshot(engine, source_set, kept, shape, options, problems, "cancelled"),
+                source_set, tuple(problems), True)
+        # ---- exact scoring pass -------------------------------------------------------------
+        used = dataclasses.replace(source_set, images=tuple(source_set.images[i] for i in kept),
+                                   problems=())
+        acc = ProjectionAccumulator(engine.basis, engine.mean, len(kept))
+        clock = _Clock("score", len(kept), progress)
+        for block in iter_blocks(used, block_size=max(options.block_size, 128),
+                                 downscale=options.downscale, workers=options.workers,
+                                 cancel=cancel):
+            if block.problems:
+                bad = block.problems[0]
+                raise SourceError(f"{bad.path}: changed or became unreadable during the "
+                                  f"analysis ({bad.reason})")
+            acc.add(block.data)
+            clock.report(acc.done)
+            if cancel():
+                break
+        if acc.done < len(kept):
+            return AnalysisResult(
+                _snapshot(engine, source_set, kept, shape, options, problems, "cancelled"),
+                source_set, tuple(problems), True)
+        ritz = rayleigh_ritz(engine.basis, acc.weights, acc.residual, options.rank,
+                             refine=options.refine)
+        total_energy = float(np.sum(acc.energy))
+        meta = _metadata_for(options, source_set, problems, "exact", engine.internal)
+        decomposition = Decomposition(
+            mean=engine.mean.astype(np.float32), basis=ritz.basis,
+            singular_values=ritz.singular_values, weights=ritz.weights,
+            total_energy=total_energy, image_shape=shape,
+            paths=tuple(source_set.images[i].path for i in kept),
+            pages=np.array([source_set.images[i].page for i in kept], dtype=np.int32),
+            residual=ritz.residual, exact=True, metadata=meta)
+    return AnalysisResult(decomposition, source_set, tuple(problems), False)
+
+
+def _snapshot(engine, source_set, kept, shape, options, problems, stage) -> Decomposition:
+    meta = _metadata_for(options, source_set, problems, stage, engine.internal)
+    return engine.snapshot(
+        shape, paths=tuple(source_set.images[i].path for i in kept),
+        pages=np.array([source_set.images[i].page for i in kept], dtype=np.int32),
+        metadata=meta)
+
+
+def load_analysis_image(decomposition: Decomposition, index: int) -> np.ndarray:
+    """Read image ``index`` of an analysis again from its source file, at analysis resolution.
+
+    Parameters
+    ----------
+    decomposition : Decomposition
+        Needs ``paths`` and the ``source_size``/``color``/``downscale`` entries of its metadata.
+    index : int
+
+    Returns
+    -------
+    ndarray, shape (rows, cols, channels), float32 in [0, 1]
+
+    Raises
+    ------
+    SourceError
+        If the file is missing, unreadable, or no longer matches the analysis (size, pages).
+    """
+    index = check_int("index", index, minimum=0, maximum=decomposition.n_images - 1)
+    if not decomposition.paths:
+        raise SourceError("this analysis does not record its source files")
+    path = decomposition.paths[index]
+    page = int(decomposition.pages[index])
+    meta = decomposition.metadata
+    color = meta.get("color", "gray" if decomposition.image_shape[2] == 1 else "rgb")
+    downscale = int(meta.get("downscale", 1))
+    resize = bool(meta.get("resize_mismatched", False))
+    import os
+    if not os.path.exists(path):
+        raise SourceError(f"{path}: the source file is missing (moved or deleted since the "
+                          f"analysis)")
+    try:
+        found = scan_sources([path], color=color, resize_mismatched=True)
+    except ModescopeError as exc:
+        raise SourceError(f"{path}: cannot be read again: {exc}") from None
+    refs = [r for r in found.images if r.page == page]
+    if not refs:
+        raise SourceError(f"{path}: page {page} is no longer in the file")
+    ref = refs[0]
+    reference = tuple(meta.get("source_size", ref.size))
+    if tuple(ref.size) != reference and not resize:
+        raise SourceError(f"{path}: size is now {ref.size[0]}x{ref.size[1]}, the analysis used "
+                          f"{reference[0]}x{reference[1]}")
+    ss = dataclasses.replace(found, images=(ref,), reference_size=reference,
+                             resize_mismatched=resize)
+    img = load_image(ref, ss, downscale)
+    if img.shape != tuple(decomposition.image_shape):
+        raise SourceError(f"{path}: decodes to shape {img.shape}, the analysis used "
+                          f"{tuple(decomposition.image_shape)}")
+    return img
+
+
+def project_images(decomposition: Decomposition, data: np.ndarray):
+    """Project new image columns onto an existing analysis.
+
+    Parameters
+    ----------
+    decomposition : Decomposition
+    data : ndarray, shape (pixels, m)
+        New images at analysis resolution, raveled as columns.
+
+    Returns
+    -------
+    weights : ndarray, shape (k, m)
+    residual : ndarray, shape (m,)
+        Squared norm of each centred image outside the span of the k basis images.
+    """
+    data = np.asarray(data)
+    if data.ndim != 2 or data.shape[0] != decomposition.n_pixels:
+        raise ValueError(f"data must have shape ({decomposition.n_pixels}, m), got {data.shape}")
+    w, res, _ = project_block(decomposition.basis, decomposition.mean, data)
+    return w, res
