@@ -156,7 +156,7 @@ def load_model(path) -> Decomposition:
     if path.is_dir():
         raise ModelFileError(f"{path}: is a folder, not a model file")
     try:
-        with np.load(path, allow_pickle=False) as npz:
+        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as npz:
             names = set(npz.files)
             missing = [n for n in _REQUIRED if n not in names]
             if missing:
@@ -165,6 +165,8 @@ def load_model(path) -> Decomposition:
             for name in names:
                 try:
                     data[name] = npz[name]
+                    if not isinstance(data[name], np.ndarray):
+                        raise _bad(path, f"entry {name!r} is not a numpy array")
                 except ValueError as exc:
                     raise _bad(path, f"entry {name!r} cannot be read without pickle "
                                      f"({exc})") from None

@@ -255,7 +255,9 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
         try:
             source_set = scan(sources, options, progress=progress, cancel=cancel)
         except AnalysisCancelled:
-            raise
+            empty = SourceSet(images=(), reference_size=(0, 0), color=options.color,
+                              resize_mismatched=options.resize_mismatched, problems=())
+            return AnalysisResult(None, empty, (), True)
     shape = analysis_shape(source_set, options.downscale)
     pixels = int(np.prod(shape))
     engine = StreamingSVD(pixels, options.rank, options.oversample)
