@@ -1,0 +1,72 @@
+"""Command line: analyze and info, exit codes and messages."""
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from modescope.core.cli import main
+from modescope.core.model_file import load_model
+
+
+@pytest.fixture()
+def folder(tmp_path):
+    rng = np.random.default_rng(0)
+    base = rng.random((3, 10, 12))
+    f = tmp_path / "frames"
+    f.mkdir()
+    for i in range(30):
+        v = 0.3 + 0.2 * np.tensordot(rng.normal(size=3), base, 1) / 3
+        Image.fromarray(np.clip(v * 255, 0, 255).astype(np.uint8)).save(f / f"frame_{i}.png")
+    Image.fromarray(np.zeros((5, 5), np.uint8)).save(f / "odd_size.png")
+    return f
+
+
+def test_analyze_writes_model_and_reports_problems(folder, tmp_path, capsys):
+    out = tmp_path / "m.npz"
+    code = main(["analyze", str(folder), "-o", str(out), "--rank", "4", "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 0
+    d = load_model(out)
+    assert d.n_images == 30 and d.rank == 4 and d.exact
+    assert "odd_size.png" in err and "1 file(s) skipped" in err
+    assert "analysed 30 images of 10x12 (gray)" in err
+    # with --resize-mismatched the odd one is included
+    assert main(["analyze", str(folder), "-o", str(out), "--rank", "4", "--quiet",
+                 "--resize-mismatched"]) == 0
+    assert load_model(out).n_images == 31
+
+
+def test_progress_is_shown_on_stderr(folder, tmp_path, capsys):
+    assert main(["analyze", str(folder), "-o", str(tmp_path / "p.npz"), "--rank", "2"]) == 0
+    err = capsys.readouterr().err
+    assert "learn: 30/30 images (100%)" in err and "score: 30/30 images (100%)" in err
+
+
+def test_info_lists_energy_per_rank(folder, tmp_path, capsys):
+    out = tmp_path / "m.npz"
+    main(["analyze", str(folder), "-o", str(out), "--rank", "5", "--quiet"])
+    capsys.readouterr()
+    assert main(["info", str(out)]) == 0
+    text = capsys.readouterr().out
+    d = load_model(out)
+    assert "images:       30" in text and "10 rows x 12 cols, gray" in text
+    cum = d.cumulative_energy()
+    for r in range(5):
+        assert f"{100 * cum[r]:9.2f}%" in text
+
+
+def test_exit_codes(tmp_path, capsys):
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    assert main(["analyze", str(empty), "-o", str(tmp_path / "x.npz")]) == 1
+    assert "nothing usable" in capsys.readouterr().err
+    with pytest.raises(SystemExit) as exc:
+        main(["analyze", str(empty)])           # missing -o
+    assert exc.value.code == 2
+    with pytest.raises(SystemExit) as exc:
+        main(["analyze", str(empty), "-o", "x.npz", "--rank", "zero"])
+    assert exc.value.code == 2
+    assert main(["info", str(tmp_path / "missing.npz")]) == 1
+    assert "missing.npz: no such file" in capsys.readouterr().err
+    assert main(["analyze", str(empty), "-o", str(empty)]) == 2
+    assert main([str(tmp_path / "nope")]) == 2
