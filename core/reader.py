@@ -51,11 +51,11 @@ from dataclasses import dataclass
 from typing import Callable, Iterator
 
 import numpy as np
-from PIL import Image, ImageOps, UnidentifiedImageError
+from PIL import Image, ImageOps
 
 from ._checks import check_int
 from .errors import SourceError
-from .sources import ImageRef, Problem, SourceSet
+from .sources import ImageRef, Problem, SourceSet, _short_message
 
 __all__ = ["analysis_shape", "load_image", "Block", "iter_blocks"]
 
@@ -135,16 +135,6 @@ def analysis_shape(source_set: SourceSet, downscale: int = 1) -> tuple[int, int,
                          f"the analysed image would be {out_rows}x{out_cols}; use at most "
                          f"{max(1, min(rows, cols))}")
     return (out_rows, out_cols, source_set.channels)
-
-
-def _short(exc: BaseException, path: str) -> str:
-    if isinstance(exc, UnidentifiedImageError):
-        return "Pillow does not recognise the file format"
-    text = str(exc).strip()
-    text = text.splitlines()[0] if text else type(exc).__name__
-    for variant in (f"'{path}'", f'"{path}"', path):
-        text = text.replace(variant, "the file")
-    return text if len(text) <= 120 else text[:117] + "..."
 
 
 def _native(img: Image.Image) -> tuple[np.ndarray, float]:
@@ -241,7 +231,7 @@ def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray) -> No
     except MemoryError:
         raise
     except Exception as exc:  # noqa: BLE001 - Pillow raises many types on damaged files
-        raise _DecodeFailure(f"cannot be decoded ({_short(exc, ref.path)})") from exc
+        raise _DecodeFailure(f"cannot be decoded ({_short_message(exc, ref.path)})") from exc
 
     size = (int(values.shape[0]), int(values.shape[1]))
     if size != reference:

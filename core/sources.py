@@ -37,7 +37,7 @@ import os
 import re
 from collections import Counter
 from dataclasses import dataclass
-from typing import Callable, Iterable, Sequence
+from typing import Callable, Iterable
 
 from PIL import Image, UnidentifiedImageError
 
@@ -266,14 +266,14 @@ def _short_message(exc: BaseException, path: str) -> str:
     if isinstance(exc, UnidentifiedImageError):
         return "Pillow does not recognise the file format"
     text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-    for variant in (f"'{path}'", f'"{path}"', path, os.path.basename(path)):
+    for variant in (f"'{path}'", f'"{path}"', path):
         text = text.replace(variant, "the file")
     if len(text) > 120:
         text = text[:117] + "..."
     return text
 
 
-def header_orientation(img: Image.Image) -> int:
+def _header_orientation(img: Image.Image) -> int:
     """Return the EXIF orientation (1-8) of an opened image without decoding its pixels.
 
     Parameters
@@ -303,7 +303,7 @@ def header_orientation(img: Image.Image) -> int:
 def _oriented_size(img: Image.Image) -> tuple[int, int]:
     cols, rows = img.size
     # Pillow's TIFF reader already reports the oriented size and rotates while decoding.
-    if img.format != "TIFF" and header_orientation(img) >= 5:
+    if img.format != "TIFF" and _header_orientation(img) >= 5:
         rows, cols = cols, rows
     return (rows, cols)
 
@@ -464,9 +464,9 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
         if len(source_list) > 3:
             where += f" and {len(source_list) - 3} more"
         if total == 0 and not problems:
+            hint = "" if recursive else "; subfolders are searched only with the recursive option"
             message = (f"no usable image in {where}: 0 files looked at (no file with suffix "
-                       f"{', '.join(SUPPORTED_SUFFIXES)}"
-                       f"{'' if recursive else '; subfolders are searched only when recursive'})")
+                       f"{', '.join(SUPPORTED_SUFFIXES)}{hint})")
         else:
             message = (f"no usable image in {where}: {total} file"
                        f"{'' if total == 1 else 's'} looked at"
