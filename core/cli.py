@@ -100,7 +100,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="extra internal directions (default 10)")
     a.add_argument("--no-refine", action="store_true",
                    help="skip the Rayleigh-Ritz step of the scoring pass")
-    a.add_argument("--workers", type=_positive_int, default=2, help="decoding threads (default 2)")
+    a.add_argument("--workers", type=int, default=0,
+                   help="decoding threads (default 0: chosen from the image size)")
     a.add_argument("--quiet", action="store_true", help="no progress display")
     a.set_defaults(func=cmd_analyze)
 

@@ -54,7 +54,10 @@ def _orthonormal_remainder(residual: np.ndarray, norm_ref: float):
     root = np.sqrt(lam)
     j1 = residual @ (vec / root).astype(np.float32)           # pixels x c1
     f1 = (vec * root).T                                        # c1 x m  (residual ~= j1 @ f1)
-    # second pass restores orthonormality lost to rounding
+    # Orthogonality lost by one Gram pass is about eps * lam_max / lam_min; a second pass
+    # (Cholesky-QR2 style) restores it when that is not small.
+    if lam[-1] / lam[0] * np.finfo(np.float32).eps < 1e-6:
+        return j1, f1
     gram2 = (j1.T @ j1).astype(np.float64)
     lam2, vec2 = np.linalg.eigh(gram2)
     keep2 = lam2 > 1e-6
@@ -104,6 +107,7 @@ class StreamingSVD:
         self._map_a = np.zeros((0, 0))
         self._map_b = np.zeros(0)
         self._chunks: list[list[np.ndarray]] = []   # [A, b, W] per chunk since the last flush
+        self._updates = 0
 
     # ---------------------------------------------------------------------------------------
     def update(self, block: np.ndarray) -> None:
@@ -148,12 +152,16 @@ class StreamingSVD:
             self.total_energy = block_energy
         u, s = self.basis, self.singular_values
         r = u.shape[1]
-        # project twice onto the current basis
+        # project onto the current basis; a second projection ("twice is enough") only when
+        # the first left a component along the basis that float32 cannot ignore
         proj = u.T @ z
         rem = z - u @ proj
-        proj2 = u.T @ rem
-        rem -= u @ proj2
-        proj = proj.astype(np.float64) + proj2
+        proj = proj.astype(np.float64)
+        if r:
+            proj2 = u.T @ rem
+            if np.max(np.abs(proj2)) > 1e-6 * max(float(np.max(np.abs(proj))), 1e-30):
+                rem -= u @ proj2
+                proj += proj2
         norm_ref = float(np.sqrt(np.einsum("ij,ij->", z, z, dtype=np.float64))) or 1.0
         j, f = _orthonormal_remainder(rem, norm_ref)
         c = j.shape[1]
@@ -188,7 +196,9 @@ class StreamingSVD:
         self.singular_values = sig[:q_new].copy()
         self.mean = self.mean + (m / n_new) * (block_mean - self.mean)
         self.n_seen = n_new
-        self._reorthonormalise_if_needed()
+        self._updates += 1
+        if self._updates % 8 == 0:
+            self._reorthonormalise_if_needed()
 
     def _compose(self, a_blk: np.ndarray, b_blk: np.ndarray) -> None:
         if self._flushed.shape[1] > 0:
@@ -244,6 +254,7 @@ class StreamingSVD:
         """
         if self.n_seen == 0:
             raise ValueError("no images have been added yet")
+        self._reorthonormalise_if_needed()
         k = min(self.rank, self.basis.shape[1])
         weights = self.internal_weights()[:k]
         basis, weights = fix_signs(self.basis[:, :k], weights)
