@@ -162,6 +162,14 @@ class _Clock:
         self.progress(Progress(self.stage, done, self.total, elapsed, rate, left))
 
 
+def decode_workers(source_set: SourceSet, options: AnalysisOptions) -> int:
+    """Return the number of decoding threads an analysis uses (see ``AnalysisOptions.workers``)."""
+    if options.workers:
+        return options.workers
+    rows, cols = source_set.reference_size
+    return 1 if rows * cols <= 160 * 160 else 2
+
+
 def scan(sources, options: AnalysisOptions = AnalysisOptions(), *, progress=None,
          cancel=None) -> SourceSet:
     """Scan folders and files with the options' colour, recursion and size policy.
@@ -263,8 +271,7 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
             return AnalysisResult(None, empty, (), True)
     shape = analysis_shape(source_set, options.downscale)
     pixels = int(np.prod(shape))
-    rows, cols = source_set.reference_size
-    workers = options.workers or (1 if rows * cols <= 160 * 160 else 2)
+    workers = decode_workers(source_set, options)
     engine = StreamingSVD(pixels, options.rank, options.oversample)
     problems: list[Problem] = list(source_set.problems)
     kept: list[int] = []

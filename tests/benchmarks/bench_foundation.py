@@ -71,13 +71,14 @@ def make_collection(folder: Path, n: int, size, color: str, fmt: str) -> Path:
 # ------------------------------------------------------------------------------------------
 CHILD_DECODE = r"""
 import json, resource, sys, time
-from modescope.core.pipeline import AnalysisOptions, scan
+from modescope.core.pipeline import AnalysisOptions, decode_workers, scan
 from modescope.core.reader import iter_blocks
 folder, color = sys.argv[1], sys.argv[2]
 t = time.perf_counter()
-ss = scan([folder], AnalysisOptions(color=color))
+opts = AnalysisOptions(color=color)
+ss = scan([folder], opts)
 n = 0
-for b in iter_blocks(ss, block_size=64, workers=2):
+for b in iter_blocks(ss, block_size=64, workers=decode_workers(ss, opts)):
     n += b.data.shape[1]
 print(json.dumps({"seconds": time.perf_counter() - t, "images": n,
                   "peak_mb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024}))
@@ -163,7 +164,7 @@ def accuracy(c, total, s_ref, basis_rows, s_method):
 def bench_set(name, folder, color, n, quick, batches):
     print(f"\n== {name}: {n} images ==", flush=True)
     dec = run_child(CHILD_DECODE, folder, color)
-    print(f"decode only (Pillow, 2 threads):  {dec['seconds']:7.2f} s  "
+    print(f"decode only (scan + Pillow):      {dec['seconds']:7.2f} s  "
           f"({dec['images'] / dec['seconds']:,.0f} images/s), peak {dec['peak_mb']:,.0f} MB",
           flush=True)
     with tempfile.TemporaryDirectory() as tmp:
