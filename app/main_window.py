@@ -741,7 +741,12 @@ class MainWindow(QMainWindow):
         self._memory_timer.stop()
         ok_run = self.runner.shutdown(timeout_ms)
         ok_scan = self.ingest.shutdown(timeout_ms)
-        return ok_run and ok_scan
+        ok_views = True
+        for view in self.views.values():
+            stop = getattr(view, "shutdown", None)
+            if callable(stop):
+                ok_views = (stop() is not False) and ok_views
+        return ok_run and ok_scan and ok_views
 
     def closeEvent(self, event: QCloseEvent) -> None:  # noqa: N802 - Qt name
         self._closing = True

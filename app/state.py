@@ -15,6 +15,19 @@ from PySide6.QtCore import QObject, Signal
 from modescope.core.decomposition import Decomposition
 
 
+def initial_rank(decomposition: Decomposition) -> int:
+    """Return the rank a fresh view starts at: the smallest rank capturing 95% of the energy
+    (a common-practice choice with no source), at least 1 and at most k."""
+    from modescope.core.rank import energy_rank
+    k = decomposition.rank
+    if k == 0:
+        return 0
+    try:
+        return max(1, min(k, energy_rank(decomposition, 0.95)))
+    except ValueError:
+        return k
+
+
 class AppState(QObject):
     """Shared state of the workbench.
 
@@ -33,6 +46,11 @@ class AppState(QObject):
         The pair of modes (0-based) shown in the weights plane.
     focusModeChanged(int)
         The mode picked in the basis gallery (0-based; -1 for the mean image).
+    marksChanged(object)
+        A tuple of image indices whose review mark changed (the decomposition's ``marks`` array
+        was replaced; ``decompositionChanged`` is not emitted for this).
+    levelChanged(float)
+        The confidence level of the outlier control limits (default 0.99).
     """
 
     decompositionChanged = Signal(object)
@@ -41,6 +59,8 @@ class AppState(QObject):
     rankChanged = Signal(int)
     modesChanged = Signal(int, int)
     focusModeChanged = Signal(int)
+    marksChanged = Signal(object)
+    levelChanged = Signal(float)
 
     def __init__(self, parent: QObject | None = None):
         super().__init__(parent)
@@ -50,6 +70,7 @@ class AppState(QObject):
         self._rank = 0
         self._modes = (0, 1)
         self._focus_mode = 0
+        self._level = 0.99
 
     # ----- getters ---------------------------------------------------------------------------
     @property
@@ -76,6 +97,10 @@ class AppState(QObject):
     def focus_mode(self) -> int:
         return self._focus_mode
 
+    @property
+    def level(self) -> float:
+        return self._level
+
     # ----- setters ---------------------------------------------------------------------------
     def set_decomposition(self, decomposition: Decomposition | None) -> None:
         """Install a new analysis (partial or final) and clamp the other values to it."""
@@ -89,8 +114,10 @@ class AppState(QObject):
         # clamp dependent values (each setter emits only on change)
         if k == 0:
             self._set_rank_raw(0)
-        elif self._rank == 0 or self._rank > k:
-            self._set_rank_raw(min(k, max(1, self._rank or k)))
+        elif self._rank == 0:
+            self._set_rank_raw(initial_rank(decomposition))
+        elif self._rank > k:
+            self._set_rank_raw(k)
         a, b = self._modes
         if k >= 2 and (a >= k or b >= k):
             self.set_modes(0, 1)
@@ -139,6 +166,34 @@ class AppState(QObject):
         if new != self._modes:
             self._modes = new
             self.modesChanged.emit(*new)
+
+    def set_marks(self, indices: Iterable[int], mark: int) -> None:
+        """Set the review mark (0 not reviewed, 1 keep, 2 exclude) of some images."""
+        d = self._decomposition
+        if d is None:
+            raise ValueError("there is no analysis to mark images in")
+        mark = int(mark)
+        if mark not in (0, 1, 2):
+            raise ValueError(f"mark must be 0 (not reviewed), 1 (keep) or 2 (exclude), got {mark}")
+        idx = sorted({int(i) for i in indices})
+        if any(i < 0 or i >= d.n_images for i in idx):
+            raise ValueError(f"image indices must be in 0..{d.n_images - 1}")
+        marks = d.marks.copy()
+        changed = tuple(i for i in idx if marks[i] != mark)
+        if not changed:
+            return
+        marks[list(changed)] = mark
+        self._decomposition = d.replace(marks=marks)
+        self.marksChanged.emit(changed)
+
+    def set_level(self, level: float) -> None:
+        """Set the confidence level of the outlier limits, 0.5 <= level < 1."""
+        level = float(level)
+        if not 0.5 <= level < 1.0:
+            raise ValueError(f"level must be in [0.5, 1), got {level}")
+        if level != self._level:
+            self._level = level
+            self.levelChanged.emit(level)
 
     def set_focus_mode(self, mode: int) -> None:
         """Pick mode ``mode`` (0-based, -1 for the mean image)."""

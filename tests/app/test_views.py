@@ -571,8 +571,9 @@ def test_views_follow_rank_changes_and_clear(qtbot, state, gray):
     assert len(sp.singular_curve.yData) == 5
     assert w.combo_a.count() == 5
     np.testing.assert_allclose(w.bars.opts["height"], gray.weights[:5, state.selected])
-    # the residual at rank 5 of the truncated copy equals the original's at rank 5
-    np.testing.assert_allclose(lv.model.residual(3), gray.residual_at_rank(5)[3])
+    # the residual at rank r <= 5 of the truncated copy equals the original's at rank r
+    assert 1 <= state.rank <= 5
+    np.testing.assert_allclose(lv.model.residual(3), gray.residual_at_rank(state.rank)[3])
     state.set_decomposition(None)
     for v in views:
         _flush(qtbot, v)
