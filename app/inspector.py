@@ -2,7 +2,7 @@
 
 The image shown is the state's selected image, re-read from its source file with the analysis
 options (``pipeline.load_analysis_image``) and cached while it stays selected. The reconstruction
-comes from ``Decomposition.reconstruct(index, rank)`` (mean plus the first r basis images times the
+comes from ``core.reconstruct.LiveReconstruction`` (mean plus the first r basis images times the
 image's weights: no SVD is computed here). The residual is ``image - reconstruction``, shown with
 the diverging colour map and a legend of its value range; colour images show the mean over their
 channels. When the source file is missing or changed, a note says so and the reconstruction is
@@ -30,6 +30,7 @@ from PySide6.QtWidgets import (
 )
 
 from modescope.core.errors import ModescopeError
+from modescope.core.reconstruct import LiveReconstruction
 
 from .imaging import array_to_qimage, colorbar_qimage, signed_to_qimage, symmetric_limit
 from .state import AppState
@@ -279,6 +280,7 @@ class Inspector(QWidget):
         self._state = state
         self._load_image = load_image or _default_loader
         self._cache_key: tuple | None = None
+        self._live = None           # LiveReconstruction of the selected image
         self._cache_value: np.ndarray | None = None
         self._cache_error = ""
         self._syncing = False
@@ -444,7 +446,11 @@ class Inspector(QWidget):
         self.title_label.setText(f"Image {index + 1} of {d.n_images}: {name}{status}")
         self.title_label.setToolTip(path)
 
-        recon = d.to_image(d.reconstruct(index, rank))
+        live = self._live
+        if live is None or live.decomposition is not d or live.index != index:
+            live = self._live = LiveReconstruction(d, index)
+        # incremental: a slider step adds or removes only the modes in between
+        recon = live.image_at(rank).copy()
         self.reconstruction_array = recon
         self.reconstruction_pane.set_title(f"Reconstruction, rank {rank}")
         self.reconstruction_pane.set_image(array_to_qimage(recon))
@@ -475,9 +481,12 @@ class Inspector(QWidget):
             f"{100.0 * float(shares[rank - 1]):.1f} % of the collection's variation "
             f"(all {d.rank}: {100.0 * float(shares[-1]):.1f} %).")
         if d.residual is not None:
-            res = d.residual_at_rank(rank)
-            total = d.residual_at_rank(0)
-            share = float(res[index] / total[index]) if total[index] > 0 else 0.0
+            # this image only: residual at k plus the squared weights of modes rank+1..k
+            w2 = d.weights[:, index].astype(np.float64) ** 2
+            res_i = float(d.residual[index] + np.sum(w2[rank:]))
+            total_i = float(d.residual[index] + np.sum(w2))
+            res = {index: res_i}
+            share = res_i / total_i if total_i > 0 else 0.0
             pct = 100.0 * share
             pct_text = f"{pct:.1f}" if pct >= 0.1 or pct == 0 else f"{pct:.2g}"
             self.residual_label.setText(
