@@ -159,6 +159,8 @@ class IngestPane(QWidget):
         self._pool = QThreadPool(self)
         self._pool.setMaxThreadCount(1)
         self.source_set = None
+        self._scanned_key = None     # (sources, options) the current source_set was made for
+        self._pending_key = None
         self.scan_message = ""
         self._scan_timer = QTimer(self)
         self._scan_timer.setSingleShot(True)
@@ -396,6 +398,7 @@ class IngestPane(QWidget):
             return
         self.summary_label.setText("Looking at the files…")
         generation, stored, cancel = self._generation, self.options(), self._scan_cancel
+        self._pending_key = (tuple(sources), stored)
         signals = self._scan_signals
 
         def job() -> None:
@@ -412,11 +415,37 @@ class IngestPane(QWidget):
 
         self._pool.start(job)
 
+    def scanned_for(self, sources, options):
+        """Return the finished scan of exactly these sources and options, or None."""
+        key = (tuple(os.path.abspath(os.fspath(s)) for s in sources), options)
+        if self.source_set is not None and self._scanned_key is not None and \
+                (tuple(os.path.abspath(s) for s in self._scanned_key[0]),
+                 self._scanned_key[1]) == key:
+            return self.source_set
+        return None
+
+    def stop_scan(self) -> None:
+        """Drop a pending or running scan (the analysis scans for itself)."""
+        self._scan_timer.stop()
+        self._generation += 1
+        self._scan_cancel.set()
+
+    def adopt(self, source_set, sources, options) -> None:
+        """Show a scan made elsewhere (by an analysis run) as this pane's result."""
+        if source_set is None or not source_set.n_images:
+            return
+        self.source_set = source_set
+        self._scanned_key = (tuple(os.path.abspath(os.fspath(s)) for s in sources), options)
+        self.scan_message = ""
+        self._refresh_summary()
+        self._update_buttons()
+
     @Slot(int, object)
     def _on_scan_done(self, generation: int, source_set) -> None:
         if generation != self._generation:
             return
         self.source_set = source_set
+        self._scanned_key = self._pending_key
         self.scan_message = ""
         self._refresh_summary()
         self.set_problems(source_set.problems)

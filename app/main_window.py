@@ -552,7 +552,13 @@ class MainWindow(QMainWindow):
         self.last_result = None
         self.state.set_decomposition(None)
         self._run_started = time.monotonic()
-        self.runner.start(sources, analysis_options)
+        # reuse the pane's finished scan of the same sources and options; otherwise stop the
+        # pane's scan so the two do not compete, and let the run's scan fill the pane later
+        scanned = self.ingest.scanned_for(sources, options)
+        if scanned is None:
+            self.ingest.stop_scan()
+        self._run_key = (list(sources), options)
+        self.runner.start(scanned if scanned is not None else sources, analysis_options)
         names = ", ".join(os.path.basename(s.rstrip(os.sep)) or s for s in sources[:2])
         more = f" and {len(sources) - 2} more" if len(sources) > 2 else ""
         self.setWindowTitle(f"Modescope — {names}{more}")
@@ -604,6 +610,9 @@ class MainWindow(QMainWindow):
     @Slot(object)
     def _on_finished(self, result) -> None:
         self.last_result = result
+        key = getattr(self, "_run_key", None)
+        if key is not None and self.ingest.scanned_for(*key) is None:
+            self.ingest.adopt(result.source_set, *key)
         if result.decomposition is not None:
             self.state.set_decomposition(result.decomposition)
         self.ingest.set_problems(result.problems)
