@@ -105,6 +105,17 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--quiet", action="store_true", help="no progress display")
     a.set_defaults(func=cmd_analyze)
 
+    u = sub.add_parser("update", help="add more images to a model file",
+                       description="Stream new images into an existing analysis, then score old "
+                                   "and new images exactly.")
+    u.add_argument("model", metavar="MODEL.npz")
+    u.add_argument("sources", nargs="+", metavar="SOURCE", help="folders or files with new images")
+    u.add_argument("-o", "--output", required=True, metavar="OUT.npz",
+                   help="model file to write (may be MODEL.npz itself)")
+    u.add_argument("--recursive", action="store_true", help="look into sub-folders")
+    u.add_argument("--quiet", action="store_true", help="no progress display")
+    u.set_defaults(func=cmd_update)
+
     i = sub.add_parser("info", help="summarise a model file")
     i.add_argument("model", metavar="MODEL.npz")
     i.add_argument("--ranks", type=_positive_int, default=10, metavar="N",
@@ -163,6 +174,29 @@ def cmd_analyze(args) -> int:
     cum = d.cumulative_energy()
     print(f"analysed {d.n_images} images of {rows}x{cols} ({'gray' if ch == 1 else 'rgb'}) in "
           f"{elapsed:.1f} s; rank {d.rank} captures {100 * cum[-1]:.1f}% of the energy",
+          file=sys.stderr)
+    print(f"wrote {written}", file=sys.stderr)
+    _print_problems(result.problems)
+    return EXIT_OK
+
+
+def cmd_update(args) -> int:
+    import dataclasses
+    from .model_file import load_model, save_model
+    from .pipeline import AnalysisOptions, update_analysis
+    try:
+        d = load_model(args.model)
+        options = AnalysisOptions.from_dict(d.metadata.get("options", {}))
+        options = dataclasses.replace(options, rank=max(d.rank, 1), recursive=args.recursive)
+        progress = None if args.quiet else ProgressLine(sys.stderr)
+        result = update_analysis(d, args.sources, options, progress=progress)
+        written = save_model(args.output, result.decomposition)
+    except ModescopeError as exc:
+        print(f"modescope update: {exc}", file=sys.stderr)
+        return EXIT_UNUSABLE
+    new = result.decomposition
+    print(f"added {new.n_images - d.n_images} images to {d.n_images}; "
+          f"{'exact scoring pass done' if new.exact else 'streaming update only'}",
           file=sys.stderr)
     print(f"wrote {written}", file=sys.stderr)
     _print_problems(result.problems)
@@ -234,8 +268,8 @@ def main(argv: list[str] | None = None) -> int:
 def _run_gui(paths: list[str]) -> int:
     missing = [p for p in paths if not os.path.exists(p)]
     if missing:
-        print(f"modescope: {missing[0]}: no such file or folder (sub-commands: analyze, info, "
-              f"outliers, duplicates, export, demo)", file=sys.stderr)
+        print(f"modescope: {missing[0]}: no such file or folder (sub-commands: analyze, update, "
+              f"info, outliers, duplicates, export, demo)", file=sys.stderr)
         return EXIT_USAGE
     try:
         from modescope.app.main import run_gui

@@ -231,6 +231,32 @@ class StreamingSVD:
             inv_root = (vec / np.sqrt(np.maximum(lam, 1e-12))) @ vec.T
             self.basis = np.asfortranarray(u @ inv_root.astype(np.float32))
 
+    @classmethod
+    def from_decomposition(cls, decomposition: Decomposition,
+                           oversample: int = 10) -> "StreamingSVD":
+        """Start an engine from an existing analysis so that more images can be added.
+
+        The engine holds the analysis' k modes (its extra internal directions were not saved),
+        its exact mean, image count, total energy and weights; new blocks update all of them.
+
+        Parameters
+        ----------
+        decomposition : Decomposition
+        oversample : int, optional
+            Extra directions to keep from now on.
+        """
+        d = decomposition
+        engine = cls(d.n_pixels, rank=max(d.rank, 1), oversample=oversample)
+        engine.n_seen = d.n_images
+        engine.mean = d.mean.astype(np.float64)
+        engine.total_energy = float(d.total_energy)
+        engine.basis = np.asfortranarray(d.basis, dtype=np.float32)
+        engine.singular_values = np.asarray(d.singular_values, dtype=np.float64).copy()
+        engine._flushed = np.asarray(d.weights, dtype=np.float64).copy()
+        engine._map_a = np.eye(d.rank)
+        engine._map_b = np.zeros(d.rank)
+        return engine
+
     # ---------------------------------------------------------------------------------------
     def internal_weights(self) -> np.ndarray:
         """Return the weights of every image seen, shape (internal directions, n_seen)."""

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import dataclasses
 import datetime as _dt
+import os
 import time
 from dataclasses import dataclass
 from importlib import metadata as _metadata
@@ -25,7 +26,7 @@ from .reader import analysis_shape, iter_blocks, load_image
 from .scoring import ProjectionAccumulator, project_block, rayleigh_ritz
 from .sources import Problem, SourceSet, scan_sources
 
-__all__ = ["AnalysisOptions", "Progress", "AnalysisResult", "scan", "analyze",
+__all__ = ["AnalysisOptions", "Progress", "AnalysisResult", "scan", "analyze", "update_analysis",
            "load_analysis_image", "project_images", "version"]
 
 
@@ -424,3 +425,157 @@ def project_images(decomposition: Decomposition, data: np.ndarray):
         raise ValueError(f"data must have shape ({decomposition.n_pixels}, m), got {data.shape}")
     w, res, _ = project_block(decomposition.basis, decomposition.mean, data)
     return w, res
+
+
+def update_analysis(decomposition: Decomposition, sources, options: AnalysisOptions | None = None,
+                    *, progress: Callable[[Progress], None] | None = None,
+                    cancel: Callable[[], bool] | None = None,
+                    on_partial: Callable[[Decomposition], None] | None = None) -> AnalysisResult:
+    """Add more images to an existing analysis.
+
+    The new images stream into an engine started from ``decomposition`` (its mean, count,
+    energy, basis and weights), then the exact scoring pass runs over the old and the new images
+    together, re-reading the old ones from their files. When an old file is missing, the result
+    is the streaming update (``exact=False``) and the missing files are listed as problems;
+    nothing is lost, the old model file is untouched.
+
+    Parameters
+    ----------
+    decomposition : Decomposition
+        The analysis to extend (for instance from :func:`modescope.core.model_file.load_model`).
+    sources : sequence of str or path
+        Folders and files holding the new images. Files already in the analysis are skipped.
+    options : AnalysisOptions, optional
+        Default: the options stored in the analysis. ``color`` and ``downscale`` must match it.
+
+    Returns
+    -------
+    AnalysisResult
+        Its ``source_set`` holds the new images only.
+
+    Raises
+    ------
+    SourceError
+        If the new images' size, colour or downscale do not match the analysis.
+    NoUsableImagesError
+        If ``sources`` holds no usable new image.
+    """
+    if not isinstance(decomposition, Decomposition):
+        raise TypeError(f"decomposition must be a Decomposition, got "
+                        f"{type(decomposition).__name__}")
+    d = decomposition
+    meta = d.metadata
+    if options is None:
+        options = AnalysisOptions.from_dict(meta.get("options", {}))
+        options = dataclasses.replace(options, rank=max(d.rank, 1))
+    color = "gray" if d.image_shape[2] == 1 else "rgb"
+    if options.color != color:
+        raise SourceError(f"the analysis is {color}; new images cannot be added as "
+                          f"{options.color}")
+    if options.downscale != int(meta.get("downscale", options.downscale)):
+        raise SourceError(f"the analysis used downscale {meta.get('downscale')}; got "
+                          f"{options.downscale}")
+    cancel = cancel or (lambda: False)
+    found = scan(sources, options, progress=progress, cancel=cancel)
+    known = {(os.path.realpath(p), int(g)) for p, g in zip(d.paths, d.pages)}
+    new_refs = tuple(r for r in found.images if (os.path.realpath(r.path), r.page) not in known)
+    reference = tuple(meta.get("source_size", found.reference_size))
+    problems = list(found.problems)
+    usable = []
+    for r in new_refs:
+        if tuple(r.size) != reference and not options.resize_mismatched:
+            problems.append(Problem(r.path, f"size {r.size[0]}x{r.size[1]} differs from the "
+                                            f"analysis ({reference[0]}x{reference[1]}); skipped",
+                                    None))
+        else:
+            usable.append(r)
+    if not usable:
+        from .errors import NoUsableImagesError
+        raise NoUsableImagesError("no new image to add: every image found is already in the "
+                                  "analysis or does not fit it")
+    new_set = dataclasses.replace(found, images=tuple(usable), reference_size=reference,
+                                  problems=tuple(problems))
+    shape = analysis_shape(new_set, options.downscale)
+    if tuple(shape) != tuple(d.image_shape):
+        raise SourceError(f"new images give shape {shape}, the analysis has "
+                          f"{tuple(d.image_shape)}")
+    engine = StreamingSVD.from_decomposition(d, options.oversample)
+    engine.rank = options.rank
+    engine.internal = options.rank + options.oversample
+    workers = decode_workers(new_set, options)
+    old_paths = list(d.paths)
+    old_pages = [int(g) for g in d.pages]
+    kept: list[int] = []
+
+    def snapshot(stage, exact_fields=None):
+        paths = tuple(old_paths + [new_set.images[i].path for i in kept])
+        pages = np.array(old_pages + [new_set.images[i].page for i in kept], dtype=np.int32)
+        m = _metadata_for(options, new_set, problems, stage, engine.internal)
+        m["problems"] = list(meta.get("problems", [])) + m["problems"]
+        marks = np.concatenate([d.marks, np.zeros(len(kept), dtype=np.int8)])
+        return engine.snapshot(shape, paths=paths, pages=pages, marks=marks, metadata=m)
+
+    with _blas_limit(options.blas_threads):
+        clock = _Clock("learn", new_set.n_images, progress)
+        attempted = 0
+        for block in iter_blocks(new_set, block_size=options.block_size,
+                                 downscale=options.downscale, workers=workers, cancel=cancel):
+            problems.extend(block.problems)
+            attempted = block.start + len(block.indices) + len(block.problems)
+            if block.data.shape[1]:
+                engine.update(block.data)
+                kept.extend(int(i) for i in block.indices)
+            clock.report(attempted)
+            if on_partial is not None:
+                on_partial(snapshot("streaming"))
+            if cancel():
+                break
+        if cancel() or attempted < new_set.n_images:
+            return AnalysisResult(snapshot("cancelled"), new_set, tuple(problems), True)
+        # exact pass over old and new images
+        missing = [p for p in dict.fromkeys(old_paths) if not os.path.exists(p)]
+        if missing:
+            problems.extend(Problem(p, "source file missing: the exact scoring pass was skipped "
+                                       "and the result is the streaming update", None)
+                            for p in missing)
+            return AnalysisResult(snapshot("streaming"), new_set, tuple(problems), False)
+        old_set = scan_sources(list(dict.fromkeys(old_paths)), color=color,
+                               resize_mismatched=True)
+        by_key = {(r.path, r.page): r for r in old_set.images}
+        try:
+            old_refs = [by_key[(os.path.abspath(p), g)] for p, g in zip(old_paths, old_pages)]
+        except KeyError as exc:
+            raise SourceError(f"{exc.args[0][0]}: page {exc.args[0][1]} is no longer in the "
+                              f"file") from None
+        all_refs = tuple(old_refs) + tuple(new_set.images[i] for i in kept)
+        all_set = dataclasses.replace(new_set, images=all_refs, problems=(),
+                                      resize_mismatched=bool(meta.get("resize_mismatched",
+                                                                      options.resize_mismatched)))
+        acc = ProjectionAccumulator(engine.basis, engine.mean, len(all_refs))
+        clock = _Clock("score", len(all_refs), progress)
+        for block in iter_blocks(all_set, block_size=max(options.block_size, 128),
+                                 downscale=options.downscale, workers=workers, cancel=cancel):
+            if block.problems:
+                bad = block.problems[0]
+                raise SourceError(f"{bad.path}: changed or became unreadable during the "
+                                  f"analysis ({bad.reason})")
+            acc.add(block.data)
+            clock.report(acc.done)
+            if cancel():
+                break
+        if acc.done < len(all_refs):
+            return AnalysisResult(snapshot("cancelled"), new_set, tuple(problems), True)
+        ritz = rayleigh_ritz(engine.basis, acc.weights, acc.residual, options.rank,
+                             refine=options.refine)
+        m = _metadata_for(options, new_set, problems, "exact", engine.internal)
+        m["problems"] = list(meta.get("problems", [])) + m["problems"]
+        m["updated_from"] = {"images": d.n_images, "created": meta.get("created")}
+        result = Decomposition(
+            mean=engine.mean.astype(np.float32), basis=ritz.basis,
+            singular_values=ritz.singular_values, weights=ritz.weights,
+            total_energy=float(np.sum(acc.energy)), image_shape=shape,
+            paths=tuple(r.path for r in all_refs),
+            pages=np.array([r.page for r in all_refs], dtype=np.int32),
+            residual=ritz.residual, exact=True,
+            marks=np.concatenate([d.marks, np.zeros(len(kept), dtype=np.int8)]), metadata=m)
+    return AnalysisResult(result, new_set, tuple(problems), False)
