@@ -111,6 +111,9 @@ def save_model(path, decomposition: Decomposition, *, overwrite: bool = True,
             np.savez(fh, **arrays)
             fh.flush()
             os.fsync(fh.fileno())
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)       # like a plain new file, not mkstemp's 0600
         os.replace(tmp, path)
     except OSError as exc:
         try:
