@@ -314,19 +314,7 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
         # ---- exact scoring pass -------------------------------------------------------------
         used = dataclasses.replace(source_set, images=tuple(source_set.images[i] for i in kept),
                                    problems=())
-        acc = ProjectionAccumulator(engine.basis, engine.mean, len(kept))
-        clock = _Clock("score", len(kept), progress)
-        for block in iter_blocks(used, block_size=max(options.block_size, 128),
-                                 downscale=options.downscale, workers=workers,
-                                 cancel=cancel):
-            if block.problems:
-                bad = block.problems[0]
-                raise SourceError(f"{bad.path}: changed or became unreadable during the "
-                                  f"analysis ({bad.reason})")
-            acc.add(block.data)
-            clock.report(acc.done)
-            if cancel():
-                break
+        acc = _score_pass(engine, used, options, workers, progress, cancel)
         if acc.done < len(kept):
             return AnalysisResult(
                 _snapshot(engine, source_set, kept, shape, options, problems, "cancelled"),
@@ -343,6 +331,26 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
             pages=np.array([source_set.images[i].page for i in kept], dtype=np.int32),
             residual=ritz.residual, exact=True, metadata=meta)
     return AnalysisResult(decomposition, source_set, tuple(problems), False)
+
+
+def _score_pass(engine, used: SourceSet, options, workers, progress, cancel):
+    """Project every image of ``used`` onto the engine's basis (the exact scoring pass).
+
+    Stops early when ``cancel()`` answers True (then ``acc.done < used.n_images``).
+    """
+    acc = ProjectionAccumulator(engine.basis, engine.mean, used.n_images)
+    clock = _Clock("score", used.n_images, progress)
+    for block in iter_blocks(used, block_size=max(options.block_size, 128),
+                             downscale=options.downscale, workers=workers, cancel=cancel):
+        if block.problems:
+            bad = block.problems[0]
+            raise SourceError(f"{bad.path}: changed or became unreadable during the "
+                              f"analysis ({bad.reason})")
+        acc.add(block.data)
+        clock.report(acc.done)
+        if cancel():
+            break
+    return acc
 
 
 def _snapshot(engine, source_set, kept, shape, options, problems, stage) -> Decomposition:
@@ -551,18 +559,7 @@ def update_analysis(decomposition: Decomposition, sources, options: AnalysisOpti
         all_set = dataclasses.replace(new_set, images=all_refs, problems=(),
                                       resize_mismatched=bool(meta.get("resize_mismatched",
                                                                       options.resize_mismatched)))
-        acc = ProjectionAccumulator(engine.basis, engine.mean, len(all_refs))
-        clock = _Clock("score", len(all_refs), progress)
-        for block in iter_blocks(all_set, block_size=max(options.block_size, 128),
-                                 downscale=options.downscale, workers=workers, cancel=cancel):
-            if block.problems:
-                bad = block.problems[0]
-                raise SourceError(f"{bad.path}: changed or became unreadable during the "
-                                  f"analysis ({bad.reason})")
-            acc.add(block.data)
-            clock.report(acc.done)
-            if cancel():
-                break
+        acc = _score_pass(engine, all_set, options, workers, progress, cancel)
         if acc.done < len(all_refs):
             return AnalysisResult(snapshot("cancelled"), new_set, tuple(problems), True)
         ritz = rayleigh_ritz(engine.basis, acc.weights, acc.residual, options.rank,
