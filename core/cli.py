@@ -94,8 +94,8 @@ def build_parser() -> argparse.ArgumentParser:
     a.add_argument("--resize-mismatched", action="store_true",
                    help="resize images of another size to the most common size instead of "
                         "skipping them")
-    a.add_argument("--block-size", type=_positive_int, default=64, metavar="B",
-                   help="images per streaming update (default 64)")
+    a.add_argument("--block-size", type=_positive_int, default=128, metavar="B",
+                   help="images per streaming update (default 128)")
     a.add_argument("--oversample", type=int, default=10, metavar="P",
                    help="extra internal directions (default 10)")
     a.add_argument("--no-refine", action="store_true",
