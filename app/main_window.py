@@ -275,6 +275,12 @@ class MainWindow(QMainWindow):
                                   "Open a saved analysis (.npz)")
         self.save_action = action("&Save analysis…", self.choose_save, K.Save,
                                   "Save the current analysis (.npz)")
+        self.export_dialog = None   # made on first use (modescope.app.export_dialog)
+        self.export_action = action("&Export…", self.show_export_dialog, "Ctrl+E",
+                                    "Write previews, basis images, tables or a compact model "
+                                    "to a folder")
+        self.state.decompositionChanged.connect(self._update_export_action)
+        self._update_export_action()
         self.quit_action = action("&Quit", self.close, K.Quit)
         self.start_action = action("S&tart analysis", self._start_from_pane, "Ctrl+R",
                                    "Analyse the sources with the options shown")
@@ -297,6 +303,7 @@ class MainWindow(QMainWindow):
         file_menu.addSeparator()
         file_menu.addAction(self.open_action)
         file_menu.addAction(self.save_action)
+        file_menu.addAction(self.export_action)
         self.recent_menu = file_menu.addMenu("&Recent analyses")
         self.recent_menu.triggered.connect(self._on_recent)
         file_menu.addSeparator()
@@ -481,6 +488,26 @@ class MainWindow(QMainWindow):
         note = "" if d.exact else " (partial result)"
         self.statusBar().showMessage(f"Saved {written}{note}", 5000)
         return Path(written)
+
+    @Slot()
+    def _update_export_action(self, *_args) -> None:
+        d = self.state.decomposition
+        self.export_action.setEnabled(d is not None and d.rank >= 1)
+
+    @Slot()
+    def show_export_dialog(self) -> None:
+        """Open the export dialog for the current analysis (kept for the session)."""
+        from .export_dialog import ExportDialog
+
+        if self.state.decomposition is None:
+            return
+        if self.export_dialog is None:
+            self.export_dialog = ExportDialog(self.state, self.settings, self)
+        if not self.export_dialog.is_running():
+            self.export_dialog.sync_from_state(reset_rank=True)
+        self.export_dialog.show()
+        self.export_dialog.raise_()
+        self.export_dialog.activateWindow()
 
     def _rebuild_recent_menu(self) -> None:
         menu = self.recent_menu
@@ -755,6 +782,8 @@ class MainWindow(QMainWindow):
             stop = getattr(view, "shutdown", None)
             if callable(stop):
                 ok_views = (stop() is not False) and ok_views
+        if self.export_dialog is not None:
+            ok_views = self.export_dialog.shutdown(timeout_ms) and ok_views
         return ok_run and ok_scan and ok_views
 
     def closeEvent(self, event: QCloseEvent) -> None:  # noqa: N802 - Qt name
