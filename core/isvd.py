@@ -140,7 +140,10 @@ class StreamingSVD:
         n = self.n_seen
         n_new = n + m
         centred = block - block_mean.astype(np.float32)[:, None]
-        block_energy = float(np.einsum("ij,ij->", centred, centred, dtype=np.float64))
+        # column sums of squares in float32 (numpy sums each contiguous column pairwise, so
+        # the relative error stays near 1e-7 * log2(pixels)), added up in float64
+        block_energy = float(np.sum(np.add.reduce(centred * centred, axis=0),
+                                    dtype=np.float64))
         if n > 0:
             shift = block_mean - self.mean
             scale = np.sqrt(n * m / n_new)
@@ -162,7 +165,8 @@ class StreamingSVD:
             if np.max(np.abs(proj2)) > 1e-6 * max(float(np.max(np.abs(proj))), 1e-30):
                 rem -= u @ proj2
                 proj += proj2
-        norm_ref = float(np.sqrt(np.einsum("ij,ij->", z, z, dtype=np.float64))) or 1.0
+        extra_energy = float(np.sum(z[:, m:].astype(np.float64) ** 2)) if n > 0 else 0.0
+        norm_ref = float(np.sqrt(block_energy + extra_energy)) or 1.0
         j, f = _orthonormal_remainder(rem, norm_ref)
         c = j.shape[1]
         ncol = z.shape[1]

@@ -61,10 +61,10 @@ class AnalysisOptions:
     refine : bool
         Run the Rayleigh-Ritz step of the scoring pass (exact singular values for the subspace).
     workers : int
-        Decoding threads; 0 (default) chooses: 1 for images of at most 160x160 pixels (Pillow's
-        per-file Python work holds the GIL, so a second thread only adds contention there; measured
-        here: 10,000 vs 6,000 gray 128x128 PNG/s), 2 for larger images (256x256 RGB JPEG: 1,450
-        vs 2,450/s). Decoding of the next block overlaps the SVD update either way.
+        Decoding threads; 0 (default) chooses 2. Decoding alone of small gray PNGs is faster in
+        one thread (Pillow's per-file Python work holds the GIL), but with the next block
+        decoding while the SVD update runs, two threads measured faster end to end here
+        (5,000 gray 128x128 PNG: 3.1 s vs 3.5 s).
     blas_threads : int
         Threads for the matrix products (pinned with threadpoolctl so that decoding and BLAS do not
         fight over the cores).
@@ -168,8 +168,7 @@ def decode_workers(source_set: SourceSet, options: AnalysisOptions) -> int:
     """Return the number of decoding threads an analysis uses (see ``AnalysisOptions.workers``)."""
     if options.workers:
         return options.workers
-    rows, cols = source_set.reference_size
-    return 1 if rows * cols <= 160 * 160 else 2
+    return 2
 
 
 def scan(sources, options: AnalysisOptions = AnalysisOptions(), *, progress=None,
