@@ -71,6 +71,7 @@ class AppState(QObject):
         self._modes = (0, 1)
         self._focus_mode = 0
         self._level = 0.99
+        self._rank_chosen = False    # True once the user (a view) set the rank
 
     # ----- getters ---------------------------------------------------------------------------
     @property
@@ -113,8 +114,10 @@ class AppState(QObject):
         self.decompositionChanged.emit(decomposition)
         # clamp dependent values (each setter emits only on change)
         if k == 0:
+            self._rank_chosen = False
             self._set_rank_raw(0)
-        elif self._rank == 0:
+        elif self._rank == 0 or (decomposition.exact and not self._rank_chosen):
+            # a fresh start, or the final result of a run whose rank nobody has moved yet
             self._set_rank_raw(initial_rank(decomposition))
         elif self._rank > k:
             self._set_rank_raw(k)
@@ -158,6 +161,7 @@ class AppState(QObject):
         """Set the rank r, clamped to 1..k."""
         k = 0 if self._decomposition is None else self._decomposition.rank
         rank = max(1, min(int(rank), k)) if k else 0
+        self._rank_chosen = bool(k)
         self._set_rank_raw(rank)
 
     def set_modes(self, a: int, b: int) -> None:

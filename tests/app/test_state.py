@@ -65,3 +65,16 @@ def test_marks_and_level(qtbot):
     assert state.level == 0.95 and levels == [0.95]
     with pytest.raises(ValueError, match="level must be in"):
         state.set_level(1.0)
+
+
+def test_final_result_rechooses_rank_unless_the_user_moved_it(qtbot):
+    state = AppState()
+    d = make()
+    partial = d.replace(exact=False, residual=None)
+    state.set_decomposition(partial)
+    state._set_rank_raw(d.rank)          # as if the first snapshot had given k
+    state.set_decomposition(d)            # final result: back to the 95% rank
+    assert state.rank == initial_rank(d)
+    state.set_rank(2)                     # the user moves the slider
+    state.set_decomposition(d)
+    assert state.rank == 2
