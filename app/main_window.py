@@ -56,6 +56,8 @@ VIEW_SPECS = (
     ("basisDock", "Basis images", "modescope.app.gallery", "BasisGallery"),
     ("spectrumDock", "Singular values", "modescope.app.spectrum", "SpectrumView"),
     ("weightsDock", "Weights", "modescope.app.weights_view", "WeightsView"),
+    ("outliersDock", "Outliers", "modescope.app.outlier_view", "OutlierView"),
+    ("duplicatesDock", "Near-duplicates", "modescope.app.duplicates_view", "DuplicatesView"),
 )
 
 CAUTIONS = (
@@ -223,6 +225,9 @@ class MainWindow(QMainWindow):
         for dock in d.values():
             dock.setFloating(False)
             dock.show()
+        tabs = (("outliersDock", "weightsDock"), ("duplicatesDock", "imagesDock"))
+        for name, _beside in tabs:   # out of the way, so no row of docks wider than the window
+            self.removeDockWidget(d[name])
         self.addDockWidget(Qt.DockWidgetArea.LeftDockWidgetArea, d["sourcesDock"])
         self.addDockWidget(Qt.DockWidgetArea.LeftDockWidgetArea, d["imagesDock"])
         self.tabifyDockWidget(d["sourcesDock"], d["imagesDock"])
@@ -235,7 +240,10 @@ class MainWindow(QMainWindow):
             self.splitDockWidget(d["weightsDock"], d["spectrumDock"], Qt.Orientation.Horizontal)
         else:
             self.tabifyDockWidget(d["weightsDock"], d["spectrumDock"])
-            d["weightsDock"].raise_()
+        for name, beside in tabs:
+            self.tabifyDockWidget(d[beside], d[name])
+            d[name].show()
+        d["weightsDock"].raise_()
         d["sourcesDock"].raise_()
         self._size_docks(width, max(self.height(), DEFAULT_SIZE[1]))
 
@@ -321,6 +329,20 @@ class MainWindow(QMainWindow):
         view_menu.addAction(self.rank_up_action)
         view_menu.addAction(self.rank_down_action)
         view_menu.addSeparator()
+        self.review_menu = view_menu.addMenu("Re&view")   # marks, refit, lists, duplicates
+        for name in ("outliersDock", "duplicatesDock"):
+            actions = getattr(self.views.get(name), "review_actions", None)
+            if callable(actions):
+                if not self.review_menu.isEmpty():
+                    self.review_menu.addSeparator()
+                for a in actions():
+                    if a is None:
+                        self.review_menu.addSeparator()
+                    else:
+                        self.review_menu.addAction(a)
+                        self.addAction(a)   # window-level shortcut (K, X, U)
+        self.review_menu.setEnabled(not self.review_menu.isEmpty())
+        view_menu.addSeparator()
         view_menu.addAction(self.reset_layout_action)
 
         help_menu = bar.addMenu("&Help")
@@ -360,6 +382,9 @@ class MainWindow(QMainWindow):
         self.runner.runningChanged.connect(self._on_running_changed)
         self.state.decompositionChanged.connect(self._on_state_changed)
         self.state.rankChanged.connect(self._on_state_changed)
+        refit = getattr(self.views.get("outliersDock"), "refitRequested", None)
+        if refit is not None:
+            refit.connect(self.start_analysis)   # (files not excluded, StoredOptions)
         self.cancel_action.setEnabled(False)
 
     def _restore_window(self) -> None:
