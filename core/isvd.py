@@ -39,35 +39,6 @@ __all__ = ["StreamingSVD"]
 _DROP_RELATIVE = 1e-5
 
 
-def _orthonormal_remainder(residual: np.ndarray, norm_ref: float):
-    """Return ``J`` (pixels, c) with orthonormal columns and ``F`` (c, m) with residual ~= J @ F."""
-    m = residual.shape[1]
-    if m == 0 or norm_ref <= 0:
-        return residual[:, :0], np.zeros((0, m))
-    floor = (_DROP_RELATIVE * norm_ref) ** 2
-    gram = (residual.T @ residual).astype(np.float64)
-    lam, vec = np.linalg.eigh(gram)
-    keep = lam > floor
-    if not np.any(keep):
-        return residual[:, :0], np.zeros((0, m))
-    lam, vec = lam[keep], vec[:, keep]
-    root = np.sqrt(lam)
-    j1 = residual @ (vec / root).astype(np.float32)           # pixels x c1
-    f1 = (vec * root).T                                        # c1 x m  (residual ~= j1 @ f1)
-    # Orthogonality lost by one Gram pass is about eps * lam_max / lam_min; a second pass
-    # (Cholesky-QR2 style) restores it when that is not small.
-    if lam[-1] / lam[0] * np.finfo(np.float32).eps < 1e-6:
-        return j1, f1
-    gram2 = (j1.T @ j1).astype(np.float64)
-    lam2, vec2 = np.linalg.eigh(gram2)
-    keep2 = lam2 > 1e-6
-    lam2, vec2 = lam2[keep2], vec2[:, keep2]
-    root2 = np.sqrt(lam2)
-    j = j1 @ (vec2 / root2).astype(np.float32)
-    f = (vec2 * root2).T @ f1
-    return j, f
-
-
 class StreamingSVD:
     """Mean-centred truncated SVD of a matrix whose columns arrive in blocks.
 
@@ -116,7 +87,8 @@ class StreamingSVD:
         Parameters
         ----------
         block : ndarray, shape (pixels, m)
-            New images as columns (float32 preferred; other real types are converted).
+            New images as columns (float32 preferred, Fortran order, as the reader makes them;
+            other real types and layouts are converted).
 
         Raises
         ------
@@ -133,54 +105,77 @@ class StreamingSVD:
         m = block.shape[1]
         if m == 0:
             return
-        block = np.asarray(block, dtype=np.float32)
-        block_mean = block.mean(axis=1, dtype=np.float64)
+        # Work on the transpose: one row per image, C-contiguous. Every pixel-sized product
+        # below is then a plain row-major GEMM whose output has the layout of its operands, so
+        # no elementwise step mixes C and Fortran order (that alone cost 5x here).
+        rows = np.ascontiguousarray(block.T, dtype=np.float32)          # m x pixels
+        block_mean = rows.mean(axis=0, dtype=np.float64)
         if not np.all(np.isfinite(block_mean)):
             raise ValueError("block holds non-finite values (NaN or infinity)")
         n = self.n_seen
         n_new = n + m
-        centred = block - block_mean.astype(np.float32)[:, None]
-        # column sums of squares in float32 (numpy sums each contiguous column pairwise, so
-        # the relative error stays near 1e-7 * log2(pixels)), added up in float64
-        block_energy = float(np.sum(np.add.reduce(centred * centred, axis=0),
-                                    dtype=np.float64))
+        ncol = m + 1 if n > 0 else m
+        z = np.empty((ncol, self.n_pixels), dtype=np.float32)             # centred block (+1)
+        np.subtract(rows, block_mean.astype(np.float32), out=z[:m])
+        # row sums of squares in float32 (numpy sums each contiguous row pairwise, so the
+        # relative error stays near 1e-7 * log2(pixels)), added up in float64
+        block_energy = float(np.sum(np.einsum("ij,ij->i", z[:m], z[:m]), dtype=np.float64))
         if n > 0:
             shift = block_mean - self.mean
-            scale = np.sqrt(n * m / n_new)
-            extra = (scale * shift).astype(np.float32)[:, None]
-            z = np.concatenate([centred, extra], axis=1)
-            self.total_energy += block_energy + (n * m / n_new) * float(shift @ shift)
+            z[m] = np.sqrt(n * m / n_new) * shift
+            shift_energy = (n * m / n_new) * float(shift @ shift)
+            self.total_energy += block_energy + shift_energy
         else:
-            z = centred
+            shift_energy = 0.0
             self.total_energy = block_energy
         u, s = self.basis, self.singular_values
+        ut = u.T                                                           # r x pixels, C
         r = u.shape[1]
-        # project onto the current basis; a second projection ("twice is enough") only when
-        # the first left a component along the basis that float32 cannot ignore
-        proj = u.T @ z
-        rem = z - u @ proj
-        proj = proj.astype(np.float64)
+        proj = (z @ u).T.astype(np.float64) if r else np.zeros((0, ncol))  # r x ncol
         if r:
-            proj2 = u.T @ rem
+            z -= proj.T.astype(np.float32) @ ut                            # z is now the remainder
+            # a second projection ("twice is enough") when the first left a component along
+            # the basis that float32 cannot ignore: for data of low rank the remainder is
+            # rounding noise that lies mostly in the span of the basis
+            proj2 = z @ u
             if np.max(np.abs(proj2)) > 1e-6 * max(float(np.max(np.abs(proj))), 1e-30):
-                rem -= u @ proj2
-                proj += proj2
-        extra_energy = float(np.sum(z[:, m:].astype(np.float64) ** 2)) if n > 0 else 0.0
-        norm_ref = float(np.sqrt(block_energy + extra_energy)) or 1.0
-        j, f = _orthonormal_remainder(rem, norm_ref)
-        c = j.shape[1]
-        ncol = z.shape[1]
+                z -= proj2 @ ut
+                proj += proj2.T
+        rem = z
+        # Orthonormal directions of the remainder from one eigendecomposition of its small Gram
+        # matrix rem rem^T = vec diag(lam) vec^T: the rows of J = (vec / root)^T rem are
+        # orthonormal and rem = (vec * root) J. J itself is never formed, only the combination
+        # of it that survives the truncation.
+        norm_ref = np.sqrt(block_energy + shift_energy) or 1.0
+        floor = (_DROP_RELATIVE * norm_ref) ** 2
+        gram = (rem @ rem.T).astype(np.float64)
+        lam, vec = np.linalg.eigh(gram)
+        keep = lam > floor
+        lam, vec = lam[keep], vec[:, keep]
+        root = np.sqrt(lam)
+        c = lam.size
         core = np.zeros((r + c, r + ncol))
         core[:r, :r] = np.diag(s)
         core[:r, r:] = proj
-        core[r:, r:] = f
-        p_mat, sig, _ = np.linalg.svd(core, full_matrices=False)
+        core[r:, r:] = (vec * root).T                                      # rem^T = J^T F
+        # left singular vectors of the small core from the eigendecomposition of core core^T
+        # (float64; the squared condition number stays far inside float64's range for data
+        # that is float32 to begin with, and eigh is ~3x cheaper than the SVD here)
+        lam_core, p_mat = np.linalg.eigh(core @ core.T)
+        order = np.argsort(lam_core)[::-1]
+        p_mat = p_mat[:, order]
+        sig = np.sqrt(np.maximum(lam_core[order], 0.0))
         q_new = min(self.internal, int(np.sum(sig > sig[0] * 1e-7)) if sig.size and sig[0] > 0
                     else 0)
-        q_new = max(q_new, 0)
         p_keep = p_mat[:, :q_new]
-        big = np.concatenate([u, j], axis=1) if c else u
-        new_basis = np.asfortranarray(big @ p_keep.astype(np.float32))
+        # new basis (rows) = P_u^T U^T + P_j^T J^T with J^T = (vec / root)^T rem
+        new_rows = np.empty((q_new, self.n_pixels), dtype=np.float32)
+        if r:
+            np.matmul(p_keep[:r].T.astype(np.float32), ut, out=new_rows)
+        else:
+            new_rows[...] = 0.0
+        if c:
+            new_rows += ((vec / root) @ p_keep[r:]).T.astype(np.float32) @ rem
         # affine map of old image coordinates: new = A old + b
         if n > 0:
             coord_extra = core[:, r + m]                      # coordinates of the extra column
@@ -192,17 +187,31 @@ class StreamingSVD:
         a_blk = p_keep[:r, :].T                               # q_new x r
         b_blk = p_keep.T @ coord_old_shift
         new_w = p_keep.T @ (core[:, r:r + m] + coord_new_shift[:, None])
+        sig = sig[:q_new]
+        # One float32 Gram pass leaves the new directions orthogonal only to about
+        # eps * cond(remainder), so the new basis B (q columns, cheap to check) is made exactly
+        # orthonormal in a way that keeps the decomposition consistent: with C = (B^T B)^(1/2),
+        # data ~ B W = (B C^-1)(C W), and the SVD C diag(s) = P' diag(s') Q'^T gives the
+        # orthonormal basis B C^-1 P', singular values s' and coordinates P'^T C W.
+        if q_new:
+            gram_b = (new_rows @ new_rows.T).astype(np.float64)
+            if np.max(np.abs(gram_b - np.eye(q_new))) > 1e-6:
+                lam_b, vec_b = np.linalg.eigh(gram_b)
+                root_b = np.sqrt(np.maximum(lam_b, 1e-12))
+                half = (vec_b * root_b) @ vec_b.T
+                p_fix, sig, _ = np.linalg.svd(half * sig, full_matrices=False)
+                fix = p_fix.T @ half
+                new_rows = (((vec_b / root_b) @ vec_b.T) @ p_fix).T.astype(np.float32) @ new_rows
+                a_blk, b_blk, new_w = fix @ a_blk, fix @ b_blk, fix @ new_w
         self._compose(a_blk, b_blk)
         self._chunks.append([np.eye(q_new), np.zeros(q_new), new_w])
         if len(self._chunks) > 64:
             self._flush()
-        self.basis = new_basis
-        self.singular_values = sig[:q_new].copy()
+        self.basis = new_rows.T                               # Fortran order (pixels x q)
+        self.singular_values = sig.copy()
         self.mean = self.mean + (m / n_new) * (block_mean - self.mean)
         self.n_seen = n_new
         self._updates += 1
-        if self._updates % 8 == 0:
-            self._reorthonormalise_if_needed()
 
     def _compose(self, a_blk: np.ndarray, b_blk: np.ndarray) -> None:
         if self._flushed.shape[1] > 0:
@@ -233,7 +242,7 @@ class StreamingSVD:
         if err > 1e-5:
             lam, vec = np.linalg.eigh(gram)
             inv_root = (vec / np.sqrt(np.maximum(lam, 1e-12))) @ vec.T
-            self.basis = np.asfortranarray(u @ inv_root.astype(np.float32))
+            self.basis = (inv_root.T.astype(np.float32) @ u.T).T     # stays Fortran order
 
     @classmethod
     def from_decomposition(cls, decomposition: Decomposition,

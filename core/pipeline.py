@@ -19,6 +19,7 @@ from typing import Callable, Sequence
 import numpy as np
 
 from ._checks import check_choice, check_int
+from .blockcache import BlockCache
 from .decomposition import Decomposition
 from .errors import AnalysisCancelled, ModescopeError, SourceError
 from .isvd import StreamingSVD
@@ -277,19 +278,21 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
     problems: list[Problem] = list(source_set.problems)
     kept: list[int] = []
     cancelled = False
-    with _blas_limit(options.blas_threads):
+    # decoded blocks are kept in a temporary file for the scoring pass (see blockcache)
+    with _blas_limit(options.blas_threads), BlockCache(pixels) as cache:
         # ---- learning pass ------------------------------------------------------------------
         clock = _Clock("learn", source_set.n_images, progress)
         last_partial = -np.inf
         attempted = 0
         for block in iter_blocks(source_set, block_size=options.block_size,
                                  downscale=options.downscale, workers=workers,
-                                 cancel=cancel):
+                                 cancel=cancel, keep_raw=True):
             problems.extend(block.problems)
             attempted = block.start + len(block.indices) + len(block.problems)
             if block.data.shape[1]:
                 engine.update(block.data)
                 kept.extend(int(i) for i in block.indices)
+                cache.put(block)
             clock.report(attempted)
             if on_partial is not None and engine.n_seen and (
                     time.perf_counter() - last_partial >= partial_interval):
@@ -314,7 +317,7 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
         # ---- exact scoring pass -------------------------------------------------------------
         used = dataclasses.replace(source_set, images=tuple(source_set.images[i] for i in kept),
                                    problems=())
-        acc = _score_pass(engine, used, options, workers, progress, cancel)
+        acc = _score_pass(engine, used, options, workers, progress, cancel, cache)
         if acc.done < len(kept):
             return AnalysisResult(
                 _snapshot(engine, source_set, kept, shape, options, problems, "cancelled"),
@@ -333,13 +336,25 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
     return AnalysisResult(decomposition, source_set, tuple(problems), False)
 
 
-def _score_pass(engine, used: SourceSet, options, workers, progress, cancel):
+def _score_pass(engine, used: SourceSet, options, workers, progress, cancel,
+                cache: BlockCache | None = None):
     """Project every image of ``used`` onto the engine's basis (the exact scoring pass).
 
+    The first ``cache.images`` images of ``used`` are read back from ``cache`` (the decoded
+    blocks of the learning pass, in the same order); the rest are decoded from their files.
     Stops early when ``cancel()`` answers True (then ``acc.done < used.n_images``).
     """
     acc = ProjectionAccumulator(engine.basis, engine.mean, used.n_images)
     clock = _Clock("score", used.n_images, progress)
+    if cache is not None and cache.images:
+        # nothing decodes while the cached blocks are scored: the products may use every core
+        with _blas_limit(max(options.blas_threads, os.cpu_count() or 1)):
+            for block in cache.blocks():
+                acc.add(block.data)
+                clock.report(acc.done)
+                if cancel():
+                    return acc
+        used = dataclasses.replace(used, images=used.images[acc.done:])
     for block in iter_blocks(used, block_size=max(options.block_size, 128),
                              downscale=options.downscale, workers=workers, cancel=cancel):
         if block.problems:

@@ -89,12 +89,21 @@ class Block:
         is contiguous in memory.
     problems : tuple of Problem
         The images of this block that failed to decode (absent from ``indices`` and ``data``).
+    exact8 : bool
+        True when every value of ``data`` is exactly ``v / 255`` (float32 division) for an 8-bit
+        stored value ``v``: 8-bit files used as stored (no luma mix, resize or downscale). Such a
+        block can be kept as uint8 and restored bit for bit (see :mod:`.blockcache`).
+    raw8 : ndarray or None
+        When ``exact8``: the stored values themselves, shape (m, pixels), uint8, one row per
+        image (``data == (raw8 / float32(255)).T`` exactly); otherwise None.
     """
 
     start: int
     indices: np.ndarray
     data: np.ndarray
     problems: tuple[Problem, ...]
+    exact8: bool = False
+    raw8: np.ndarray | None = None
 
 
 def _check_source_set(source_set) -> None:
@@ -214,8 +223,13 @@ def _downscale(image: np.ndarray, f: int) -> np.ndarray:
     return cropped.reshape(r, f, c, f, channels).mean(axis=(1, 3), dtype=np.float32)
 
 
-def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray) -> None:
-    """Decode ``ref`` into ``out`` (shape analysis_shape, float32) or raise _DecodeFailure."""
+def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
+            raw_out: np.ndarray | None = None) -> bool:
+    """Decode ``ref`` into ``out`` (shape analysis_shape, float32) or raise _DecodeFailure.
+
+    Returns True when ``out`` holds exactly ``v / 255`` of 8-bit stored values ``v``; those
+    values are then also copied into ``raw_out`` (same shape, uint8) when it is given.
+    """
     reference = source_set.reference_size
     try:
         with Image.open(ref.path) as img:
@@ -243,10 +257,16 @@ def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray) -> No
         if f > 1:
             image = _downscale(image, f)
         out[...] = image
-    elif f == 1:
+        return False
+    if f == 1:
         _to_float(values, scale, source_set.color, out=out)  # fast path: no extra copy
-    else:
-        out[...] = _downscale(_to_float(values, scale, source_set.color), f)
+        luma = values.ndim == 3 and source_set.color == "gray"
+        exact8 = scale == 255.0 and values.dtype == np.uint8 and not luma
+        if exact8 and raw_out is not None:
+            raw_out[...] = values if values.ndim == 3 else values[:, :, None]
+        return exact8
+    out[...] = _downscale(_to_float(values, scale, source_set.color), f)
+    return False
 
 
 def _page_label(ref: ImageRef, source_set: SourceSet) -> int | None:
@@ -297,20 +317,27 @@ def load_image(ref: ImageRef, source_set: SourceSet, downscale: int = 1) -> np.n
 
 
 def _decode_chunk(jobs, source_set: SourceSet, f: int, buffer: np.ndarray,
-                  shape: tuple[int, int, int]) -> list[tuple[int, str]]:
-    """Decode each (row, ref) of ``jobs`` into ``buffer[row]``; return the failures."""
+                  shape: tuple[int, int, int],
+                  raw: np.ndarray | None = None) -> tuple[list[tuple[int, str]], bool]:
+    """Decode each (row, ref) of ``jobs`` into ``buffer[row]`` (and ``raw[row]``).
+
+    Returns the failures and whether every decoded image was exact 8-bit data.
+    """
     failures = []
+    exact8 = True
     for row, ref in jobs:
         try:
-            _decode(ref, source_set, f, buffer[row].reshape(shape))
+            exact8 &= _decode(ref, source_set, f, buffer[row].reshape(shape),
+                              None if raw is None else raw[row].reshape(shape))
         except _DecodeFailure as failure:
             failures.append((row, failure.reason))
-    return failures
+    return failures, exact8
 
 
 def iter_blocks(source_set: SourceSet, *, block_size: int = 64, downscale: int = 1,
                 workers: int = 2,
-                cancel: Callable[[], bool] | None = None) -> Iterator[Block]:
+                cancel: Callable[[], bool] | None = None,
+                keep_raw: bool = False) -> Iterator[Block]:
     """Decode the collection in blocks of columns, one block ahead of the caller.
 
     Parameters
@@ -326,6 +353,9 @@ def iter_blocks(source_set: SourceSet, *, block_size: int = 64, downscale: int =
         iteration ends, is cancelled or the generator is closed.
     cancel : callable() -> bool, optional
         Checked before each block; when it returns True the iteration stops (no exception).
+    keep_raw : bool, default False
+        Also hand out the 8-bit stored values of exact 8-bit blocks (``Block.raw8``), copied
+        by the decode threads; used to cache blocks compactly.
 
     Returns
     -------
@@ -351,12 +381,13 @@ def iter_blocks(source_set: SourceSet, *, block_size: int = 64, downscale: int =
     workers = check_int("workers", workers, minimum=1)
     if cancel is not None and not callable(cancel):
         raise TypeError(f"cancel must be callable or None, got {type(cancel).__name__}")
-    return _generate_blocks(source_set, block_size, int(downscale), workers, cancel, shape)
+    return _generate_blocks(source_set, block_size, int(downscale), workers, cancel, shape,
+                            bool(keep_raw))
 
 
 def _generate_blocks(source_set: SourceSet, block_size: int, f: int, workers: int,
                      cancel: Callable[[], bool] | None,
-                     shape: tuple[int, int, int]) -> Iterator[Block]:
+                     shape: tuple[int, int, int], keep_raw: bool = False) -> Iterator[Block]:
     images = source_set.images
     n = len(images)
     pixels = math.prod(shape)
@@ -365,20 +396,25 @@ def _generate_blocks(source_set: SourceSet, block_size: int, f: int, workers: in
     def submit(start: int):
         stop = min(start + block_size, n)
         buffer = np.empty((stop - start, pixels), dtype=np.float32)
+        raw = np.empty((stop - start, pixels), dtype=np.uint8) if keep_raw else None
         jobs = [(row, images[start + row]) for row in range(stop - start)]
         n_chunks = min(workers, len(jobs))
         step = -(-len(jobs) // n_chunks)
         futures: list[Future] = [
-            executor.submit(_decode_chunk, jobs[i:i + step], source_set, f, buffer, shape)
+            executor.submit(_decode_chunk, jobs[i:i + step], source_set, f, buffer, shape, raw)
             for i in range(0, len(jobs), step)]
-        return start, stop, buffer, futures
+        return start, stop, buffer, raw, futures
 
     def collect(pending) -> Block:
-        start, stop, buffer, futures = pending
-        failures = sorted(item for fut in futures for item in fut.result())
+        start, stop, buffer, raw, futures = pending
+        results = [fut.result() for fut in futures]
+        failures = sorted(item for chunk, _ in results for item in chunk)
+        exact8 = all(flag for _, flag in results)
+        if not exact8:
+            raw = None
         if not failures:
             return Block(start=start, indices=np.arange(start, stop, dtype=np.int64),
-                         data=buffer.T, problems=())
+                         data=buffer.T, problems=(), exact8=exact8, raw8=raw)
         failed = {row for row, _ in failures}
         ok = np.array([row for row in range(stop - start) if row not in failed], dtype=np.int64)
         problems = tuple(
@@ -387,7 +423,10 @@ def _generate_blocks(source_set: SourceSet, block_size: int, f: int, workers: in
             for row, reason in failures)
         kept = np.ascontiguousarray(buffer[ok]) if ok.size else np.empty((0, pixels),
                                                                         np.float32)
-        return Block(start=start, indices=ok + start, data=kept.T, problems=problems)
+        if raw is not None:
+            raw = np.ascontiguousarray(raw[ok])
+        return Block(start=start, indices=ok + start, data=kept.T, problems=problems,
+                     exact8=exact8, raw8=raw)
 
     pending = None
     try:
@@ -404,6 +443,6 @@ def _generate_blocks(source_set: SourceSet, block_size: int, f: int, workers: in
             yield collect(current)
     finally:
         if pending is not None:
-            for fut in pending[3]:
+            for fut in pending[4]:
                 fut.cancel()
         executor.shutdown(wait=True, cancel_futures=True)

@@ -40,12 +40,15 @@ def project_block(basis: np.ndarray, mean: np.ndarray, block: np.ndarray):
     centred_energy : ndarray, shape (m,), float64
         ``||x - mean||**2`` of each column.
     """
-    block = np.asarray(block, dtype=np.float32)
-    centred = block - np.asarray(mean, dtype=np.float32)[:, None]
-    w = basis.T @ centred
-    rem = centred - basis @ w
-    residual = np.einsum("ij,ij->j", rem, rem, dtype=np.float64)
-    energy = np.einsum("ij,ij->j", centred, centred, dtype=np.float64)
+    # one row per image (C order), so that the product and the subtraction below share a layout
+    rows = np.ascontiguousarray(np.asarray(block).T, dtype=np.float32)     # m x pixels
+    centred = rows - np.asarray(mean, dtype=np.float32)
+    basis = np.asarray(basis, dtype=np.float32)
+    wt = centred @ basis                                                   # m x q
+    energy = np.einsum("ij,ij->i", centred, centred, dtype=np.float64)
+    centred -= wt @ basis.T                                                # now the remainder
+    residual = np.einsum("ij,ij->i", centred, centred, dtype=np.float64)
+    w = wt.T
     return w.astype(np.float64), residual, energy
 
 
