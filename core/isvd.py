@@ -7,14 +7,21 @@ with mean ``mu_B`` joins a model of ``n`` images with mean ``mu`` by appending t
 and one extra column ``sqrt(n m / (n + m)) (mu_B - mu)`` that carries the scatter added by the
 shift of the mean.
 
-Each update:
+Each update (all pixel-sized products in float32 on row-major arrays, one row per image or
+direction; small matrices in float64):
 
-1. projects the new columns onto the current basis twice (classical Gram-Schmidt, "twice is
-   enough"), and orthonormalises the remainder through an eigendecomposition of its small Gram
-   matrix, done twice as well (a Cholesky-QR2-like scheme that stays in float32 for the large
-   products and never upcasts the pixel-sized arrays);
-2. takes the SVD of the small core matrix in float64;
-3. rotates and truncates to ``rank + oversample`` internal directions.
+1. projects the new columns onto the current basis, a second time ("twice is enough") when
+   the first left a component float32 cannot ignore;
+2. finds orthonormal directions of the remainder from one eigendecomposition of its small
+   Gram matrix, without forming them: only the combination that survives the truncation is
+   computed;
+3. takes the left singular vectors of the small core matrix (eigendecomposition of
+   ``core core^T``) and truncates to ``rank + oversample`` internal directions;
+4. re-orthonormalises the new basis while keeping the decomposition consistent (one
+   float32 Gram pass leaves the new directions orthogonal only to about eps * condition): with
+   ``C = (B^T B)^(1/2)`` the data ``B W = (B C^-1)(C W)``, and a small SVD of ``C diag(s)``
+   gives the rotated basis, singular values and coordinates (a Cholesky-QR2-like correction
+   on k + oversample columns instead of on the whole remainder).
 
 Weights of all images seen so far are kept without touching every old column on every block:
 each block moves every old image by the same affine map (a rotation plus the shift of the mean),

@@ -28,7 +28,7 @@ from .scoring import ProjectionAccumulator, project_block, rayleigh_ritz
 from .sources import Problem, SourceSet, scan_sources
 
 __all__ = ["AnalysisOptions", "Progress", "AnalysisResult", "scan", "analyze", "update_analysis",
-           "load_analysis_image", "project_images", "version"]
+           "load_analysis_image", "project_images", "block_size_for", "version"]
 
 
 def version() -> str:
@@ -56,7 +56,8 @@ class AnalysisOptions:
         Resize images of another size to the reference size instead of skipping them.
     block_size : int
         Images per streaming update (default 128; 64-128 is the measured sweet spot, 128
-        measured faster here for both 128x128 gray and 256x256 RGB).
+        measured faster here for both 128x128 gray and 256x256 RGB). For large images it is
+        lowered so that one decoded block stays within 256 MB (see :func:`block_size_for`).
     oversample : int
         Extra directions kept internally to hold accuracy of the reported ones.
     refine : bool
@@ -163,6 +164,22 @@ class _Clock:
         rate = done / elapsed if elapsed > 0 else 0.0
         left = (self.total - done) / rate if rate > 0 else None
         self.progress(Progress(self.stage, done, self.total, elapsed, rate, left))
+
+
+# Largest float32 block the passes decode at once. Several block-sized arrays are alive during
+# an update (the block, the next one being decoded, the remainder, products), so this bounds the
+# peak memory at a few times the figure for any image size. Our own choice, no published source.
+_BLOCK_BYTES = 256 * 2 ** 20
+
+
+def block_size_for(options: AnalysisOptions, n_pixels: int, minimum: int = 1) -> int:
+    """Return the images per block used for images of ``n_pixels`` values.
+
+    ``max(minimum, options.block_size)``, lowered so that a float32 block stays within 256 MB
+    (never below 8 images, the update slows down sharply with thinner blocks).
+    """
+    cap = max(8, _BLOCK_BYTES // (4 * max(int(n_pixels), 1)))
+    return max(1, min(max(options.block_size, minimum), cap))
 
 
 def decode_workers(source_set: SourceSet, options: AnalysisOptions) -> int:
@@ -284,7 +301,7 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
         clock = _Clock("learn", source_set.n_images, progress)
         last_partial = -np.inf
         attempted = 0
-        for block in iter_blocks(source_set, block_size=options.block_size,
+        for block in iter_blocks(source_set, block_size=block_size_for(options, pixels),
                                  downscale=options.downscale, workers=workers,
                                  cancel=cancel, keep_raw=True):
             problems.extend(block.problems)
@@ -355,7 +372,8 @@ def _score_pass(engine, used: SourceSet, options, workers, progress, cancel,
                 if cancel():
                     return acc
         used = dataclasses.replace(used, images=used.images[acc.done:])
-    for block in iter_blocks(used, block_size=max(options.block_size, 128),
+    pixels = int(np.prod(analysis_shape(used, options.downscale)))
+    for block in iter_blocks(used, block_size=block_size_for(options, pixels, minimum=128),
                              downscale=options.downscale, workers=workers, cancel=cancel):
         if block.problems:
             bad = block.problems[0]
@@ -541,7 +559,7 @@ def update_analysis(decomposition: Decomposition, sources, options: AnalysisOpti
     with _blas_limit(options.blas_threads):
         clock = _Clock("learn", new_set.n_images, progress)
         attempted = 0
-        for block in iter_blocks(new_set, block_size=options.block_size,
+        for block in iter_blocks(new_set, block_size=block_size_for(options, engine.n_pixels),
                                  downscale=options.downscale, workers=workers, cancel=cancel):
             problems.extend(block.problems)
             attempted = block.start + len(block.indices) + len(block.problems)

@@ -197,3 +197,26 @@ def test_options_validation():
         AnalysisOptions(recursive="yes")
     opts = AnalysisOptions(rank=7, color="rgb")
     assert AnalysisOptions.from_dict(opts.to_dict() | {"unknown": 1}) == opts
+
+
+def test_block_size_is_capped_for_large_images(tmp_path, monkeypatch):
+    from modescope.core import pipeline
+    from modescope.core.pipeline import block_size_for
+    opts = AnalysisOptions(block_size=128)
+    # 128x128 gray: 128 images of 64 KB fit the 256 MB block budget
+    assert block_size_for(opts, 128 * 128) == 128
+    # 1024x1024 RGB: 12 MB per image, so 21 images per block (256 MB / 12 MB)
+    assert block_size_for(opts, 1024 * 1024 * 3) == 21
+    # never below 8 images, and the scoring pass's minimum applies below the cap
+    assert block_size_for(opts, 8192 * 8192 * 3) == 8
+    assert block_size_for(AnalysisOptions(block_size=16), 64, minimum=128) == 128
+    # the passes follow the cap: a budget of 10 images' worth of 6x5 gray gives blocks of 10
+    rng = np.random.default_rng(4)
+    write_pngs(tmp_path / "imgs", [rng.integers(0, 256, (6, 5), dtype=np.uint8)
+                                   for _ in range(35)])
+    monkeypatch.setattr(pipeline, "_BLOCK_BYTES", 10 * 30 * 4)
+    seen = []
+    result = analyze([tmp_path / "imgs"], AnalysisOptions(rank=3, block_size=128),
+                     progress=lambda p: seen.append((p.stage, p.done)))
+    assert result.decomposition.exact
+    assert [d for s, d in seen if s == "learn"] == [10, 20, 30, 35]
