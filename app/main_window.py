@@ -384,7 +384,7 @@ class MainWindow(QMainWindow):
         self.state.rankChanged.connect(self._on_state_changed)
         refit = getattr(self.views.get("outliersDock"), "refitRequested", None)
         if refit is not None:
-            refit.connect(self.start_analysis)   # (files not excluded, StoredOptions)
+            refit.connect(self.refit_analysis)   # ((path, page) not excluded, StoredOptions)
         self.cancel_action.setEnabled(False)
 
     def _restore_window(self) -> None:
@@ -600,25 +600,59 @@ class MainWindow(QMainWindow):
             self.ingest.set_sources(sources)
         self.settings.set_last_folders(sources)
         self.settings.set_options(options)
-        self.current_file = None
-        self.last_result = None
-        self.state.set_decomposition(None)
-        self._run_started = time.monotonic()
         # reuse the pane's finished scan of the same sources and options; otherwise stop the
         # pane's scan so the two do not compete, and let the run's scan fill the pane later
         scanned = self.ingest.scanned_for(sources, options)
         if scanned is None:
             self.ingest.stop_scan()
-        self._run_key = (list(sources), options)
-        self.runner.start(scanned if scanned is not None else sources, analysis_options)
         names = ", ".join(os.path.basename(s.rstrip(os.sep)) or s for s in sources[:2])
         more = f" and {len(sources) - 2} more" if len(sources) > 2 else ""
-        self.setWindowTitle(f"Modescope — {names}{more}")
+        self._begin_run(scanned if scanned is not None else sources, analysis_options,
+                        f"Modescope — {names}{more}", run_key=(list(sources), options))
+        return True
+
+    def refit_analysis(self, images: Sequence, options: StoredOptions) -> bool:
+        """Analyse again only ``images`` ((path, page) pairs), for instance the images of
+        the current analysis not marked excluded.
+
+        The Sources pane and the remembered folders are left as they are: a refit is a
+        variant of the current collection, not a new one. Pages of multi-page files that are
+        not listed are left out.
+
+        Returns
+        -------
+        bool
+            False (with a message) when there is nothing to analyse or the options are not
+            valid.
+        """
+        pairs = [(os.fspath(p), int(g)) for p, g in images]
+        if not pairs:
+            self._show_error("Nothing to analyse", "Every image is marked excluded.")
+            return False
+        try:
+            analysis_options = make_analysis_options(options)
+        except (TypeError, ValueError) as exc:
+            self._show_error("Options not valid", str(exc))
+            return False
+        files = list(dict.fromkeys(p for p, _ in pairs))
+        self.ingest.stop_scan()
+        self._begin_run(files, analysis_options,
+                        f"Modescope — refit of {len(pairs):,} images", only=pairs)
+        return True
+
+    def _begin_run(self, sources, analysis_options, title: str, run_key=None,
+                   only=None) -> None:
+        self.current_file = None
+        self.last_result = None
+        self.state.set_decomposition(None)
+        self._run_started = time.monotonic()
+        self._run_key = run_key
+        self.runner.start(sources, analysis_options, only=only)
+        self.setWindowTitle(title)
         self.progress_bar.setRange(0, 0)
         self.progress_label.setText("Starting…")
         self.progress_bar.show()
         self.progress_label.show()
-        return True
 
     @Slot()
     def cancel_analysis(self) -> None:

@@ -398,9 +398,9 @@ class OutlierView(QWidget):
     Signals
     -------
     refitRequested(object, object)
-        ``(files, options)``: the source files of the images not marked excluded (list of str,
-        column order) and the :class:`~modescope.app.settings.StoredOptions` of the analysis, for
-        the main window to start a new analysis of them.
+        ``(images, options)``: the images not marked excluded as ``(path, page)`` pairs in
+        column order, and the :class:`~modescope.app.settings.StoredOptions` of the analysis,
+        for the main window to start a new analysis of them.
 
     Attributes
     ----------
@@ -1153,7 +1153,7 @@ class OutlierView(QWidget):
 
     @Slot()
     def refit(self) -> bool:
-        """Ask, then emit :attr:`refitRequested` with the files not marked excluded.
+        """Ask, then emit :attr:`refitRequested` with the images not marked excluded.
 
         Returns
         -------
@@ -1174,21 +1174,13 @@ class OutlierView(QWidget):
         except (TypeError, ValueError) as exc:
             self._warn("Cannot refit", str(exc))
             return False
-        files = list(dict.fromkeys(p for p, _ in remaining))
-        split = sorted({d.paths[int(i)] for i in excluded}.intersection(files))
-        if split:
-            self._warn("Cannot refit",
-                       f"{len(split)} multi-page file(s) have some pages excluded and others "
-                       f"kept, for example {split[0]}. The workbench analyses whole files: "
-                       "mark every page of such a file the same way (all excluded or none).")
-            return False
         text = (f"Analyse again the {len(remaining):,} images not marked excluded "
                 f"({excluded.size:,} excluded), with the same options?\n\nThe new analysis "
                 "replaces the current one and its marks: save the current one first (File > "
                 "Save analysis) to keep them. The source images are not moved or deleted.")
         if not self.confirm("Refit without excluded images", text):
             return False
-        self.refitRequested.emit(files, options)
+        self.refitRequested.emit(list(remaining), options)
         return True
 
     def _start_dir(self) -> str:

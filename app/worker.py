@@ -87,6 +87,8 @@ class AnalysisWorker(QObject):
         pipeline's, looked up when the run starts.
     partial_interval : float, default PARTIAL_INTERVAL
         Least number of seconds between two ``partial`` signals.
+    only : iterable of (path, page), optional
+        Analyse only these images of the sources (passed to ``pipeline.analyze``).
     """
 
     progress = Signal(object)
@@ -98,7 +100,7 @@ class AnalysisWorker(QObject):
 
     def __init__(self, sources: Sequence[str] | Any, options: Any, *,
                  analyze: Callable[..., Any] | None = None,
-                 partial_interval: float = PARTIAL_INTERVAL):
+                 partial_interval: float = PARTIAL_INTERVAL, only: Any = None):
         super().__init__()
         if analyze is not None and not callable(analyze):
             raise TypeError(f"analyze must be callable or None, got {type(analyze).__name__}")
@@ -108,6 +110,7 @@ class AnalysisWorker(QObject):
         self._options = options
         self._analyze = analyze
         self._interval = float(partial_interval)
+        self._only = None if only is None else list(only)
         self._cancel = threading.Event()
         self._last_partial_time = -float("inf")
         self._pending = None
@@ -170,8 +173,9 @@ class AnalysisWorker(QObject):
                 self._emit_end(self.cancelled, None)
                 return
             analyze = self._analyze if self._analyze is not None else _default_analyze()
+            extra = {} if self._only is None else {"only": self._only}
             result = analyze(self._sources, self._options, progress=self._on_progress,
-                             cancel=self._cancel.is_set, on_partial=self._on_partial)
+                             cancel=self._cancel.is_set, on_partial=self._on_partial, **extra)
         except AnalysisCancelled:
             self._flush_partial()
             self._emit_end(self.cancelled, None)
@@ -248,13 +252,16 @@ class AnalysisRunner(QObject):
         """Return True while a run has not ended."""
         return self._worker is not None and not self._worker.is_done()
 
-    def start(self, sources: Sequence[str] | Any, options: Any) -> AnalysisWorker:
+    def start(self, sources: Sequence[str] | Any, options: Any,
+              only: Any = None) -> AnalysisWorker:
         """Start a new run; a run still going is cancelled first.
 
         Parameters
         ----------
         sources : sequence of str, or pipeline.SourceSet
         options : pipeline.AnalysisOptions
+        only : iterable of (path, page), optional
+            Analyse only these images of the sources.
 
         Returns
         -------
@@ -271,7 +278,7 @@ class AnalysisRunner(QObject):
         if self._worker is not None:
             self._old_workers.append(self._worker)
         worker = AnalysisWorker(sources, options, analyze=self._analyze,
-                                partial_interval=self._interval)
+                                partial_interval=self._interval, only=only)
         worker.moveToThread(self._thread)
         worker.progress.connect(self._on_progress)
         worker.partial.connect(self._on_partial)

@@ -15,8 +15,6 @@ import sys
 import time
 from pathlib import Path
 
-import numpy as np
-
 from .errors import ModescopeError
 
 EXIT_OK, EXIT_UNUSABLE, EXIT_USAGE = 0, 1, 2

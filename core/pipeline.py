@@ -14,7 +14,7 @@ import os
 import time
 from dataclasses import dataclass
 from importlib import metadata as _metadata
-from typing import Callable, Sequence
+from typing import Callable
 
 import numpy as np
 
@@ -241,7 +241,8 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
             progress: Callable[[Progress], None] | None = None,
             cancel: Callable[[], bool] | None = None,
             on_partial: Callable[[Decomposition], None] | None = None,
-            partial_interval: float = 0.0) -> AnalysisResult:
+            partial_interval: float = 0.0,
+            only=None) -> AnalysisResult:
     """Analyse a collection: stream it through the SVD engine, then score every image exactly.
 
     Parameters
@@ -258,6 +259,10 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
         every ``partial_interval`` seconds, and always after the first block).
     partial_interval : float, optional
         Minimum seconds between two snapshots handed to ``on_partial``.
+    only : iterable of (path, page), optional
+        Analyse only these images of the scanned sources (for instance the pages of a
+        multi-page file that were not excluded). Paths are compared as absolute, case-normalised
+        paths; pages count from 0.
 
     Returns
     -------
@@ -288,6 +293,8 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
             empty = SourceSet(images=(), reference_size=(0, 0), color=options.color,
                               resize_mismatched=options.resize_mismatched, problems=())
             return AnalysisResult(None, empty, (), True)
+    if only is not None:
+        source_set = _select(source_set, only)
     shape = analysis_shape(source_set, options.downscale)
     pixels = int(np.prod(shape))
     workers = decode_workers(source_set, options)
@@ -351,6 +358,22 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
             pages=np.array([source_set.images[i].page for i in kept], dtype=np.int32),
             residual=ritz.residual, exact=True, metadata=meta)
     return AnalysisResult(decomposition, source_set, tuple(problems), False)
+
+
+def _select(source_set: SourceSet, only) -> SourceSet:
+    """Keep the images of ``source_set`` listed in ``only`` ((path, page) pairs)."""
+    def key(path, page):
+        return os.path.normcase(os.path.abspath(os.fspath(path))), int(page)
+    try:
+        wanted = {key(path, page) for path, page in only}
+    except (TypeError, ValueError):
+        raise TypeError("only must be an iterable of (path, page) pairs") from None
+    images = tuple(r for r in source_set.images if key(r.path, r.page) in wanted)
+    if not images:
+        from .errors import NoUsableImagesError
+        raise NoUsableImagesError(f"none of the {len(wanted)} images asked for was found "
+                                  f"among the {source_set.n_images} images of the sources")
+    return dataclasses.replace(source_set, images=images)
 
 
 def _score_pass(engine, used: SourceSet, options, workers, progress, cancel,

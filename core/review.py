@@ -17,9 +17,7 @@ excluding an image only leaves it out of the next analysis.
 from __future__ import annotations
 
 import csv
-import dataclasses
 import io
-import os
 from pathlib import Path
 from typing import Callable
 
@@ -325,18 +323,14 @@ def remaining_sources(decomposition: Decomposition) -> list[tuple[str, int]]:
     return [(d.paths[int(i)], int(d.pages[int(i)])) for i in keep]
 
 
-def _file_key(path) -> str:
-    return os.path.normcase(os.path.abspath(os.fspath(path)))
-
-
 def refit_without_excluded(decomposition: Decomposition, options=None,
                            progress: Callable | None = None, cancel: Callable | None = None):
     """Analyse the collection again without the images marked excluded.
 
     Calls :func:`modescope.core.pipeline.analyze` on the remaining images. When no file has
     only some of its pages excluded, the remaining files are passed as a list of paths; else
-    they are scanned and the excluded pages are removed from the scanned set. The source files
-    are only read.
+    the remaining (path, page) pairs are passed as ``only``, so the excluded pages are left
+    out. The source files are only read.
 
     Parameters
     ----------
@@ -376,16 +370,7 @@ def refit_without_excluded(decomposition: Decomposition, options=None,
     remaining = remaining_sources(d)
     kept_paths = list(dict.fromkeys(p for p, _ in remaining))
     excluded_files = {d.paths[int(i)] for i in excluded_indices(d)}
-    partial = excluded_files.intersection(kept_paths)
-    if not partial:
-        sources = kept_paths
-    else:
-        source_set = pipeline.scan(kept_paths, options)
-        wanted = {(_file_key(p), page) for p, page in remaining}
-        images = tuple(ref for ref in source_set.images
-                       if (_file_key(ref.path), int(ref.page)) in wanted)
-        if not images:
-            raise NoUsableImagesError("none of the remaining images was found again when "
-                                      f"scanning {len(kept_paths)} files")
-        sources = dataclasses.replace(source_set, images=images)
-    return pipeline.analyze(sources, options, progress=progress, cancel=cancel)
+    # whole files are passed as paths; when a file has only some pages excluded, the analysis
+    # is told which pages to keep
+    only = remaining if excluded_files.intersection(kept_paths) else None
+    return pipeline.analyze(kept_paths, options, progress=progress, cancel=cancel, only=only)

@@ -9,6 +9,7 @@ chi-square for Q).
 from __future__ import annotations
 
 import csv
+import os
 
 import numpy as np
 import pytest
@@ -491,8 +492,8 @@ def test_refit_request_lists_remaining_files(qtbot, view, state, dec, monkeypatc
     _answer(monkeypatch, yes=True)
     with qtbot.waitSignal(view.refitRequested, timeout=1000) as blocker:
         assert view.refit() is True
-    files, options = blocker.args
-    assert files == [dec.paths[i] for i in range(N) if i not in (0, 5, BAD[2])]
+    images, options = blocker.args
+    assert images == [(dec.paths[i], 0) for i in range(N) if i not in (0, 5, BAD[2])]
     assert options == StoredOptions()
 
 
@@ -518,8 +519,40 @@ def test_refit_without_excluded_runs_on_the_rest(qtbot, window, small_collection
     new = blocker.args[0].decomposition
     assert new.n_images == 40 - 3
     assert set(new.paths) == remaining
+    # a refit is a variant of the collection: the Sources list keeps the folder
+    assert w.ingest.sources() == [os.path.abspath(str(small_collection))]
     assert w.state.decomposition is new
     assert new.metadata["options"]["rank"] == 4                  # same options as before
     v.flush()
     assert v.model.rowCount() == 37
     assert not np.any(new.marks)
+
+
+def test_refit_leaves_out_single_pages_of_a_multi_page_file(qtbot, window, tmp_path,
+                                                            monkeypatch):
+    from PIL import Image
+    from modescope.core import demo
+    w = window
+    folder = tmp_path / "mixed"
+    demo.write_collection(folder, 12, size=(24, 32), seed=5, fmt="png")
+    frames = [Image.fromarray(demo.render_frame(i, n_frames=12, size=(24, 32), seed=9))
+              for i in range(4)]
+    stack = folder / "zz_stack.tif"
+    frames[0].save(stack, save_all=True, append_images=frames[1:])
+    with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT):
+        assert w.start_analysis([str(folder)], StoredOptions(rank=3))
+    first = w.state.decomposition
+    assert first.n_images == 16
+    pages = [i for i, p in enumerate(first.paths) if p.endswith("zz_stack.tif")]
+    assert [int(first.pages[i]) for i in pages] == [0, 1, 2, 3]
+    w.state.set_marks([pages[1], pages[2]], review.EXCLUDE)     # two pages of four
+    _answer(monkeypatch, yes=True)
+    v = w.views["outliersDock"]
+    v.flush()                                    # scores of the finished analysis are shown
+    with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT) as blocker:
+        assert v.refit() is True
+    new = blocker.args[0].decomposition
+    assert new.n_images == 14
+    kept = [(p, int(g)) for p, g in zip(new.paths, new.pages) if p.endswith("zz_stack.tif")]
+    assert [g for _, g in kept] == [0, 3]
+    assert w.ingest.sources() == [os.path.abspath(str(folder))]

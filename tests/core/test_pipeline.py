@@ -220,3 +220,20 @@ def test_block_size_is_capped_for_large_images(tmp_path, monkeypatch):
                      progress=lambda p: seen.append((p.stage, p.done)))
     assert result.decomposition.exact
     assert [d for s, d in seen if s == "learn"] == [10, 20, 30, 35]
+
+
+def test_only_analyses_the_listed_images(tmp_path):
+    from modescope.core.errors import NoUsableImagesError
+    rng = np.random.default_rng(8)
+    paths = write_pngs(tmp_path / "imgs", [rng.integers(0, 256, (6, 5), dtype=np.uint8)
+                                           for _ in range(12)])
+    wanted = [(str(paths[i]), 0) for i in (1, 4, 7, 8, 11)]
+    d = analyze([tmp_path / "imgs"], AnalysisOptions(rank=3), only=wanted).decomposition
+    assert list(d.paths) == [p for p, _ in wanted]
+    # the same as analysing those files directly
+    ref = analyze([p for p, _ in wanted], AnalysisOptions(rank=3)).decomposition
+    np.testing.assert_allclose(d.singular_values, ref.singular_values, rtol=1e-6)
+    with pytest.raises(NoUsableImagesError, match="none of the 1 images asked for"):
+        analyze([tmp_path / "imgs"], AnalysisOptions(rank=3), only=[(str(paths[0]), 3)])
+    with pytest.raises(TypeError, match="pairs"):
+        analyze([tmp_path / "imgs"], AnalysisOptions(rank=3), only=[str(paths[0])])
