@@ -424,11 +424,34 @@ class IngestPane(QWidget):
             return self.source_set
         return None
 
-    def stop_scan(self) -> None:
-        """Drop a pending or running scan (the analysis scans for itself)."""
+    def stop_scan(self, run_scans: bool = False) -> None:
+        """Drop a pending or running scan.
+
+        Parameters
+        ----------
+        run_scans : bool, default False
+            True when an analysis scans the sources itself: the summary says so (instead of an
+            empty pane's invitation) until :meth:`adopt` shows the run's scan.
+        """
         self._scan_timer.stop()
         self._generation += 1
         self._scan_cancel.set()
+        if run_scans:
+            self.source_set = None
+            self._scanned_key = None
+            self.summary_label.setText("The analysis is reading the files…")
+
+    def show_run_scan(self, done: int, total: int) -> None:
+        """Show the progress of the scan an analysis makes for itself."""
+        if self.source_set is None:
+            self.summary_label.setText(f"The analysis is reading the files: {int(done):,} of "
+                                       f"{int(total):,} looked at…")
+
+    def run_scan_ended(self, message: str = "") -> None:
+        """An analysis that scanned for itself ended without a scan to show."""
+        if self.source_set is None:
+            self.summary_label.setText(message or "Not scanned: the analysis stopped before "
+                                                  "it had read every file. Start it again.")
 
     def adopt(self, source_set, sources, options) -> None:
         """Show a scan made elsewhere (by an analysis run) as this pane's result."""

@@ -604,7 +604,7 @@ class MainWindow(QMainWindow):
         # pane's scan so the two do not compete, and let the run's scan fill the pane later
         scanned = self.ingest.scanned_for(sources, options)
         if scanned is None:
-            self.ingest.stop_scan()
+            self.ingest.stop_scan(run_scans=True)
         names = ", ".join(os.path.basename(s.rstrip(os.sep)) or s for s in sources[:2])
         more = f" and {len(sources) - 2} more" if len(sources) > 2 else ""
         self._begin_run(scanned if scanned is not None else sources, analysis_options,
@@ -675,6 +675,8 @@ class MainWindow(QMainWindow):
         total = max(int(getattr(p, "total", 0)), 0)
         done = max(int(getattr(p, "done", 0)), 0)
         stage = _STAGES.get(getattr(p, "stage", ""), str(getattr(p, "stage", "")))
+        if getattr(p, "stage", "") == "scan" and getattr(self, "_run_key", None) is not None:
+            self.ingest.show_run_scan(done, total)
         if total:
             self.progress_bar.setRange(0, total)
             self.progress_bar.setValue(min(done, total))
@@ -713,6 +715,12 @@ class MainWindow(QMainWindow):
     def _on_cancelled(self, result) -> None:
         self.last_result = result
         d = None if result is None else result.decomposition
+        key = getattr(self, "_run_key", None)
+        if key is not None and self.ingest.scanned_for(*key) is None:
+            if result is not None and result.source_set.n_images:
+                self.ingest.adopt(result.source_set, *key)   # the scan itself was complete
+            else:
+                self.ingest.run_scan_ended()
         if result is not None:
             self.ingest.set_problems(result.problems)
         if d is not None:
@@ -727,6 +735,9 @@ class MainWindow(QMainWindow):
     @Slot(str)
     def _on_failed(self, message: str) -> None:
         self.last_result = None
+        key = getattr(self, "_run_key", None)
+        if key is not None and self.ingest.scanned_for(*key) is None:
+            self.ingest.run_scan_ended(f"Not analysed: {message}")
         self.statusBar().showMessage("The analysis failed.", 10000)
         self._show_error("The analysis failed", message)
 

@@ -21,6 +21,7 @@ from modescope.app.main_window import (CAUTIONS, MainWindow, memory_in_use,
                                        sample_images_dir)
 from modescope.app.settings import StoredOptions
 from modescope.core import model_file, pipeline
+from modescope.core.sources import SourceSet
 
 TIMEOUT = 60000
 
@@ -450,3 +451,39 @@ def test_open_sample_analyses_bundled_images(qtbot, window):
         assert window.open_sample()
     assert blocker.args[0].decomposition.n_images == len(frames)
     assert window.ingest.sources() == [str(folder)]
+
+
+# ----- the sources pane while a run scans for itself --------------------------------------------
+def test_pane_reports_the_runs_own_scan(qtbot, window, small_collection):
+    w = window
+    seen = []
+    w.runner.progress.connect(lambda p: seen.append(w.ingest.summary_label.text())
+                              if p.stage == "scan" else None)
+    with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT):
+        assert w.start_analysis([str(small_collection)], StoredOptions(rank=3))
+        # started straight away: no invitation to add a folder while the run reads the files
+        assert w.ingest.summary_label.text().startswith("The analysis is reading the files")
+    assert seen and all(t.startswith("The analysis is reading the files") for t in seen)
+    assert "40 images of 48 × 64 pixels" in w.ingest.summary_label.text()
+
+
+def test_pane_after_a_failed_or_scan_cancelled_run(qtbot, ini_settings, broken_folder):
+    w = MainWindow(ini_settings, confirm_dialogs=False)
+    qtbot.addWidget(w)
+    w._show_error = lambda title, text: None          # no modal box in the test
+    with qtbot.waitSignal(w.runner.failed, timeout=TIMEOUT):
+        assert w.start_analysis([str(broken_folder)], StoredOptions(rank=3))
+    assert w.ingest.summary_label.text().startswith("Not analysed: no usable image")
+    assert "frame_0.png" in w.ingest.summary_label.text()      # the file and its problem
+
+    def cancelled_in_scan(sources, options, *, progress, cancel, on_partial):
+        progress(pipeline.Progress("scan", 3, 10, 0.1, 30.0, 0.2))
+        empty = SourceSet(images=(), reference_size=(0, 0), color="gray",
+                          resize_mismatched=False, problems=())
+        return pipeline.AnalysisResult(None, empty, (), True)
+
+    w.runner._analyze = cancelled_in_scan
+    with qtbot.waitSignal(w.runner.cancelled, timeout=TIMEOUT):
+        assert w.start_analysis([str(broken_folder) + "_other"], StoredOptions(rank=3))
+    assert w.ingest.summary_label.text().startswith("Not scanned: the analysis stopped")
+    w.close()
