@@ -15,8 +15,9 @@ the work to :func:`modescope.core.export.plan_export` and
   report summary is shown at the end;
 * closing the dialog during an export stops it and waits (at most :data:`CLOSE_TIMEOUT_MS`).
 
-The destination folder is kept for the rest of the session (the settings have no entry for
-it); the folder browser starts in the folder file dialogs last opened in.
+The destination folder is kept for the rest of the session and, once an export has started,
+in the settings for the next session (a remembered folder that no longer exists is not offered);
+the folder browser starts in the folder file dialogs last opened in.
 """
 
 from __future__ import annotations
@@ -209,7 +210,8 @@ class ExportDialog(QDialog):
     state : AppState
         The workbench state; the dialog exports ``state.decomposition``.
     settings : Settings, optional
-        Used read-only for the folder the folder browser starts in.
+        Gives the folder the folder browser starts in and remembers the destination of the
+        last export started.
     parent : QWidget, optional
 
     Signals
@@ -247,7 +249,10 @@ class ExportDialog(QDialog):
         self._sized = False
         self._build()
         self._wire()
-        self.set_folder(_session_folder)
+        folder = _session_folder
+        if not folder and settings is not None and os.path.isdir(settings.export_folder()):
+            folder = settings.export_folder()
+        self.set_folder(folder)
         self.sync_from_state(reset_rank=True)
 
     # ----- construction ------------------------------------------------------------------------
@@ -780,6 +785,8 @@ class ExportDialog(QDialog):
             return False
         self.last_plan = plan
         self.last_report = None
+        if self.settings is not None:
+            self.settings.set_export_folder(os.fspath(plan.folder))
         worker = ExportWorker(plan)
         thread = QThread()
         thread.setObjectName("modescope-export")

@@ -219,6 +219,15 @@ class Settings:
         """Remember the folder file dialogs open in."""
         self._store.setValue("dialogs/last_dir", os.fspath(path))
 
+    def export_folder(self) -> str:
+        """Return the folder the last export wrote into ("" when none)."""
+        value = self._store.value("export/folder", "")
+        return value if isinstance(value, str) else ""
+
+    def set_export_folder(self, path: str) -> None:
+        """Remember the folder an export writes into."""
+        self._store.setValue("export/folder", os.fspath(path))
+
     # ----- window ------------------------------------------------------------------------------
     def window_geometry(self) -> QByteArray:
         """Return the saved ``QMainWindow.saveGeometry()`` (empty when none)."""

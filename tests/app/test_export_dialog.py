@@ -447,3 +447,30 @@ def test_file_export_action(qtbot, ini_settings, gray_decomposition):
     assert not action.isEnabled()
     assert not dlg.export_button.isEnabled()
     assert "no analysis" in dlg.analysis_label.text()
+
+
+def test_destination_is_remembered_for_the_next_session(qtbot, ini_settings,
+                                                        gray_decomposition, out, monkeypatch):
+    from modescope.app import export_dialog
+    monkeypatch.setattr(export_dialog, "_session_folder", "")
+    state = AppState()
+    state.set_decomposition(gray_decomposition)
+    first = ExportDialog(state, ini_settings)
+    qtbot.addWidget(first)
+    assert first.folder() == ""                                 # nothing remembered yet
+    first.set_folder(str(out))
+    _tick(first, {"basis"})
+    report = _export(qtbot, first)
+    assert report.written and ini_settings.export_folder() == str(out)
+    first.close()
+    # a new session: the process-wide folder is gone, the settings still know it
+    monkeypatch.setattr(export_dialog, "_session_folder", "")
+    second = ExportDialog(state, ini_settings)
+    qtbot.addWidget(second)
+    assert second.folder() == str(out)
+    # a remembered folder that was deleted since is not offered
+    monkeypatch.setattr(export_dialog, "_session_folder", "")
+    ini_settings.set_export_folder(str(out / "gone"))
+    third = ExportDialog(state, ini_settings)
+    qtbot.addWidget(third)
+    assert third.folder() == ""
