@@ -171,7 +171,8 @@ class WeightsView(QWidget):
         self.bars_widget = pg.PlotWidget(self, background="w")
         self.bars_plot = self.bars_widget.getPlotItem()
         _style(self.bars_plot)
-        self.bars_plot.setLabel("bottom", "basis image")
+        # no axis title under the bars: the plot title says what the x axis counts, which
+        # leaves the short chart room for the zero tick and its neighbours
         self.bars_plot.setLabel("left", "weight")
         self.bars = pg.BarGraphItem(x=np.zeros(0), height=np.zeros(0), width=0.75,
                                     brush=QColor(120, 120, 120), pen=None)
@@ -362,7 +363,7 @@ class WeightsView(QWidget):
         if d is None or d.rank == 0 or not 0 <= i < d.n_images:
             self.sel_mark.setData(x=[], y=[])
             self.bars.setOpts(x=np.zeros(0), height=np.zeros(0))
-            self.bars_plot.setTitle("Weights of the selected image (none)", color="#222",
+            self.bars_plot.setTitle("Weights on each basis image: no image selected", color="#222",
                                     size="9pt")
             return
         a, b = self._modes(d)
@@ -372,9 +373,16 @@ class WeightsView(QWidget):
         brushes[a] = self._bar_brushes[1]
         if b != a:
             brushes[b] = self._bar_brushes[2]
-        self.bars.setOpts(x=np.arange(1, k + 1, dtype=np.float64),
-                          height=np.asarray(d.weights[:, i], dtype=np.float64), brushes=brushes)
-        self.bars_plot.setTitle(f"Weights of image {i + 1}", color="#222", size="9pt")
+        heights = np.asarray(d.weights[:, i], dtype=np.float64)
+        self.bars.setOpts(x=np.arange(1, k + 1, dtype=np.float64), height=heights,
+                          brushes=brushes)
+        # the range always holds 0 with a margin on both sides, so the zero tick and its label
+        # stay visible when every weight has the same sign
+        lo, hi = min(0.0, float(heights.min())), max(0.0, float(heights.max()))
+        margin = 0.20 * ((hi - lo) or 1.0)
+        self.bars_plot.setYRange(lo - margin, hi + margin, padding=0)
+        self.bars_plot.setTitle(f"Weights of image {i + 1} on each basis image", color="#222",
+                                size="9pt")
         name = d.paths[i] if d.paths else ""
         self.bars_widget.setToolTip(f"Weights of image {i + 1} {name} on each basis image (the "
                                     f"two modes of the weights plane in colour).")

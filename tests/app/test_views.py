@@ -340,6 +340,12 @@ def test_weights_click_point_and_bars(qtbot, state, gray):
     assert w.seq_line.value() == 8  # image number 8 = index 7
     sx, sy = w.sel_mark.getData()
     assert (sx[0], sy[0]) == pytest.approx((gray.weights[0, 7], gray.weights[1, 7]))
+    # the bar range holds 0 and every bar, with a margin of 20% of the span on both sides
+    lo, hi = w.bars_plot.viewRange()[1]
+    h = gray.weights[:, 7]
+    span = max(h.max(), 0) - min(h.min(), 0)
+    assert lo == pytest.approx(min(h.min(), 0) - 0.2 * span)
+    assert hi == pytest.approx(max(h.max(), 0) + 0.2 * span)
 
 
 def _box_mask(d, a, b, rect):
