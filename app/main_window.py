@@ -329,7 +329,10 @@ class MainWindow(QMainWindow):
         view_menu.addAction(self.rank_up_action)
         view_menu.addAction(self.rank_down_action)
         view_menu.addSeparator()
-        self.review_menu = view_menu.addMenu("Re&view")   # marks, refit, lists, duplicates
+        view_menu.addAction(self.reset_layout_action)
+
+        # marks, refit, lists, duplicates: the review work has its own menu
+        self.review_menu = bar.addMenu("&Review")
         for name in ("outliersDock", "duplicatesDock"):
             actions = getattr(self.views.get(name), "review_actions", None)
             if callable(actions):
@@ -342,8 +345,6 @@ class MainWindow(QMainWindow):
                         self.review_menu.addAction(a)
                         self.addAction(a)   # window-level shortcut (K, X, U)
         self.review_menu.setEnabled(not self.review_menu.isEmpty())
-        view_menu.addSeparator()
-        view_menu.addAction(self.reset_layout_action)
 
         help_menu = bar.addMenu("&Help")
         help_menu.addAction(self.about_action)

@@ -309,7 +309,7 @@ def test_about_shows_version_and_cautions(qtbot, window):
 
 def test_menus(window):
     titles = [a.text().replace("&", "") for a in window.menuBar().actions()]
-    assert titles == ["File", "View", "Help"]
+    assert titles == ["File", "View", "Review", "Help"]
     file_items = [a.text().replace("&", "") for a in window.menuBar().actions()[0].menu().actions()
                   if a.text()]
     for wanted in ("Add folder…", "Add files…", "Open analysis…", "Save analysis…",

@@ -389,7 +389,7 @@ def test_marks_survive_window_save_and_open(qtbot, window, dec, tmp_path):
     assert np.count_nonzero(marks) == 2
     v.flush()
     assert v.proxy.index(v.proxy_row(6), COL_MARK).data() == "exclude"
-    # the review actions are in the View menu and their keys do not clash
+    # the review actions are in the Review menu and their keys do not clash
     review_items = [a.text() for a in w.review_menu.actions() if a.text()]
     assert {"Keep", "Exclude", "Clear mark", "Refit without excluded…"} <= set(review_items)
     keys = [s.toString() for a in w.actions() for s in a.shortcuts() if not s.isEmpty()]
