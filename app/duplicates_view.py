@@ -490,7 +490,7 @@ class DuplicatesView(QWidget):
         n_groups = len(self.report.groups)
         text = (f"Mark {len(chosen):,} images as excluded: every image of the {n_groups:,} "
                 "group(s) except the first one?\n\nThey are left out when you refit "
-                "(Outliers > Refit without excluded); the files are not moved or deleted, and "
+                "(Review > Refit without excluded); the files are not moved or deleted, and "
                 "the marks can be cleared again.")
         if not self.confirm("Exclude near-duplicates", text):
             return []
