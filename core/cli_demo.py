@@ -12,9 +12,9 @@ from __future__ import annotations
 import argparse
 import re
 import sys
-import time
 
 from . import demo
+from ._progress import CountProgress
 
 __all__ = ["register", "run", "main"]
 
@@ -71,29 +71,6 @@ def register(subparsers) -> argparse.ArgumentParser:
     return parser
 
 
-class _Progress:
-    """A progress line on stderr, redrawn in place on a terminal and every 10 % otherwise."""
-
-    def __init__(self, stream) -> None:
-        self.stream = stream
-        self.tty = bool(getattr(stream, "isatty", lambda: False)())
-        self.last_time = 0.0
-        self.last_tenth = -1
-
-    def __call__(self, done: int, total: int) -> None:
-        if self.tty:
-            now = time.monotonic()
-            if done == total or now - self.last_time >= 0.1:
-                self.last_time = now
-                end = "\n" if done == total else ""
-                print(f"\rdemo: {done}/{total} frames", end=end, file=self.stream, flush=True)
-        else:
-            tenth = done * 10 // total
-            if tenth != self.last_tenth:
-                self.last_tenth = tenth
-                print(f"demo: {done}/{total} frames", file=self.stream, flush=True)
-
-
 def run(args: argparse.Namespace) -> int:
     """Write the demo collection described by parsed arguments.
 
@@ -108,7 +85,7 @@ def run(args: argparse.Namespace) -> int:
     int
         0 on success, 1 when writing failed, 2 for invalid arguments.
     """
-    progress = _Progress(sys.stderr)
+    progress = CountProgress(sys.stderr, "demo", "frames")
     try:
         paths = demo.write_collection(
             args.out_dir, args.frames, size=tuple(args.size), seed=args.seed, fmt=args.fmt,

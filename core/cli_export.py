@@ -22,9 +22,9 @@ import re
 import signal
 import sys
 import threading
-import time
 from pathlib import Path
 
+from ._progress import CountProgress
 from .errors import ModescopeError
 
 __all__ = ["register", "run", "main", "parse_image_list"]
@@ -154,29 +154,6 @@ def parse_image_list(text: str, decomposition) -> list[int]:
     return list(dict.fromkeys(out))
 
 
-class _Progress:
-    """A progress line on stderr, redrawn in place on a terminal and every 10 % otherwise."""
-
-    def __init__(self, stream) -> None:
-        self.stream = stream
-        self.tty = bool(getattr(stream, "isatty", lambda: False)())
-        self.last_time = 0.0
-        self.last_tenth = -1
-
-    def __call__(self, done: int, total: int) -> None:
-        if self.tty:
-            now = time.monotonic()
-            if done == total or now - self.last_time >= 0.1:
-                self.last_time = now
-                end = "\n" if done == total else ""
-                print(f"\rexport: {done}/{total} files", end=end, file=self.stream, flush=True)
-        else:
-            tenth = done * 10 // total if total else 10
-            if tenth != self.last_tenth:
-                self.last_tenth = tenth
-                print(f"export: {done}/{total} files", file=self.stream, flush=True)
-
-
 class _InterruptFlag:
     """Turn the first Ctrl-C into a cancel request checked between files (main thread only)."""
 
@@ -259,7 +236,7 @@ def run(args: argparse.Namespace) -> int:
     except (TypeError, ValueError) as exc:
         print(f"modescope export: {exc}", file=err)
         return EXIT_USAGE
-    progress = None if args.quiet else _Progress(err)
+    progress = None if args.quiet else CountProgress(err, "export", "files")
     try:
         with _InterruptFlag() as interrupted:
             report = run_export(plan, progress=progress, cancel=interrupted)
