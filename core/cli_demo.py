@@ -14,7 +14,7 @@ import re
 import sys
 
 from . import demo
-from ._progress import CountProgress
+from ._cliutil import CountProgress, run_subcommand
 
 __all__ = ["register", "run", "main"]
 
@@ -126,11 +126,7 @@ def main(argv=None) -> int:
     int
         The exit code of :func:`run` (argparse itself exits with 2 on bad syntax).
     """
-    parser = argparse.ArgumentParser(prog="modescope")
-    sub = parser.add_subparsers(dest="command", required=True)
-    register(sub)
-    args = parser.parse_args(["demo", *(sys.argv[1:] if argv is None else argv)])
-    return args.func(args)
+    return run_subcommand("demo", register, argv)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -24,7 +24,7 @@ import sys
 import threading
 from pathlib import Path
 
-from ._progress import CountProgress
+from ._cliutil import CountProgress, run_subcommand
 from .errors import ModescopeError
 
 __all__ = ["register", "run", "main", "parse_image_list"]
@@ -264,11 +264,7 @@ def main(argv=None) -> int:
     int
         The exit code of :func:`run` (argparse itself exits with 2 on bad syntax).
     """
-    parser = argparse.ArgumentParser(prog="modescope")
-    sub = parser.add_subparsers(dest="command", required=True)
-    register(sub)
-    args = parser.parse_args(["export", *(sys.argv[1:] if argv is None else argv)])
-    return args.func(args)
+    return run_subcommand("export", register, argv)
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -1,8 +1,8 @@
-"""The count progress line the demo and export commands write on stderr."""
+"""Shared command-line pieces: the count progress line the demo and export commands write."""
 
 import io
 
-from modescope.core._progress import CountProgress
+from modescope.core._cliutil import CountProgress
 
 
 class _Tty(io.StringIO):

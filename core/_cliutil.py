@@ -1,7 +1,10 @@
-"""A count progress line for the command line (``done/total`` of files or frames) on stderr."""
+"""Small pieces shared by the command-line modules: a count progress line on stderr, and the
+entry point that runs one sub-command on its own."""
 
 from __future__ import annotations
 
+import argparse
+import sys
 import time
 
 
@@ -39,3 +42,27 @@ class CountProgress:
             if tenth != self.last_tenth:
                 self.last_tenth = tenth
                 print(text, file=self.stream, flush=True)
+
+
+def run_subcommand(name: str, register, argv=None) -> int:
+    """Run the sub-command ``name`` on its own (``python -m modescope.core.cli_<name> ...``).
+
+    Parameters
+    ----------
+    name : str
+        The sub-command, e.g. "export".
+    register : callable
+        Adds the sub-command's parser to an argparse sub-parsers object.
+    argv : list of str, optional
+        Arguments after the program name; ``sys.argv[1:]`` when None.
+
+    Returns
+    -------
+    int
+        The sub-command's exit code (argparse itself exits with 2 on bad syntax).
+    """
+    parser = argparse.ArgumentParser(prog="modescope")
+    sub = parser.add_subparsers(dest="command", required=True)
+    register(sub)
+    args = parser.parse_args([name, *(sys.argv[1:] if argv is None else argv)])
+    return args.func(args)
