@@ -18,13 +18,14 @@ from collections import OrderedDict
 
 import numpy as np
 from PySide6.QtCore import (QAbstractListModel, QItemSelectionModel, QModelIndex, QRect, QSize,
-                            Qt, QTimer, Slot)
+                            Qt, Slot)
 from PySide6.QtGui import QBrush, QColor, QFont, QIcon, QLinearGradient, QPainter, QPixmap
 from PySide6.QtWidgets import QLabel, QListView, QSizePolicy, QVBoxLayout, QWidget
 
 from modescope.core.colormap import DIVERGING_LUT, signed_to_rgb
 from modescope.core.decomposition import Decomposition
 
+from .redraw import ThrottledRedraw
 from .state import AppState
 from .thumbnails import array_to_qimage
 
@@ -312,7 +313,7 @@ class _Legend(QWidget):
         p.end()
 
 
-class BasisGallery(QWidget):
+class BasisGallery(ThrottledRedraw, QWidget):
     """The mean image and the basis images as tiles; clicking a tile picks that mode.
 
     Parameters
@@ -365,10 +366,7 @@ class BasisGallery(QWidget):
         lay.addWidget(self.legend)
         lay.addWidget(self.view, 1)
 
-        self._timer = QTimer(self)
-        self._timer.setSingleShot(True)
-        self._timer.setInterval(self.REDRAW_MS)
-        self._timer.timeout.connect(self._redraw)
+        self._init_redraw_timer()
 
         # all connections in one place
         state.decompositionChanged.connect(self._schedule)
@@ -381,12 +379,6 @@ class BasisGallery(QWidget):
             self._redraw()
 
     # ----- state -> view ---------------------------------------------------------------------
-    @Slot(object)
-    def _schedule(self, *_):
-        """Merge bursts of new decompositions into one redraw (at most one per REDRAW_MS)."""
-        if not self._timer.isActive():
-            self._timer.start()
-
     @Slot()
     def _redraw(self) -> None:
         self.redraw_count += 1

@@ -16,12 +16,13 @@ import os
 
 import numpy as np
 from PySide6.QtCore import (QAbstractTableModel, QItemSelection, QItemSelectionModel,
-                            QModelIndex, QSize, QSortFilterProxyModel, Qt, QTimer, Slot)
+                            QModelIndex, QSize, QSortFilterProxyModel, Qt, Slot)
 from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QHeaderView, QLabel, QLineEdit,
                                QTableView, QVBoxLayout, QWidget)
 
 from modescope.core.decomposition import Decomposition
 
+from .redraw import ThrottledRedraw
 from .state import AppState
 from .thumbnails import ThumbnailMaker
 
@@ -214,7 +215,7 @@ class ImageTableModel(QAbstractTableModel):
         return None
 
 
-class ImageListView(QWidget):
+class ImageListView(ThrottledRedraw, QWidget):
     """Thumbnails, file names and residuals of every image, filterable by name.
 
     Parameters
@@ -295,10 +296,7 @@ class ImageListView(QWidget):
         lay.addLayout(top)
         lay.addWidget(self.table, 1)
 
-        self._timer = QTimer(self)
-        self._timer.setSingleShot(True)
-        self._timer.setInterval(self.REDRAW_MS)
-        self._timer.timeout.connect(self._redraw)
+        self._init_redraw_timer()
 
         # all connections in one place
         state.decompositionChanged.connect(self._schedule)
@@ -342,12 +340,6 @@ class ImageListView(QWidget):
         self.count.setText(text)
 
     # ----- state -> view ---------------------------------------------------------------------
-    @Slot(object)
-    def _schedule(self, *_):
-        """Merge bursts of new decompositions into one redraw (at most one per REDRAW_MS)."""
-        if not self._timer.isActive():
-            self._timer.start()
-
     @Slot()
     def _redraw(self) -> None:
         self.redraw_count += 1

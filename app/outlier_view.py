@@ -28,7 +28,7 @@ import time
 import numpy as np
 import pyqtgraph as pg
 from PySide6.QtCore import (QAbstractTableModel, QItemSelection, QItemSelectionModel,
-                            QModelIndex, QSortFilterProxyModel, Qt, QTimer, Signal, Slot)
+                            QModelIndex, QSortFilterProxyModel, Qt, Signal, Slot)
 from PySide6.QtGui import QAction, QColor, QFont, QKeySequence
 from PySide6.QtWidgets import (QAbstractItemView, QCheckBox, QComboBox, QDoubleSpinBox,
                                QFileDialog, QHBoxLayout, QHeaderView, QLabel, QMenu,
@@ -40,6 +40,7 @@ from modescope.core.decomposition import Decomposition
 from modescope.core.errors import ModescopeError
 from modescope.core.outliers import OutlierTable, score_table
 
+from .redraw import ThrottledRedraw
 from .settings import StoredOptions
 from .spectrum import log_ticks
 from .state import AppState
@@ -385,7 +386,7 @@ class OutlierFilterProxy(QSortFilterProxyModel):
         self.sourceModel().sort(column, order)
 
 
-class OutlierView(QWidget):
+class OutlierView(ThrottledRedraw, QWidget):
     """Outlier table, Q against T² plot, confidence level and review actions.
 
     Parameters
@@ -439,10 +440,7 @@ class OutlierView(QWidget):
 
         self._build_actions()
         self._build_widgets()
-        self._timer = QTimer(self)
-        self._timer.setSingleShot(True)
-        self._timer.setInterval(self.REDRAW_MS)
-        self._timer.timeout.connect(self._redraw)
+        self._init_redraw_timer()
         self._wire()
         self._redraw()
 
@@ -762,12 +760,6 @@ class OutlierView(QWidget):
         return [cur] if cur >= 0 else []
 
     # ----- state -> view -----------------------------------------------------------------------
-    @Slot()
-    def _schedule(self, *_):
-        """Merge bursts (snapshots, rank, level) into one recomputation per REDRAW_MS."""
-        if not self._timer.isActive():
-            self._timer.start()
-
     def flush(self) -> None:
         """Recompute now if a recomputation is pending (tests, screenshots)."""
         if self._timer.isActive():

@@ -19,6 +19,7 @@ from PySide6.QtWidgets import (QDoubleSpinBox, QHBoxLayout, QLabel, QPushButton,
 
 from modescope.core.rank import energy_rank, gavish_donoho
 
+from .redraw import ThrottledRedraw
 from .state import AppState
 
 __all__ = ["SpectrumView", "log_ticks"]
@@ -48,7 +49,7 @@ def log_ticks(lo: float, hi: float) -> list[list[tuple[float, str]]]:
     return [major, minor]
 
 
-class SpectrumView(QWidget):
+class SpectrumView(ThrottledRedraw, QWidget):
     """Singular values and cumulative energy with the rank line and suggested ranks.
 
     Parameters
@@ -186,10 +187,7 @@ class SpectrumView(QWidget):
         lay.addLayout(row2)
         lay.addWidget(self.plots, 1)
 
-        self._timer = QTimer(self)
-        self._timer.setSingleShot(True)
-        self._timer.setInterval(self.REDRAW_MS)
-        self._timer.timeout.connect(self._redraw)
+        self._init_redraw_timer()
         self._drag_timer = QTimer(self)
         self._drag_timer.setSingleShot(True)
         self._drag_timer.setInterval(self.DRAG_MS)
@@ -209,12 +207,6 @@ class SpectrumView(QWidget):
             self._redraw()
 
     # ----- state -> view ---------------------------------------------------------------------
-    @Slot(object)
-    def _schedule(self, *_):
-        """Merge bursts of new decompositions into one redraw (at most one per REDRAW_MS)."""
-        if not self._timer.isActive():
-            self._timer.start()
-
     @Slot()
     def _redraw(self) -> None:
         self.redraw_count += 1

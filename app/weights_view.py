@@ -27,6 +27,7 @@ from PySide6.QtWidgets import (QComboBox, QGraphicsRectItem, QHBoxLayout, QLabel
 
 from modescope.core.decomposition import Decomposition
 
+from .redraw import ThrottledRedraw
 from .state import AppState
 
 __all__ = ["WeightsView"]
@@ -77,7 +78,7 @@ def _style(plot: pg.PlotItem) -> None:
     plot.setMenuEnabled(False)
 
 
-class WeightsView(QWidget):
+class WeightsView(ThrottledRedraw, QWidget):
     """The weights plane, the selected image's weights, and weights against image number.
 
     Parameters
@@ -211,10 +212,7 @@ class WeightsView(QWidget):
         lay.addLayout(top)
         lay.addWidget(self.splitter, 1)
 
-        self._timer = QTimer(self)
-        self._timer.setSingleShot(True)
-        self._timer.setInterval(self.REDRAW_MS)
-        self._timer.timeout.connect(self._redraw)
+        self._init_redraw_timer()
         self._drag_timer = QTimer(self)
         self._drag_timer.setSingleShot(True)
         self._drag_timer.setInterval(self.DRAG_MS)
@@ -250,12 +248,6 @@ class WeightsView(QWidget):
         return np.arange(1, d.n_images + 1, dtype=np.float64), "image number"
 
     # ----- state -> view ---------------------------------------------------------------------
-    @Slot()
-    def _schedule(self, *_):
-        """Merge bursts (new decompositions, rank, modes) into one redraw per REDRAW_MS."""
-        if not self._timer.isActive():
-            self._timer.start()
-
     @Slot()
     def _redraw(self) -> None:
         self.redraw_count += 1
