@@ -41,6 +41,10 @@ _log = logging.getLogger(__name__)
 #: Seconds between two partial snapshots sent to the GUI.
 PARTIAL_INTERVAL = 0.15
 
+#: Seconds between two progress signals of the scan stage (the scan reports every file: 10,000
+#: queued signals would keep the GUI thread busy and delay the first partial result).
+SCAN_PROGRESS_INTERVAL = 0.05
+
 
 def error_message(exc: BaseException) -> str:
     """Return a message for the user about ``exc``: no traceback, the file named when known.
@@ -113,6 +117,7 @@ class AnalysisWorker(QObject):
         self._only = None if only is None else list(only)
         self._cancel = threading.Event()
         self._last_partial_time = -float("inf")
+        self._last_scan_progress = -float("inf")
         self._pending = None
         self._stage = ""
         self._done = threading.Event()
@@ -142,6 +147,14 @@ class AnalysisWorker(QObject):
         stage = getattr(progress, "stage", "")
         if self._stage == "learn" and stage != "learn":
             self._flush_partial()
+        if stage == "scan" and self._stage == "scan":
+            now = time.monotonic()
+            last = getattr(progress, "done", 0) >= getattr(progress, "total", 0)
+            if not last and now - self._last_scan_progress < SCAN_PROGRESS_INTERVAL:
+                return
+            self._last_scan_progress = now
+        elif stage == "scan":
+            self._last_scan_progress = time.monotonic()
         self._stage = stage
         self.progress.emit(progress)
 

@@ -231,3 +231,23 @@ def test_analysis_runs_off_the_gui_thread(qtbot, runner):
     assert where == [False]
     # the finished worker has been handed back to the GUI thread, where it will be deleted
     assert worker.thread() is QApplication.instance().thread()
+
+
+def test_scan_progress_is_thinned_but_ends_complete(qtbot):
+    # the scan reports every file; the GUI gets a few signals, always the first and the last
+    def fake(sources, options, *, progress, cancel, on_partial):
+        for done in range(1, 5001):
+            progress(SimpleNamespace(stage="scan", done=done, total=5000, elapsed=0.0,
+                                     rate=0.0, seconds_left=None))
+        progress(SimpleNamespace(stage="learn", done=10, total=10, elapsed=0.0, rate=0.0,
+                                 seconds_left=None))
+        return SimpleNamespace(cancelled=False, decomposition=None)
+
+    worker = AnalysisWorker(["x"], None, analyze=fake)
+    seen = []
+    worker.progress.connect(seen.append)
+    worker.run()
+    scan = [p.done for p in seen if p.stage == "scan"]
+    assert scan[0] == 1 and scan[-1] == 5000
+    assert len(scan) < 100                           # 5,000 calls in well under 5 s
+    assert [p.stage for p in seen][-1] == "learn"     # other stages pass unchanged
