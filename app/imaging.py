@@ -70,8 +70,14 @@ def to_uint8(image: np.ndarray) -> np.ndarray:
         return np.ascontiguousarray(image)
     if not np.issubdtype(image.dtype, np.number) and image.dtype != np.bool_:
         raise TypeError(f"image must hold numbers, got dtype {image.dtype}")
-    scaled = np.nan_to_num(image.astype(np.float32), nan=0.0, posinf=1.0, neginf=0.0)
-    return np.ascontiguousarray(np.clip(np.rint(scaled * 255.0), 0, 255).astype(np.uint8))
+    scaled = np.multiply(image, np.float32(255.0), dtype=np.float32)
+    if not np.isfinite(scaled).all():
+        # NaN shows as 0, +inf as 255, -inf as 0 (rare: only then the extra passes)
+        scaled = np.nan_to_num(image.astype(np.float32), nan=0.0, posinf=1.0, neginf=0.0)
+        scaled *= np.float32(255.0)
+    np.rint(scaled, out=scaled)
+    np.clip(scaled, 0, 255, out=scaled)
+    return scaled.astype(np.uint8)          # a new C-contiguous array
 
 
 def _check_image_shape(image: np.ndarray) -> np.ndarray:

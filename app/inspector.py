@@ -88,6 +88,8 @@ class ImagePane(QWidget):
 
     def set_image(self, image: QImage | None, note: str = "") -> None:
         """Show ``image`` (None for none) and an optional note."""
+        if image is not None and image is self._image and note == self._note:
+            return                      # the same picture: no repaint (rank steps keep the source)
         self._image = image if image is not None else QImage()
         self._note = note
         self.update()
@@ -282,6 +284,7 @@ class Inspector(QWidget):
         self._cache_key: tuple | None = None
         self._live = None           # LiveReconstruction of the selected image
         self._cache_value: np.ndarray | None = None
+        self._source_qimage: tuple | None = None   # (source array, its QImage)
         self._cache_error = ""
         self._syncing = False
         self.source_array: np.ndarray | None = None
@@ -459,7 +462,10 @@ class Inspector(QWidget):
         self.source_array = source
         self.source_note = error
         if source is not None:
-            self.source_pane.set_image(array_to_qimage(source))
+            # the source does not change with the rank: convert it once per image
+            if self._source_qimage is None or self._source_qimage[0] is not source:
+                self._source_qimage = (source, array_to_qimage(source))
+            self.source_pane.set_image(self._source_qimage[1])
             residual = source - recon
             self.residual_array = residual
             plane = residual.mean(axis=2) if residual.shape[2] > 1 else residual[:, :, 0]

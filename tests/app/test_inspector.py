@@ -213,3 +213,20 @@ def test_rgb_images_in_colour(qtbot, state, tmp_path, make_decomposition):
     state.set_selected(5)
     assert view.source_pane.image() == array_to_qimage(imgs[5])
     assert "channel mean" in view.residual_pane.title()
+
+
+def test_to_uint8_rounds_clips_and_handles_non_finite_values():
+    from modescope.app.imaging import to_uint8
+    rng = np.random.default_rng(2)
+    x = rng.random((7, 9, 3)) * 1.4 - 0.2                      # float64, some out of [0, 1]
+    # reference: round-half-even of 255 x in float32, clipped (written out independently)
+    expected = np.clip(np.round(x.astype(np.float32) * np.float32(255)), 0, 255).astype(np.uint8)
+    out = to_uint8(x)
+    assert out.dtype == np.uint8 and out.flags.c_contiguous
+    np.testing.assert_array_equal(out, expected)
+    np.testing.assert_array_equal(to_uint8(x[:, ::2]), expected[:, ::2])      # strided input
+    bad = np.array([[np.nan, np.inf, -np.inf, 0.5]], dtype=np.float32)
+    np.testing.assert_array_equal(to_uint8(bad), [[0, 255, 0, 128]])
+    np.testing.assert_array_equal(to_uint8(np.array([[True, False]])), [[255, 0]])
+    u = rng.integers(0, 256, (4, 4), dtype=np.uint8)
+    assert to_uint8(u) is not None and np.array_equal(to_uint8(u), u)
