@@ -377,16 +377,37 @@ def _select(source_set: SourceSet, only) -> SourceSet:
 
 
 def _score_pass(engine, used: SourceSet, options, workers, progress, cancel,
-                cache: BlockCache | None = None):
+                cache: BlockCache | None = None, cache_start: int = 0):
     """Project every image of ``used`` onto the engine's basis (the exact scoring pass).
 
-    The first ``cache.images`` images of ``used`` are read back from ``cache`` (the decoded
-    blocks of the learning pass, in the same order); the rest are decoded from their files.
-    Stops early when ``cancel()`` answers True (then ``acc.done < used.n_images``).
+    Images ``cache_start`` to ``cache_start + cache.images`` of ``used`` are read back from
+    ``cache`` (the decoded blocks of the learning pass, in the same order); the others are
+    decoded from their files. Stops early when ``cancel()`` answers True (then
+    ``acc.done < used.n_images``).
     """
     acc = ProjectionAccumulator(engine.basis, engine.mean, used.n_images)
     clock = _Clock("score", used.n_images, progress)
-    if cache is not None and cache.images:
+    pixels = int(np.prod(analysis_shape(used, options.downscale)))
+    block_size = block_size_for(options, pixels, minimum=128)
+    cached = cache.images if cache is not None else 0
+
+    def from_files(stop: int) -> bool:
+        part = dataclasses.replace(used, images=used.images[acc.done:stop])
+        for block in iter_blocks(part, block_size=block_size, downscale=options.downscale,
+                                 workers=workers, cancel=cancel):
+            if block.problems:
+                bad = block.problems[0]
+                raise SourceError(f"{bad.path}: changed or became unreadable during the "
+                                  f"analysis ({bad.reason})")
+            acc.add(block.data)
+            clock.report(acc.done)
+            if cancel():
+                return False
+        return acc.done == stop
+
+    if cached and not from_files(cache_start):
+        return acc
+    if cached:
         # (BLAS threads are not raised here although nothing decodes: changing OpenBLAS's
         # thread count in mid-run, from a worker thread while the GUI thread may be inside BLAS,
         # is risky (from memory of OpenBLAS reports, not verified here), and the gain measured
@@ -396,18 +417,7 @@ def _score_pass(engine, used: SourceSet, options, workers, progress, cancel,
             clock.report(acc.done)
             if cancel():
                 return acc
-        used = dataclasses.replace(used, images=used.images[acc.done:])
-    pixels = int(np.prod(analysis_shape(used, options.downscale)))
-    for block in iter_blocks(used, block_size=block_size_for(options, pixels, minimum=128),
-                             downscale=options.downscale, workers=workers, cancel=cancel):
-        if block.problems:
-            bad = block.problems[0]
-            raise SourceError(f"{bad.path}: changed or became unreadable during the "
-                              f"analysis ({bad.reason})")
-        acc.add(block.data)
-        clock.report(acc.done)
-        if cancel():
-            break
+    from_files(used.n_images)
     return acc
 
 
@@ -581,16 +591,18 @@ def update_analysis(decomposition: Decomposition, sources, options: AnalysisOpti
         marks = np.concatenate([d.marks, np.zeros(len(kept), dtype=np.int8)])
         return engine.snapshot(shape, paths=paths, pages=pages, marks=marks, metadata=m)
 
-    with _blas_limit(options.blas_threads):
+    with _blas_limit(options.blas_threads), BlockCache(engine.n_pixels) as cache:
         clock = _Clock("learn", new_set.n_images, progress)
         attempted = 0
         for block in iter_blocks(new_set, block_size=block_size_for(options, engine.n_pixels),
-                                 downscale=options.downscale, workers=workers, cancel=cancel):
+                                 downscale=options.downscale, workers=workers, cancel=cancel,
+                                 keep_raw=True):
             problems.extend(block.problems)
             attempted = block.start + len(block.indices) + len(block.problems)
             if block.data.shape[1]:
                 engine.update(block.data)
                 kept.extend(int(i) for i in block.indices)
+                cache.put(block)
             clock.report(attempted)
             if on_partial is not None:
                 on_partial(snapshot("streaming"))
@@ -617,7 +629,9 @@ def update_analysis(decomposition: Decomposition, sources, options: AnalysisOpti
         all_set = dataclasses.replace(new_set, images=all_refs, problems=(),
                                       resize_mismatched=bool(meta.get("resize_mismatched",
                                                                       options.resize_mismatched)))
-        acc = _score_pass(engine, all_set, options, workers, progress, cancel)
+        # the old images are read from their files, the new ones back from the cache
+        acc = _score_pass(engine, all_set, options, workers, progress, cancel, cache,
+                          cache_start=len(old_refs))
         if acc.done < len(all_refs):
             return AnalysisResult(snapshot("cancelled"), new_set, tuple(problems), True)
         ritz = rayleigh_ritz(engine.basis, acc.weights, acc.residual, options.rank,

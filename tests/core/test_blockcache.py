@@ -117,3 +117,33 @@ def test_raw_values_follow_failed_images_out(tmp_path):
     b = blocks[0]
     assert b.raw8.shape == (b.data.shape[1], b.data.shape[0])
     assert np.array_equal(np.divide(b.raw8, np.float32(255), dtype=np.float32), b.data.T)
+
+
+@pytest.mark.parametrize("budget", ["default", "none", "prefix"])
+def test_update_reads_new_images_back_from_the_cache(tmp_path, monkeypatch, budget):
+    # update_analysis scores old images from their files and new ones from the cache; the
+    # result must not depend on how much was cached
+    from modescope.core.pipeline import update_analysis
+    old = write(tmp_path / "old", "gray", count=30, size=(16, 12), seed=5)
+    new = tmp_path / "new"
+    new.mkdir()
+    rng = np.random.default_rng(6)
+    for i in range(21):
+        Image.fromarray(rng.integers(0, 256, (16, 12), dtype=np.uint8)).save(new / f"n_{i}.png")
+    options = AnalysisOptions(rank=5, block_size=8)
+    base = analyze([old], options).decomposition
+    reference = update_analysis(base, [new], options).decomposition
+    if budget != "default":
+        limit = 0 if budget == "none" else 16 * 12 * 8        # nothing, or the first block
+        monkeypatch.setattr(blockcache, "default_budget", lambda folder=None: limit)
+    result = update_analysis(base, [new], options).decomposition
+    assert result.exact and result.n_images == 51
+    for name in ("singular_values", "weights", "residual"):
+        a, b = getattr(result, name), getattr(reference, name)
+        np.testing.assert_allclose(a, b, rtol=1e-5, atol=1e-6 * np.max(np.abs(b)), err_msg=name)
+    # and the exact pass equals a fresh look at all 51 images through the same basis
+    from modescope.core.pipeline import project_images
+    cols = np.concatenate([b.data for b in iter_blocks(scan_sources([old, new]), block_size=64)],
+                          axis=1)
+    w, res = project_images(result, cols)
+    np.testing.assert_allclose(result.weights, w, rtol=1e-4, atol=1e-5 * np.max(np.abs(w)))
