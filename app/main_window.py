@@ -589,13 +589,9 @@ class MainWindow(QMainWindow):
             False (with a message) when the options are not valid.
         """
         sources = [os.fspath(s) for s in sources]
-        if not sources:
-            self._show_error("Nothing to analyse", "Add a folder or image files first.")
-            return False
-        try:
-            analysis_options = make_analysis_options(options)
-        except (TypeError, ValueError) as exc:
-            self._show_error("Options not valid", str(exc))
+        analysis_options = self._checked_options(bool(sources), options,
+                                                 "Add a folder or image files first.")
+        if analysis_options is None:
             return False
         if [os.path.abspath(s) for s in sources] != self.ingest.sources():
             self.ingest.set_sources(sources)
@@ -627,19 +623,27 @@ class MainWindow(QMainWindow):
             valid.
         """
         pairs = [(os.fspath(p), int(g)) for p, g in images]
-        if not pairs:
-            self._show_error("Nothing to analyse", "Every image is marked excluded.")
-            return False
-        try:
-            analysis_options = make_analysis_options(options)
-        except (TypeError, ValueError) as exc:
-            self._show_error("Options not valid", str(exc))
+        analysis_options = self._checked_options(bool(pairs), options,
+                                                 "Every image is marked excluded.")
+        if analysis_options is None:
             return False
         files = list(dict.fromkeys(p for p, _ in pairs))
         self.ingest.stop_scan()
         self._begin_run(files, analysis_options,
                         f"Modescope — refit of {len(pairs):,} images", only=pairs)
         return True
+
+    def _checked_options(self, anything: bool, options: StoredOptions, empty_hint: str):
+        """Return the AnalysisOptions of ``options``, or None after a message (nothing to
+        analyse, or options not valid)."""
+        if not anything:
+            self._show_error("Nothing to analyse", empty_hint)
+            return None
+        try:
+            return make_analysis_options(options)
+        except (TypeError, ValueError) as exc:
+            self._show_error("Options not valid", str(exc))
+            return None
 
     def _begin_run(self, sources, analysis_options, title: str, run_key=None,
                    only=None) -> None:
