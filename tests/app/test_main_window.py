@@ -487,3 +487,16 @@ def test_pane_after_a_failed_or_scan_cancelled_run(qtbot, ini_settings, broken_f
         assert w.start_analysis([str(broken_folder) + "_other"], StoredOptions(rank=3))
     assert w.ingest.summary_label.text().startswith("Not scanned: the analysis stopped")
     w.close()
+
+
+def test_nothing_to_analyse_and_bad_options_are_messages(qtbot, ini_settings):
+    w = MainWindow(ini_settings, confirm_dialogs=False)
+    qtbot.addWidget(w)
+    assert w.start_analysis([], StoredOptions()) is False
+    assert w.last_message == "Add a folder or image files first."
+    assert w.refit_analysis([], StoredOptions()) is False
+    assert w.last_message == "Every image is marked excluded."
+    assert w.refit_analysis([("a.png", 0)], StoredOptions(rank=0)) is False
+    assert "rank" in w.last_message
+    assert not w.runner.is_running()
+    w.close()
