@@ -158,6 +158,13 @@ def cmd_analyze(args) -> int:
     except ModescopeError as exc:
         print(f"modescope analyze: nothing usable: {exc}", file=sys.stderr)
         return EXIT_UNUSABLE
+    except MemoryError:
+        print("modescope analyze: not enough memory; try --downscale 2 (or more) or a smaller "
+              "--block-size", file=sys.stderr)
+        return EXIT_UNUSABLE
+    except OSError as exc:
+        print(f"modescope analyze: {exc}", file=sys.stderr)
+        return EXIT_UNUSABLE
     except KeyboardInterrupt:
         print("\nmodescope analyze: interrupted; nothing written", file=sys.stderr)
         return 130
@@ -192,6 +199,15 @@ def cmd_update(args) -> int:
     except ModescopeError as exc:
         print(f"modescope update: {exc}", file=sys.stderr)
         return EXIT_UNUSABLE
+    except MemoryError:
+        print("modescope update: not enough memory", file=sys.stderr)
+        return EXIT_UNUSABLE
+    except OSError as exc:
+        print(f"modescope update: {exc}", file=sys.stderr)
+        return EXIT_UNUSABLE
+    except KeyboardInterrupt:
+        print("\nmodescope update: interrupted; nothing written", file=sys.stderr)
+        return 130
     new = result.decomposition
     print(f"added {new.n_images - d.n_images} images to {d.n_images}; "
           f"{'exact scoring pass done' if new.exact else 'streaming update only'}",

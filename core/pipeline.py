@@ -295,7 +295,10 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
             return AnalysisResult(None, empty, (), True)
     if only is not None:
         source_set = _select(source_set, only)
-    shape = analysis_shape(source_set, options.downscale)
+    try:
+        shape = analysis_shape(source_set, options.downscale)
+    except ValueError as exc:                   # a downscale too large for these images
+        raise SourceError(str(exc)) from None
     pixels = int(np.prod(shape))
     workers = decode_workers(source_set, options)
     engine = StreamingSVD(pixels, options.rank, options.oversample)

@@ -70,3 +70,20 @@ def test_exit_codes(tmp_path, capsys):
     assert "missing.npz: no such file" in capsys.readouterr().err
     assert main(["analyze", str(empty), "-o", str(empty)]) == 2
     assert main([str(tmp_path / "nope")]) == 2
+
+
+def test_too_large_downscale_and_memory_errors_are_messages(folder, tmp_path, capsys,
+                                                            monkeypatch):
+    out = tmp_path / "d.npz"
+    # 10x12 frames cannot be downscaled by 20: a message naming the limit, no traceback
+    assert main(["analyze", str(folder), "-o", str(out), "--downscale", "20", "--quiet"]) == 1
+    err = capsys.readouterr().err
+    assert "downscale 20 is too large for the reference size 10x12" in err
+    assert "use at most 10" in err and not out.exists()
+    from modescope.core import pipeline
+
+    def no_memory(*args, **kwargs):
+        raise MemoryError
+    monkeypatch.setattr(pipeline, "analyze", no_memory)
+    assert main(["analyze", str(folder), "-o", str(out), "--quiet"]) == 1
+    assert "not enough memory" in capsys.readouterr().err
