@@ -27,6 +27,7 @@ from PySide6.QtWidgets import (QAbstractItemView, QDoubleSpinBox, QHBoxLayout, Q
 from modescope.core import review
 from modescope.core.duplicates import DuplicateReport, find_duplicates
 
+from .imaging import counted
 from .state import AppState
 
 __all__ = ["DuplicatesView", "DEFAULT_TOLERANCE", "SEARCH_RANK"]
@@ -390,7 +391,7 @@ class DuplicatesView(QWidget):
         elif d.residual is None:
             self.status.setText("Near-duplicates can be looked for when the analysis finishes.")
         else:
-            self.status.setText(f"{d.n_images:,} images. Set a tolerance and press Find.")
+            self.status.setText(f"{counted(d.n_images, 'image')}. Set a tolerance and press Find.")
         self._update_actions()
 
     @Slot(object)

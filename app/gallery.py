@@ -25,6 +25,7 @@ from PySide6.QtWidgets import QLabel, QListView, QSizePolicy, QVBoxLayout, QWidg
 from modescope.core.colormap import DIVERGING_LUT, signed_to_rgb
 from modescope.core.decomposition import Decomposition
 
+from .imaging import counted
 from .redraw import ThrottledRedraw
 from .state import AppState
 from .thumbnails import array_to_qimage
@@ -162,7 +163,7 @@ class BasisModel(QAbstractListModel):
         d = self._d
         if row == 0:
             kind = "snapshot" if not d.exact else "final"
-            return f"Mean image\n{d.n_images} images\n({kind})"
+            return f"Mean image\n{counted(d.n_images, 'image')}\n({kind})"
         j = row - 1
         return (f"Basis image {j + 1}\n"
                 f"singular value {d.singular_values[j]:.4g}\n"

@@ -22,6 +22,7 @@ from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QHeaderView, QLab
 
 from modescope.core.decomposition import Decomposition
 
+from .imaging import counted
 from .redraw import ThrottledRedraw
 from .state import AppState
 from .thumbnails import ThumbnailMaker
@@ -333,7 +334,7 @@ class ImageListView(ThrottledRedraw, QWidget):
 
     def _update_count(self) -> None:
         n, shown = self.model.rowCount(), self.proxy.rowCount()
-        text = f"{n} images" if shown == n else f"{shown} of {n} images"
+        text = counted(n, "image") if shown == n else f"{shown:,} of {counted(n, 'image')}"
         d = self.model.decomposition
         if d is not None and d.residual is not None:
             text += f", residual at rank {self.model.rank}"

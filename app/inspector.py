@@ -32,7 +32,8 @@ from PySide6.QtWidgets import (
 from modescope.core.errors import ModescopeError
 from modescope.core.reconstruct import LiveReconstruction
 
-from .imaging import array_to_qimage, colorbar_qimage, signed_to_qimage, symmetric_limit
+from .imaging import (NO_VARIATION, array_to_qimage, colorbar_qimage, signed_to_qimage,
+                      symmetric_limit)
 from .state import AppState
 
 __all__ = ["ImagePane", "ColorLegend", "Inspector", "RANK_DEBOUNCE_MS"]
@@ -428,8 +429,13 @@ class Inspector(QWidget):
         if d is None or index < 0 or index >= d.n_images or d.rank == 0:
             self.source_array = self.reconstruction_array = self.residual_array = None
             self.source_note = ""
-            self.title_label.setText("No image selected" if d is not None else
-                                     "No analysis yet")
+            if d is None:
+                title = "No analysis yet"
+            elif d.rank == 0 and d.n_images:
+                title = NO_VARIATION
+            else:
+                title = "No image selected"
+            self.title_label.setText(title)
             hint = "" if d is not None else "Add images in the Sources pane and start an analysis."
             self.source_pane.set_image(None, hint)
             self.reconstruction_pane.set_image(None)

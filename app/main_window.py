@@ -41,6 +41,7 @@ from PySide6.QtWidgets import (
 
 from modescope.core.errors import ModescopeError
 
+from .imaging import counted
 from .ingest import MODEL_FILE_FILTER, IngestPane, make_analysis_options
 from .inspector import Inspector
 from .settings import Settings, StoredOptions
@@ -713,7 +714,7 @@ class MainWindow(QMainWindow):
         n = result.decomposition.n_images if result.decomposition is not None else 0
         skipped = len(result.problems)
         self.statusBar().showMessage(
-            f"Analysis finished: {n} images in {_format_seconds(seconds)}"
+            f"Analysis finished: {counted(n, 'image')} in {_format_seconds(seconds)}"
             + (f", {skipped} skipped (see Sources)" if skipped else ""), 10000)
 
     @Slot(object)
@@ -731,7 +732,7 @@ class MainWindow(QMainWindow):
         if d is not None:
             self.state.set_decomposition(d)
             self.statusBar().showMessage(
-                f"Analysis cancelled: the partial result from {d.n_images} images is kept "
+                f"Analysis cancelled: the partial result from {counted(d.n_images, 'image')} is kept "
                 "(it can be saved).", 10000)
         else:
             self.statusBar().showMessage("Analysis cancelled before any image was analysed.",
@@ -805,7 +806,7 @@ class MainWindow(QMainWindow):
             return "No analysis"
         rows, cols, channels = (tuple(d.image_shape) + (1, 1, 1))[:3]
         r = self.state.rank
-        parts = [f"{d.n_images:,} images", f"{rows} × {cols} pixels"
+        parts = [counted(d.n_images, "image"), f"{rows} × {cols} pixels"
                  + (f" × {channels}" if channels > 1 else ""), f"rank {r} of {d.rank}"]
         if r >= 1:
             parts.append(f"{100.0 * float(d.cumulative_energy()[r - 1]):.1f} % of the "

@@ -19,6 +19,7 @@ from PySide6.QtWidgets import (QDoubleSpinBox, QHBoxLayout, QLabel, QPushButton,
 
 from modescope.core.rank import energy_rank, gavish_donoho
 
+from .imaging import NO_VARIATION
 from .redraw import ThrottledRedraw
 from .state import AppState
 
@@ -214,7 +215,8 @@ class SpectrumView(ThrottledRedraw, QWidget):
         if d is None or d.rank == 0:
             self.singular_curve.setData([], [])
             self.energy_curve.setData([], [])
-            self.summary.setText("No analysis yet.")
+            self.summary.setText("No analysis yet." if d is None or not d.n_images
+                                 else NO_VARIATION)
             for item in (self.energy_line, self.threshold_line, self.gd_line, self.gd_tau_line):
                 item.setVisible(False)
             return

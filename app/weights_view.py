@@ -27,6 +27,7 @@ from PySide6.QtWidgets import (QComboBox, QGraphicsRectItem, QHBoxLayout, QLabel
 
 from modescope.core.decomposition import Decomposition
 
+from .imaging import NO_VARIATION
 from .redraw import ThrottledRedraw
 from .state import AppState
 
@@ -265,7 +266,7 @@ class WeightsView(ThrottledRedraw, QWidget):
             self.scatter.setData(x=[], y=[])
             self.seq_a.setData([], [])
             self.seq_b.setData([], [])
-            self.info.setText("No analysis yet.")
+            self.info.setText("No analysis yet." if d is None or not d.n_images else NO_VARIATION)
             for combo in (self.combo_a, self.combo_b):
                 combo.blockSignals(True)
                 combo.clear()

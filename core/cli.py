@@ -177,9 +177,13 @@ def cmd_analyze(args) -> int:
     elapsed = time.perf_counter() - start
     rows, cols, ch = d.image_shape
     cum = d.cumulative_energy()
-    print(f"analysed {d.n_images} images of {rows}x{cols} ({'gray' if ch == 1 else 'rgb'}) in "
-          f"{elapsed:.1f} s; rank {d.rank} captures {100 * cum[-1]:.1f}% of the energy",
-          file=sys.stderr)
+    if d.rank:
+        captured = f"rank {d.rank} captures {100 * cum[-1]:.1f}% of the energy"
+    else:
+        captured = ("no basis images: the images do not vary (each one equals the mean image"
+                    + (", as a single image always does)" if d.n_images == 1 else ")"))
+    print(f"analysed {d.n_images} image{'s' if d.n_images != 1 else ''} of {rows}x{cols} "
+          f"({'gray' if ch == 1 else 'rgb'}) in {elapsed:.1f} s; {captured}", file=sys.stderr)
     print(f"wrote {written}", file=sys.stderr)
     _print_problems(result.problems)
     return EXIT_OK
@@ -249,7 +253,10 @@ def cmd_info(args) -> int:
         print(f"created:      {meta['created']}")
     print(f"energy:       total {d.total_energy:.6g}")
     shares, cum = d.energy_shares(), d.cumulative_energy()
-    print("  rank  singular value   share   cumulative")
+    if not d.rank:
+        print("basis images: none (the images do not vary: each one equals the mean image)")
+    else:
+        print("  rank  singular value   share   cumulative")
     for r in range(min(args.ranks, d.rank)):
         print(f"  {r + 1:4d}  {d.singular_values[r]:14.6g}  {100 * shares[r]:6.2f}%  "
               f"{100 * cum[r]:9.2f}%")
@@ -276,7 +283,17 @@ def main(argv: list[str] | None = None) -> int:
     if not getattr(args, "func", None):
         parser.print_help(sys.stderr)
         return EXIT_USAGE
-    return int(args.func(args) or 0)
+    try:
+        return int(args.func(args) or 0)
+    except BrokenPipeError:
+        # the reader went away (``modescope info m.npz | head``): stop quietly, as the Python
+        # documentation recommends (point stdout at devnull so the exit flush cannot fail)
+        try:
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, sys.stdout.fileno())
+        except (OSError, ValueError):  # pragma: no cover - stdout without a file descriptor
+            pass
+        return EXIT_UNUSABLE
 
 
 def _run_gui(paths: list[str]) -> int:

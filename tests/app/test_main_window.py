@@ -500,3 +500,23 @@ def test_nothing_to_analyse_and_bad_options_are_messages(qtbot, ini_settings):
     assert "rank" in w.last_message
     assert not w.runner.is_running()
     w.close()
+
+
+def test_a_single_image_is_a_mean_only_analysis(qtbot, ini_settings, tmp_path):
+    # one image: no basis image can exist; the views say why instead of "no analysis yet"
+    from PIL import Image
+    from modescope.app.imaging import NO_VARIATION
+    folder = tmp_path / "one"
+    folder.mkdir()
+    Image.fromarray(np.full((12, 16), 90, np.uint8)).save(folder / "only.png")
+    w = MainWindow(ini_settings, confirm_dialogs=False)
+    qtbot.addWidget(w)
+    with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT):
+        assert w.start_analysis([str(folder)], StoredOptions(rank=3))
+    d = w.state.decomposition
+    assert d.n_images == 1 and d.rank == 0
+    assert "Analysis finished: 1 image in" in w.statusBar().currentMessage()
+    qtbot.waitUntil(lambda: w.views["weightsDock"].info.text() == NO_VARIATION, timeout=5000)
+    assert w.inspector.title_label.text() == NO_VARIATION
+    assert w.views["basisDock"].model.label(0) == "Mean image\n1 image\n(final)"
+    w.close()

@@ -87,3 +87,45 @@ def test_too_large_downscale_and_memory_errors_are_messages(folder, tmp_path, ca
     monkeypatch.setattr(pipeline, "analyze", no_memory)
     assert main(["analyze", str(folder), "-o", str(out), "--quiet"]) == 1
     assert "not enough memory" in capsys.readouterr().err
+
+
+def test_single_image_gives_a_mean_only_model(tmp_path, capsys):
+    # one image (or identical ones): centred, the data is zero, so there is no basis image;
+    # the model holds the mean and the commands say so instead of failing
+    f = tmp_path / "one"
+    f.mkdir()
+    Image.fromarray(np.arange(120, dtype=np.uint8).reshape(10, 12)).save(f / "only.png")
+    out = tmp_path / "one.npz"
+    assert main(["analyze", str(f), "-o", str(out), "--quiet"]) == 0
+    assert "no basis images: the images do not vary" in capsys.readouterr().err
+    d = load_model(out)
+    assert d.rank == 0 and d.n_images == 1 and d.total_energy == 0
+    np.testing.assert_allclose(d.mean, np.arange(120) / 255, atol=1e-6)
+    assert main(["info", str(out)]) == 0
+    assert "basis images: none" in capsys.readouterr().out
+
+
+def test_info_into_a_closed_pipe_stops_quietly(folder, tmp_path, monkeypatch, capsys):
+    import io
+    import sys
+    out = tmp_path / "m.npz"
+    assert main(["analyze", str(folder), "-o", str(out), "--rank", "4", "--quiet"]) == 0
+    capsys.readouterr()
+
+    class ClosedPipe(io.TextIOBase):
+        # what `modescope info m.npz | head -1` meets once head has gone
+        def __init__(self, fd):
+            self.fd = fd
+
+        def write(self, text):
+            raise BrokenPipeError(32, "Broken pipe")
+
+        def fileno(self):
+            return self.fd
+
+    with open(tmp_path / "stdout.txt", "wb") as target:
+        monkeypatch.setattr(sys, "stdout", ClosedPipe(target.fileno()))
+        code = main(["info", str(out)])
+    monkeypatch.undo()
+    assert code == 1                          # stopped quietly: an exit code, no traceback
+    assert "Traceback" not in capsys.readouterr().err
