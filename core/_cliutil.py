@@ -1,11 +1,19 @@
-"""Small pieces shared by the command-line modules: a count progress line on stderr, and the
-entry point that runs one sub-command on its own."""
+"""Small pieces shared by the command-line modules: a count progress line on stderr, a Ctrl-C
+that asks to stop instead of killing, and the entry point that runs one sub-command on its own."""
 
 from __future__ import annotations
 
 import argparse
+import signal
 import sys
+import threading
 import time
+
+
+def counted(n: int, noun: str) -> str:
+    """Return ``"1 image"`` or ``"2,345 images"``."""
+    n = int(n)
+    return f"{n:,} {noun}{'' if n == 1 else 's'}"
 
 
 class CountProgress:
@@ -66,3 +74,41 @@ def run_subcommand(name: str, register, argv=None) -> int:
     register(sub)
     args = parser.parse_args([name, *(sys.argv[1:] if argv is None else argv)])
     return args.func(args)
+
+
+class InterruptFlag:
+    """Turn the first Ctrl-C into a stop request that long work checks between steps.
+
+    Use as a context manager (main thread only; elsewhere it never fires). The instance is the
+    ``cancel`` callable: it returns True once Ctrl-C was pressed. A second Ctrl-C raises
+    KeyboardInterrupt at once.
+
+    Parameters
+    ----------
+    message : str
+        Printed on stderr at the first Ctrl-C (what will happen now).
+    """
+
+    def __init__(self, message: str) -> None:
+        self.message = message
+        self.set = False
+        self._old = None
+
+    def __call__(self) -> bool:
+        return self.set
+
+    def __enter__(self) -> "InterruptFlag":
+        if threading.current_thread() is threading.main_thread():
+            self._old = signal.signal(signal.SIGINT, self._handle)
+        return self
+
+    def _handle(self, signum, frame) -> None:
+        if self.set:                       # second Ctrl-C: stop at once
+            raise KeyboardInterrupt
+        self.set = True
+        print("\n" + self.message, file=sys.stderr, flush=True)
+
+    def __exit__(self, *exc) -> bool:
+        if self._old is not None:
+            signal.signal(signal.SIGINT, self._old)
+        return False

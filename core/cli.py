@@ -15,6 +15,7 @@ import sys
 import time
 from pathlib import Path
 
+from ._cliutil import InterruptFlag, counted
 from .errors import ModescopeError
 
 EXIT_OK, EXIT_UNUSABLE, EXIT_USAGE = 0, 1, 2
@@ -153,8 +154,12 @@ def cmd_analyze(args) -> int:
         return EXIT_USAGE
     start = time.perf_counter()
     progress = None if args.quiet else ProgressLine(sys.stderr)
+    stop = InterruptFlag("modescope analyze: stopping after the current block; the images "
+                         "analysed so far will be written (Ctrl-C again to stop at once and "
+                         "write nothing)")
     try:
-        result = analyze(args.sources, options, progress=progress)
+        with stop:
+            result = analyze(args.sources, options, progress=progress, cancel=stop)
     except ModescopeError as exc:
         print(f"modescope analyze: nothing usable: {exc}", file=sys.stderr)
         return EXIT_UNUSABLE
@@ -169,11 +174,22 @@ def cmd_analyze(args) -> int:
         print("\nmodescope analyze: interrupted; nothing written", file=sys.stderr)
         return 130
     d = result.decomposition
+    if result.cancelled and d is None:
+        print("modescope analyze: interrupted before any image was analysed; nothing written",
+              file=sys.stderr)
+        return 130
     try:
         written = save_model(output, d)
     except ModescopeError as exc:
         print(f"modescope analyze: {exc}", file=sys.stderr)
         return EXIT_UNUSABLE
+    if result.cancelled:
+        print(f"modescope analyze: interrupted; wrote the streaming result of the first "
+              f"{counted(d.n_images, 'image')} to {written} (not exact: run `modescope update "
+              f"{written} SOURCE...` to add the rest and get the exact scoring pass)",
+              file=sys.stderr)
+        _print_problems(result.problems)
+        return 130
     elapsed = time.perf_counter() - start
     rows, cols, ch = d.image_shape
     cum = d.cumulative_energy()

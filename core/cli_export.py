@@ -19,12 +19,10 @@ from __future__ import annotations
 import argparse
 import os
 import re
-import signal
 import sys
-import threading
 from pathlib import Path
 
-from ._cliutil import CountProgress, run_subcommand
+from ._cliutil import CountProgress, InterruptFlag, run_subcommand
 from .errors import ModescopeError
 
 __all__ = ["register", "run", "main", "parse_image_list"]
@@ -154,34 +152,6 @@ def parse_image_list(text: str, decomposition) -> list[int]:
     return list(dict.fromkeys(out))
 
 
-class _InterruptFlag:
-    """Turn the first Ctrl-C into a cancel request checked between files (main thread only)."""
-
-    def __init__(self) -> None:
-        self.set = False
-        self._old = None
-
-    def __call__(self) -> bool:
-        return self.set
-
-    def __enter__(self):
-        if threading.current_thread() is threading.main_thread():
-            self._old = signal.signal(signal.SIGINT, self._handle)
-        return self
-
-    def _handle(self, signum, frame):
-        if self.set:                       # second Ctrl-C: stop at once (temp files removed)
-            raise KeyboardInterrupt
-        self.set = True
-        print("\nexport: stopping after the current file (Ctrl-C again to stop now)",
-              file=sys.stderr, flush=True)
-
-    def __exit__(self, *exc):
-        if self._old is not None:
-            signal.signal(signal.SIGINT, self._old)
-        return False
-
-
 def run(args: argparse.Namespace) -> int:
     """Run an export described by parsed arguments.
 
@@ -238,7 +208,8 @@ def run(args: argparse.Namespace) -> int:
         return EXIT_USAGE
     progress = None if args.quiet else CountProgress(err, "export", "files")
     try:
-        with _InterruptFlag() as interrupted:
+        with InterruptFlag("export: stopping after the current file (Ctrl-C again to stop "
+                           "now)") as interrupted:
             report = run_export(plan, progress=progress, cancel=interrupted)
     except DestinationError as exc:
         print(f"modescope export: {exc}", file=err)

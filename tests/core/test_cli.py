@@ -129,3 +129,34 @@ def test_info_into_a_closed_pipe_stops_quietly(folder, tmp_path, monkeypatch, ca
     monkeypatch.undo()
     assert code == 1                          # stopped quietly: an exit code, no traceback
     assert "Traceback" not in capsys.readouterr().err
+
+
+def test_ctrl_c_writes_the_partial_analysis_and_update_completes_it(folder, tmp_path,
+                                                                      monkeypatch, capsys):
+    import signal
+    from modescope.core.isvd import StreamingSVD
+    out = tmp_path / "partial.npz"
+    real_update = StreamingSVD.update
+    calls = []
+
+    def update_then_ctrl_c(self, block):
+        real_update(self, block)
+        calls.append(block.shape[1])
+        if len(calls) == 2:
+            signal.raise_signal(signal.SIGINT)     # the user presses Ctrl-C once
+    monkeypatch.setattr(StreamingSVD, "update", update_then_ctrl_c)
+    code = main(["analyze", str(folder), "-o", str(out), "--rank", "3", "--block-size", "5",
+                 "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 130
+    assert "stopping after the current block" in err
+    assert "wrote the streaming result of the first 10 images" in err
+    partial = load_model(out)
+    assert partial.n_images == 10 and not partial.exact
+    assert partial.metadata["stage"] == "cancelled"
+    assert signal.getsignal(signal.SIGINT) is signal.default_int_handler   # handler restored
+    monkeypatch.undo()
+    # resuming: update adds the 20 images not yet in the model and runs the exact pass
+    assert main(["update", str(out), str(folder), "-o", str(out), "--quiet"]) == 0
+    full = load_model(out)
+    assert full.n_images == 30 and full.exact
