@@ -13,8 +13,8 @@ each decoded block to one anonymous temporary file and the scoring pass reads it
   (the operating system's file cache may hold the pages, and gives them back when it needs to);
 * a size budget caps the file: once a block would exceed it, caching stops and the scoring
   pass decodes the remaining images from their files as before. The default budget is the
-  smaller of 2 GiB and a quarter of the free space of the temporary folder (our own choice,
-  common practice for scratch files, no published source);
+  smaller of 2 GiB and a quarter of the free space of the temporary folder, or of 512 MB and an
+  eighth of it when that folder is in memory (tmpfs); our own choice, no published source;
 * the file is created with :func:`tempfile.TemporaryFile`, which has no name on POSIX systems
   and is removed by the operating system when it is closed, even after a crash.
 
@@ -23,6 +23,7 @@ Source images are never touched: the cache only holds copies of decoded pixels.
 
 from __future__ import annotations
 
+import os
 import shutil
 import tempfile
 from dataclasses import dataclass
@@ -38,13 +39,36 @@ _GIB = 1 << 30
 _SCALE8 = np.float32(255.0)
 
 
+def _in_memory_filesystem(folder: str, mounts_file: str = "/proc/mounts") -> bool:
+    """True when ``folder`` lies on a tmpfs or ramfs mount (Linux; False where unknown)."""
+    try:
+        with open(mounts_file, encoding="utf-8", errors="replace") as fh:
+            mounts = [line.split()[1:3] for line in fh if len(line.split()) >= 3]
+    except OSError:
+        return False
+    path = os.path.realpath(folder)
+    best, kind = "", ""
+    for point, fstype in mounts:
+        point = point.replace("\\040", " ")
+        inside = path == point or path.startswith(point.rstrip("/") + "/")
+        if inside and len(point) >= len(best):
+            best, kind = point, fstype
+    return kind in ("tmpfs", "ramfs")
+
+
 def default_budget(folder: str | None = None) -> int:
-    """Return the default cache budget in bytes: min(2 GiB, free space of ``folder`` / 4)."""
+    """Return the default cache budget in bytes.
+
+    min(2 GiB, free space of ``folder`` / 4); when the folder is in memory (tmpfs or ramfs, as
+    /tmp is on some Linux systems) min(512 MB, free / 8), because the file then takes RAM.
+    """
     folder = folder or tempfile.gettempdir()
     try:
         free = shutil.disk_usage(folder).free
     except OSError:
         return 0
+    if _in_memory_filesystem(folder):
+        return int(min(_GIB // 2, free // 8))
     return int(min(2 * _GIB, free // 4))
 
 

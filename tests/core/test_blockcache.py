@@ -147,3 +147,26 @@ def test_update_reads_new_images_back_from_the_cache(tmp_path, monkeypatch, budg
                           axis=1)
     w, res = project_images(result, cols)
     np.testing.assert_allclose(result.weights, w, rtol=1e-4, atol=1e-5 * np.max(np.abs(w)))
+
+
+def test_budget_is_smaller_in_memory_backed_folders(tmp_path, monkeypatch):
+    import os
+    import shutil
+    ram = tmp_path / "ram"
+    (ram / "deep").mkdir(parents=True)
+    mounts = tmp_path / "mounts"
+    mounts.write_text(f"/dev/root / ext4 rw 0 0\n"
+                      f"tmpfs {os.path.realpath(ram)} tmpfs rw 0 0\n")
+    # the longest mount point that holds the folder decides
+    assert blockcache._in_memory_filesystem(str(ram / "deep"), str(mounts))
+    assert not blockcache._in_memory_filesystem(str(tmp_path), str(mounts))
+    assert not blockcache._in_memory_filesystem(str(tmp_path), str(tmp_path / "none"))
+    usage = type(shutil.disk_usage(tmp_path))
+    for free, in_memory, expected in ((64 << 30, True, 1 << 29), (64 << 30, False, 2 << 30),
+                                      (1 << 30, True, (1 << 30) // 8),
+                                      (1 << 30, False, (1 << 30) // 4)):
+        monkeypatch.setattr(blockcache.shutil, "disk_usage",
+                            lambda folder, f=free: usage(f * 2, f, f))
+        monkeypatch.setattr(blockcache, "_in_memory_filesystem",
+                            lambda folder, m=in_memory: m)
+        assert blockcache.default_budget(str(tmp_path)) == expected
