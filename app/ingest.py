@@ -447,6 +447,13 @@ class IngestPane(QWidget):
             self.summary_label.setText(f"The analysis is reading the files: {int(done):,} of "
                                        f"{int(total):,} looked at…")
 
+    def show_run_found(self, total: int) -> None:
+        """The analysis finished its own scan and analyses ``total`` images."""
+        if self.source_set is None:
+            self.summary_label.setText(f"The analysis found {int(total):,} usable "
+                                       f"image{'s' if int(total) != 1 else ''}; sizes and "
+                                       "skipped files show here when it ends.")
+
     def run_scan_ended(self, message: str = "") -> None:
         """An analysis that scanned for itself ended without a scan to show."""
         if self.source_set is None:

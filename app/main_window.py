@@ -182,6 +182,7 @@ class MainWindow(QMainWindow):
         self.last_result = None
         self.current_file: str | None = None
         self._run_started = 0.0
+        self._first_learn = False
         self._closing = False
 
         self.inspector = Inspector(self.state, self)
@@ -653,6 +654,7 @@ class MainWindow(QMainWindow):
         self.state.set_decomposition(None)
         self._run_started = time.monotonic()
         self._run_key = run_key
+        self._first_learn = True
         self.runner.start(sources, analysis_options, only=only)
         self.setWindowTitle(title)
         self.progress_bar.setRange(0, 0)
@@ -681,8 +683,12 @@ class MainWindow(QMainWindow):
         total = max(int(getattr(p, "total", 0)), 0)
         done = max(int(getattr(p, "done", 0)), 0)
         stage = _STAGES.get(getattr(p, "stage", ""), str(getattr(p, "stage", "")))
-        if getattr(p, "stage", "") == "scan" and getattr(self, "_run_key", None) is not None:
-            self.ingest.show_run_scan(done, total)
+        if getattr(self, "_run_key", None) is not None:
+            if getattr(p, "stage", "") == "scan":
+                self.ingest.show_run_scan(done, total)
+            elif getattr(p, "stage", "") == "learn" and self._first_learn:
+                self._first_learn = False           # the run's own scan is over
+                self.ingest.show_run_found(total)
         if total:
             self.progress_bar.setRange(0, total)
             self.progress_bar.setValue(min(done, total))

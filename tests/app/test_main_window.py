@@ -456,14 +456,18 @@ def test_open_sample_analyses_bundled_images(qtbot, window):
 # ----- the sources pane while a run scans for itself --------------------------------------------
 def test_pane_reports_the_runs_own_scan(qtbot, window, small_collection):
     w = window
-    seen = []
-    w.runner.progress.connect(lambda p: seen.append(w.ingest.summary_label.text())
-                              if p.stage == "scan" else None)
+    seen = {"scan": [], "learn": []}
+    # connected after the window's own slot, so the pane has been updated for this signal
+    w.runner.progress.connect(lambda p: seen[p.stage].append(w.ingest.summary_label.text())
+                              if p.stage in seen else None)
     with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT):
         assert w.start_analysis([str(small_collection)], StoredOptions(rank=3))
         # started straight away: no invitation to add a folder while the run reads the files
         assert w.ingest.summary_label.text().startswith("The analysis is reading the files")
-    assert seen and all(t.startswith("The analysis is reading the files") for t in seen)
+    assert seen["scan"] and all(t.startswith("The analysis is reading the files")
+                                for t in seen["scan"])
+    # once the run's scan is over, the pane says how many images it found
+    assert seen["learn"] and seen["learn"][0].startswith("The analysis found 40 usable images")
     assert "40 images of 48 × 64 pixels" in w.ingest.summary_label.text()
 
 
