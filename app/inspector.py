@@ -286,6 +286,7 @@ class Inspector(QWidget):
         self._live = None           # LiveReconstruction of the selected image
         self._cache_value: np.ndarray | None = None
         self._source_qimage: tuple | None = None   # (source array, its QImage)
+        self._running = False
         self._cache_error = ""
         self._syncing = False
         self.source_array: np.ndarray | None = None
@@ -389,6 +390,14 @@ class Inspector(QWidget):
             self._push_rank()
 
     # ----- drawing -----------------------------------------------------------------------------
+    def set_running(self, running: bool) -> None:
+        """Say whether an analysis is running (the empty view then tells it is coming)."""
+        running = bool(running)
+        if running != self._running:
+            self._running = running
+            if self._state.decomposition is None:
+                self.refresh()
+
     def _source(self, decomposition, index: int) -> tuple[np.ndarray | None, str]:
         """Return the cached source image of ``index`` (re-read when the selection changes)."""
         path = decomposition.paths[index] if decomposition.paths else ""
@@ -436,7 +445,12 @@ class Inspector(QWidget):
             else:
                 title = "No image selected"
             self.title_label.setText(title)
-            hint = "" if d is not None else "Add images in the Sources pane and start an analysis."
+            if d is not None:
+                hint = ""
+            elif self._running:
+                hint = "Analysis running: the first results appear after the first block."
+            else:
+                hint = "Add images in the Sources pane and start an analysis."
             self.source_pane.set_image(None, hint)
             self.reconstruction_pane.set_image(None)
             self.residual_pane.set_image(None)

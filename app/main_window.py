@@ -672,6 +672,7 @@ class MainWindow(QMainWindow):
     @Slot(bool)
     def _on_running_changed(self, running: bool) -> None:
         self.ingest.set_running(running)
+        self.inspector.set_running(running)
         self.cancel_action.setEnabled(running)
         self.start_action.setEnabled(not running)
         if not running:

@@ -230,3 +230,14 @@ def test_to_uint8_rounds_clips_and_handles_non_finite_values():
     np.testing.assert_array_equal(to_uint8(np.array([[True, False]])), [[255, 0]])
     u = rng.integers(0, 256, (4, 4), dtype=np.uint8)
     assert to_uint8(u) is not None and np.array_equal(to_uint8(u), u)
+
+
+def test_empty_inspector_tells_when_an_analysis_is_running(qtbot):
+    state = AppState()
+    ins = Inspector(state)
+    qtbot.addWidget(ins)
+    assert ins.source_pane._note.startswith("Add images in the Sources pane")
+    ins.set_running(True)
+    assert ins.source_pane._note.startswith("Analysis running")
+    ins.set_running(False)
+    assert ins.source_pane._note.startswith("Add images in the Sources pane")
