@@ -439,7 +439,7 @@ class Inspector(QWidget):
             self.source_array = self.reconstruction_array = self.residual_array = None
             self.source_note = ""
             if d is None:
-                title = "No analysis yet"
+                title = "Analysis starting…" if self._running else "No analysis yet"
             elif d.rank == 0 and d.n_images:
                 title = NO_VARIATION
             else:

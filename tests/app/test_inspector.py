@@ -239,5 +239,6 @@ def test_empty_inspector_tells_when_an_analysis_is_running(qtbot):
     assert ins.source_pane._note.startswith("Add images in the Sources pane")
     ins.set_running(True)
     assert ins.source_pane._note.startswith("Analysis running")
+    assert ins.title_label.text() == "Analysis starting…"
     ins.set_running(False)
     assert ins.source_pane._note.startswith("Add images in the Sources pane")
