@@ -97,3 +97,14 @@ def gray_decomposition(gray_pngs):
 def make_decomposition():
     """The :func:`decomposition_from_arrays` helper, for tests that build their own data."""
     return decomposition_from_arrays
+
+
+@pytest.fixture
+def state(dec):
+    """An AppState holding the module's ``dec`` decomposition (modules that analyse something
+    else define their own ``state``)."""
+    from modescope.app.state import AppState
+
+    s = AppState()
+    s.set_decomposition(dec)
+    return s

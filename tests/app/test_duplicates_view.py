@@ -17,7 +17,6 @@ from scipy.spatial.distance import pdist, squareform
 
 from modescope.app.duplicates_view import (DEFAULT_TOLERANCE, KIND_ROLE, TOLERANCE_TIP,
                                            DuplicatesView)
-from modescope.app.state import AppState
 from modescope.core import review
 
 N, K = 16, 6
@@ -41,13 +40,6 @@ def images():
 @pytest.fixture
 def dec(make_decomposition, images):
     return make_decomposition(images, K, [f"/data/tray/frame_{i:02d}.png" for i in range(N)])
-
-
-@pytest.fixture
-def state(dec):
-    s = AppState()
-    s.set_decomposition(dec)
-    return s
 
 
 @pytest.fixture

@@ -63,13 +63,6 @@ def dec(make_decomposition, images, tmp_path):
 
 
 @pytest.fixture
-def state(dec):
-    s = AppState()
-    s.set_decomposition(dec)
-    return s
-
-
-@pytest.fixture
 def view(qtbot, state):
     v = OutlierView(state)
     qtbot.addWidget(v)
