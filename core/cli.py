@@ -160,19 +160,9 @@ def cmd_analyze(args) -> int:
     try:
         with stop:
             result = analyze(args.sources, options, progress=progress, cancel=stop)
-    except ModescopeError as exc:
-        print(f"modescope analyze: nothing usable: {exc}", file=sys.stderr)
-        return EXIT_UNUSABLE
-    except MemoryError:
-        print("modescope analyze: not enough memory; try --downscale 2 (or more) or a smaller "
-              "--block-size", file=sys.stderr)
-        return EXIT_UNUSABLE
-    except OSError as exc:
-        print(f"modescope analyze: {exc}", file=sys.stderr)
-        return EXIT_UNUSABLE
-    except KeyboardInterrupt:
-        print("\nmodescope analyze: interrupted; nothing written", file=sys.stderr)
-        return 130
+    except (ModescopeError, MemoryError, OSError, KeyboardInterrupt) as exc:
+        return _failed("analyze", exc, unusable="nothing usable: ",
+                       memory_hint="; try --downscale 2 (or more) or a smaller --block-size")
     d = result.decomposition
     if result.cancelled and d is None:
         print("modescope analyze: interrupted before any image was analysed; nothing written",
@@ -216,18 +206,8 @@ def cmd_update(args) -> int:
         progress = None if args.quiet else ProgressLine(sys.stderr)
         result = update_analysis(d, args.sources, options, progress=progress)
         written = save_model(args.output, result.decomposition)
-    except ModescopeError as exc:
-        print(f"modescope update: {exc}", file=sys.stderr)
-        return EXIT_UNUSABLE
-    except MemoryError:
-        print("modescope update: not enough memory", file=sys.stderr)
-        return EXIT_UNUSABLE
-    except OSError as exc:
-        print(f"modescope update: {exc}", file=sys.stderr)
-        return EXIT_UNUSABLE
-    except KeyboardInterrupt:
-        print("\nmodescope update: interrupted; nothing written", file=sys.stderr)
-        return 130
+    except (ModescopeError, MemoryError, OSError, KeyboardInterrupt) as exc:
+        return _failed("update", exc)
     new = result.decomposition
     print(f"added {new.n_images - d.n_images} images to {d.n_images}; "
           f"{'exact scoring pass done' if new.exact else 'streaming update only'}",
@@ -235,6 +215,20 @@ def cmd_update(args) -> int:
     print(f"wrote {written}", file=sys.stderr)
     _print_problems(result.problems)
     return EXIT_OK
+
+
+def _failed(command: str, exc: BaseException, unusable: str = "", memory_hint: str = "") -> int:
+    """Print why ``modescope COMMAND`` stopped and return its exit code (nothing was written)."""
+    if isinstance(exc, KeyboardInterrupt):
+        print(f"\nmodescope {command}: interrupted; nothing written", file=sys.stderr)
+        return 130
+    if isinstance(exc, MemoryError):
+        print(f"modescope {command}: not enough memory{memory_hint}", file=sys.stderr)
+    elif isinstance(exc, ModescopeError):
+        print(f"modescope {command}: {unusable}{exc}", file=sys.stderr)
+    else:
+        print(f"modescope {command}: {exc}", file=sys.stderr)
+    return EXIT_UNUSABLE
 
 
 def _print_problems(problems) -> None:
