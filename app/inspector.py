@@ -466,7 +466,7 @@ class Inspector(QWidget):
         if page:
             name += f" (page {page})"
         status = "" if d.exact else "  — analysis in progress"
-        self.title_label.setText(f"Image {index + 1} of {d.n_images}: {name}{status}")
+        self.title_label.setText(f"Image {index + 1:,} of {d.n_images:,}: {name}{status}")
         self.title_label.setToolTip(path)
 
         live = self._live

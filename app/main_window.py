@@ -695,7 +695,7 @@ class MainWindow(QMainWindow):
             self.progress_bar.setValue(min(done, total))
         else:
             self.progress_bar.setRange(0, 0)
-        parts = [f"{stage}: {done} of {total}"]
+        parts = [f"{stage}: {done:,} of {total:,}"]
         rate = float(getattr(p, "rate", 0.0) or 0.0)
         if rate > 0:
             parts.append(f"{rate:,.0f} images/s")

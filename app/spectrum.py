@@ -19,7 +19,7 @@ from PySide6.QtWidgets import (QDoubleSpinBox, QHBoxLayout, QLabel, QPushButton,
 
 from modescope.core.rank import energy_rank, gavish_donoho
 
-from .imaging import NO_VARIATION
+from .imaging import NO_VARIATION, counted
 from .redraw import ThrottledRedraw
 from .state import AppState
 
@@ -247,7 +247,7 @@ class SpectrumView(ThrottledRedraw, QWidget):
         kept = cum[r - 1] if r >= 1 else 0.0
         kind = "final" if d.exact else "snapshot during the run"
         self.summary.setText(f"Rank r = {r} of {d.rank}: {100 * kept:.1f} % of the energy "
-                             f"({d.n_images} images, {kind})")
+                             f"({counted(d.n_images, 'image')}, {kind})")
 
     @Slot()
     def _update_suggestions(self, *_) -> None:

@@ -27,7 +27,7 @@ from PySide6.QtWidgets import (QComboBox, QGraphicsRectItem, QHBoxLayout, QLabel
 
 from modescope.core.decomposition import Decomposition
 
-from .imaging import NO_VARIATION
+from .imaging import NO_VARIATION, counted
 from .redraw import ThrottledRedraw
 from .state import AppState
 
@@ -76,6 +76,9 @@ def _style(plot: pg.PlotItem) -> None:
     for ax in ("left", "bottom"):
         plot.getAxis(ax).setTextPen(fg)
         plot.getAxis(ax).setPen(fg)
+        # weights are plain numbers: no "(x0.001)" scale factor in the axis title, which a
+        # short plot would clip
+        plot.getAxis(ax).enableAutoSIPrefix(False)
     plot.setMenuEnabled(False)
 
 
@@ -187,7 +190,8 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.seq_widget = pg.PlotWidget(self, background="w")
         self.seq_plot = self.seq_widget.getPlotItem()
         _style(self.seq_plot)
-        self.seq_plot.setLabel("bottom", "image number")
+        # the title says what the x axis counts (no axis title: the short plot keeps room for
+        # its tick labels)
         self.seq_plot.setLabel("left", "weight")
         self.seq_a = self.seq_plot.plot([], [], pen=pg.mkPen(_A_COLOUR, width=1.5))
         self.seq_b = self.seq_plot.plot([], [], pen=pg.mkPen(_B_COLOUR, width=1.5))
@@ -304,12 +308,13 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.seq_a.setData(n_idx, x)
         self.seq_b.setData(n_idx, y)
         self.seq_plot.setTitle(
-            f"<span style='color:{_A_COLOUR.name()}'>&#9644; {a + 1}</span>&nbsp;&nbsp;"
-            f"<span style='color:{_B_COLOUR.name()}'>&#9644; {b + 1}</span>", size="9pt")
+            f"Weights on <span style='color:{_A_COLOUR.name()}'>&#9644; {a + 1}</span>&nbsp;"
+            f"and <span style='color:{_B_COLOUR.name()}'>&#9644; {b + 1}</span> against image "
+            f"number", color="#222", size="9pt")
         self.bars_plot.setXRange(0.4, d.rank + 0.6, padding=0)
         self.seq_line.setBounds((1, d.n_images))
         kind = "final" if d.exact else "snapshot during the run"
-        self.info.setText(f"{d.n_images} images, {kind}")
+        self.info.setText(f"{counted(d.n_images, 'image')}, {kind}")
         self._update_selected()
         self._update_set_marks()
 
