@@ -327,8 +327,6 @@ class BasisGallery(ThrottledRedraw, QWidget):
         Longest side of a tile picture in pixels.
     """
 
-    REDRAW_MS = 100
-
     def __init__(self, state: AppState, parent: QWidget | None = None, icon_size: int = 112):
         super().__init__(parent)
         if not isinstance(state, AppState):

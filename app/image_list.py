@@ -235,8 +235,6 @@ class ImageListView(ThrottledRedraw, QWidget):
     thumbnail threads are stopped.
     """
 
-    REDRAW_MS = 100
-
     def __init__(self, state: AppState, parent: QWidget | None = None,
                  thumbnail_size: int = 64, cache_size: int = 2000):
         super().__init__(parent)

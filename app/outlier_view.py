@@ -23,7 +23,6 @@ Every number comes from :func:`modescope.core.outliers.score_table` and
 from __future__ import annotations
 
 import os
-import time
 
 import numpy as np
 import pyqtgraph as pg
@@ -421,7 +420,6 @@ class OutlierView(ThrottledRedraw, QWidget):
 
     refitRequested = Signal(object, object)
 
-    REDRAW_MS = 100
     #: Log-axis floor for values of 0, in decades below the smallest positive value.
     LOG_FLOOR_DECADES = 1.0
 
@@ -768,13 +766,7 @@ class OutlierView(ThrottledRedraw, QWidget):
 
     @Slot()
     def _redraw(self) -> None:
-        self.redraw_count += 1
-        t0 = time.perf_counter()
-        try:
-            self._recompute()
-        finally:
-            spent_ms = 1000.0 * (time.perf_counter() - t0)
-            self._timer.setInterval(int(max(self.REDRAW_MS, min(1000.0, 3.0 * spent_ms))))
+        self._timed_redraw(self._recompute)
 
     def _show_waiting(self, text: str) -> None:
         self.scores = None

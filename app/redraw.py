@@ -8,6 +8,8 @@ signals to :meth:`~ThrottledRedraw._schedule`; the bursts are merged into one ca
 
 from __future__ import annotations
 
+import time
+
 from PySide6.QtCore import QTimer
 
 __all__ = ["ThrottledRedraw"]
@@ -27,6 +29,17 @@ class ThrottledRedraw:
         self._timer.setSingleShot(True)
         self._timer.setInterval(self.REDRAW_MS)
         self._timer.timeout.connect(self._redraw)
+
+    def _timed_redraw(self, draw) -> None:
+        """Run ``draw()`` and stretch the interval to 3x its duration (100 ms to 1 s), so that a
+        slow redraw (many points) leaves the GUI time to respond between two of them."""
+        self.redraw_count += 1
+        t0 = time.perf_counter()
+        try:
+            draw()
+        finally:
+            spent_ms = 1000.0 * (time.perf_counter() - t0)
+            self._timer.setInterval(int(max(self.REDRAW_MS, min(1000.0, 3.0 * spent_ms))))
 
     def _schedule(self, *_) -> None:
         """Merge bursts of changes into one redraw (at most one per REDRAW_MS)."""

@@ -67,7 +67,6 @@ class SpectrumView(ThrottledRedraw, QWidget):
         The draggable rank line in each plot.
     """
 
-    REDRAW_MS = 100
     DRAG_MS = 60
 
     def __init__(self, state: AppState, parent: QWidget | None = None):

@@ -16,7 +16,6 @@ Images are numbered from 1 for display; ``state.selected`` stays 0-based.
 
 from __future__ import annotations
 
-import time
 
 import numpy as np
 import pyqtgraph as pg
@@ -103,7 +102,6 @@ class WeightsView(ThrottledRedraw, QWidget):
         The selected image in the sequence plot.
     """
 
-    REDRAW_MS = 100
     DRAG_MS = 60
 
     def __init__(self, state: AppState, parent: QWidget | None = None):
@@ -255,14 +253,7 @@ class WeightsView(ThrottledRedraw, QWidget):
     # ----- state -> view ---------------------------------------------------------------------
     @Slot()
     def _redraw(self) -> None:
-        self.redraw_count += 1
-        t0 = time.perf_counter()
-        try:
-            self._draw()
-        finally:
-            # many points: wait longer between redraws so the GUI stays responsive
-            spent_ms = 1000.0 * (time.perf_counter() - t0)
-            self._timer.setInterval(int(max(self.REDRAW_MS, min(1000.0, 3.0 * spent_ms))))
+        self._timed_redraw(self._draw)
 
     def _draw(self) -> None:
         d = self.state.decomposition
