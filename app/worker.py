@@ -30,7 +30,7 @@ import threading
 import time
 from typing import Any, Callable, Sequence
 
-from PySide6.QtCore import QCoreApplication, QObject, QThread, Signal, Slot
+from PySide6.QtCore import QObject, QThread, Signal, Slot
 
 from modescope.core.errors import AnalysisCancelled, ModescopeError
 
@@ -121,6 +121,7 @@ class AnalysisWorker(QObject):
         self._pending = None
         self._stage = ""
         self._done = threading.Event()
+        self._started = threading.Event()
         self.partials_seen = 0      # snapshots handed over by the pipeline
         self.partials_sent = 0      # snapshots emitted
         self._kick.connect(self.run)
@@ -181,6 +182,7 @@ class AnalysisWorker(QObject):
     @Slot()
     def run(self) -> None:
         """Run the analysis (call in the worker's thread; blocks until it ends)."""
+        self._started.set()
         try:
             if self._cancel.is_set():
                 self._emit_end(self.cancelled, None)
@@ -206,14 +208,17 @@ class AnalysisWorker(QObject):
                 self._emit_end(self.finished, result)
 
     def _emit_end(self, signal: Any, value: Any) -> None:
-        # Hand the object back to the GUI thread before the last signal, so that it is deleted
-        # there once the runner lets go of it (the worker thread never owns a dead worker).
-        app = QCoreApplication.instance()
-        if app is not None and self.thread() is not app.thread() \
-                and self.thread() is QThread.currentThread():
-            self.moveToThread(app.thread())
+        # No moveToThread here: called from this thread with the GIL held, it waits for Qt's
+        # pooled signal/slot mutexes, and the GUI thread can hold one of those while it waits
+        # for the GIL (destroying a Python-made QObject asks PySide for overrides). That
+        # deadlock was seen once in the tests. The runner deletes a finished worker only once
+        # the thread has moved on to a newer one or has stopped (see _drop_finished_workers).
         self._done.set()
         signal.emit(value)
+
+    def has_started(self) -> bool:
+        """Return True once :meth:`run` has begun in the worker thread (thread-safe)."""
+        return self._started.is_set()
 
 
 class AnalysisRunner(QObject):
@@ -341,7 +346,13 @@ class AnalysisRunner(QObject):
         return stopped
 
     def _drop_finished_workers(self) -> None:
-        self._old_workers = [w for w in self._old_workers if not w.is_done()]
+        # A finished worker still lives in the worker thread, which may be finishing the event
+        # that ran it. It is let go (and so deleted, from this thread) only when that thread is
+        # gone or has started a newer worker: it then has nothing of the old one left to do.
+        thread_moved_on = (self._thread is None or
+                           (self._worker is not None and self._worker.has_started()))
+        if thread_moved_on:
+            self._old_workers = [w for w in self._old_workers if not w.is_done()]
 
     def _is_current(self) -> bool:
         sender = self.sender()

@@ -11,6 +11,24 @@ from modescope.app.settings import Settings
 from modescope.core.decomposition import Decomposition, fix_signs
 
 
+@pytest.fixture(autouse=True)
+def _deferred_deletes_done_first(qapp):
+    """Delete the widgets earlier tests closed (deleteLater) before this test starts a run.
+
+    Otherwise the GUI thread destroys them inside a later test's event loop while its analysis
+    thread emits signals; destroying a Python-made QObject makes PySide take the GIL while Qt
+    holds one of its pooled signal/slot mutexes, which deadlocked once against a worker thread
+    waiting for that mutex with the GIL held.
+    """
+    import gc
+
+    from PySide6.QtCore import QCoreApplication, QEvent
+
+    QCoreApplication.sendPostedEvents(None, QEvent.Type.DeferredDelete.value)
+    gc.collect()
+    yield
+
+
 @pytest.fixture
 def ini_settings(tmp_path):
     """Settings kept in a temporary INI file (never the user's own store)."""

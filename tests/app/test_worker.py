@@ -11,7 +11,6 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 from PIL import Image
-from PySide6.QtWidgets import QApplication
 
 from modescope.app.worker import AnalysisRunner, AnalysisWorker, error_message
 from modescope.core import model_file, pipeline
@@ -229,8 +228,10 @@ def test_analysis_runs_off_the_gui_thread(qtbot, runner):
     with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
         worker = runner.start(["x"], None)
     assert where == [False]
-    # the finished worker has been handed back to the GUI thread, where it will be deleted
-    assert worker.thread() is QApplication.instance().thread()
+    # the finished worker stays in the worker thread (no moveToThread from there: see
+    # AnalysisWorker._emit_end); the runner keeps it until the thread has moved on
+    assert worker.thread() is runner.worker_thread
+    assert worker.is_done() and worker.has_started()
 
 
 def test_scan_progress_is_thinned_but_ends_complete(qtbot):
@@ -251,3 +252,25 @@ def test_scan_progress_is_thinned_but_ends_complete(qtbot):
     assert scan[0] == 1 and scan[-1] == 5000
     assert len(scan) < 100                           # 5,000 calls in well under 5 s
     assert [p.stage for p in seen][-1] == "learn"     # other stages pass unchanged
+
+
+def test_finished_workers_are_kept_until_the_thread_moved_on(qtbot, runner):
+    # a finished worker is deleted only once the worker thread has started a newer one (it
+    # may still be finishing the event that ran the old one) or has stopped
+    def fake(sources, options, *, progress, cancel, on_partial):
+        return SimpleNamespace(decomposition=None, cancelled=False, problems=())
+
+    runner._analyze = fake
+    with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
+        first = runner.start(["x"], None)
+    first_ref = weakref.ref(first)
+    del first
+    with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
+        second = runner.start(["y"], None)
+    assert second.has_started() and second.is_done()
+    # the first worker was let go when the second had started
+    with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
+        runner.start(["z"], None)
+    gc.collect()
+    assert first_ref() is None
+    assert second not in runner._old_workers     # and the second once the third had started
