@@ -39,6 +39,7 @@ from PySide6.QtWidgets import (
 
 from modescope.core.errors import AnalysisCancelled, ModescopeError
 
+from .imaging import counted
 from .settings import StoredOptions
 
 __all__ = ["IngestPane", "make_analysis_options", "scan_collection", "describe_source_set",
@@ -450,9 +451,8 @@ class IngestPane(QWidget):
     def show_run_found(self, total: int) -> None:
         """The analysis finished its own scan and analyses ``total`` images."""
         if self.source_set is None:
-            self.summary_label.setText(f"The analysis found {int(total):,} usable "
-                                       f"image{'s' if int(total) != 1 else ''}; sizes and "
-                                       "skipped files show here when it ends.")
+            self.summary_label.setText(f"The analysis found {counted(total, 'usable image')}; "
+                                       "sizes and skipped files show here when it ends.")
 
     def run_scan_ended(self, message: str = "") -> None:
         """An analysis that scanned for itself ended without a scan to show."""

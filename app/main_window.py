@@ -183,6 +183,7 @@ class MainWindow(QMainWindow):
         self.current_file: str | None = None
         self._run_started = 0.0
         self._first_learn = False
+        self._run_key = None        # (sources, options) of a run that scans for the pane
         self._closing = False
 
         self.inspector = Inspector(self.state, self)
@@ -632,7 +633,7 @@ class MainWindow(QMainWindow):
         files = list(dict.fromkeys(p for p, _ in pairs))
         self.ingest.stop_scan()
         self._begin_run(files, analysis_options,
-                        f"Modescope — refit of {len(pairs):,} images", only=pairs)
+                        f"Modescope — refit of {counted(len(pairs), 'image')}", only=pairs)
         return True
 
     def _checked_options(self, anything: bool, options: StoredOptions, empty_hint: str):
@@ -684,7 +685,7 @@ class MainWindow(QMainWindow):
         total = max(int(getattr(p, "total", 0)), 0)
         done = max(int(getattr(p, "done", 0)), 0)
         stage = _STAGES.get(getattr(p, "stage", ""), str(getattr(p, "stage", "")))
-        if getattr(self, "_run_key", None) is not None:
+        if self._run_key is not None:
             if getattr(p, "stage", "") == "scan":
                 self.ingest.show_run_scan(done, total)
             elif getattr(p, "stage", "") == "learn" and self._first_learn:
@@ -711,7 +712,7 @@ class MainWindow(QMainWindow):
     @Slot(object)
     def _on_finished(self, result) -> None:
         self.last_result = result
-        key = getattr(self, "_run_key", None)
+        key = self._run_key
         if key is not None and self.ingest.scanned_for(*key) is None:
             self.ingest.adopt(result.source_set, *key)
         if result.decomposition is not None:
@@ -728,7 +729,7 @@ class MainWindow(QMainWindow):
     def _on_cancelled(self, result) -> None:
         self.last_result = result
         d = None if result is None else result.decomposition
-        key = getattr(self, "_run_key", None)
+        key = self._run_key
         if key is not None and self.ingest.scanned_for(*key) is None:
             if result is not None and result.source_set.n_images:
                 self.ingest.adopt(result.source_set, *key)   # the scan itself was complete
@@ -739,8 +740,8 @@ class MainWindow(QMainWindow):
         if d is not None:
             self.state.set_decomposition(d)
             self.statusBar().showMessage(
-                f"Analysis cancelled: the partial result from {counted(d.n_images, 'image')} is kept "
-                "(it can be saved).", 10000)
+                f"Analysis cancelled: the partial result from {counted(d.n_images, 'image')} "
+                "is kept (it can be saved).", 10000)
         else:
             self.statusBar().showMessage("Analysis cancelled before any image was analysed.",
                                          10000)
@@ -748,7 +749,7 @@ class MainWindow(QMainWindow):
     @Slot(str)
     def _on_failed(self, message: str) -> None:
         self.last_result = None
-        key = getattr(self, "_run_key", None)
+        key = self._run_key
         if key is not None and self.ingest.scanned_for(*key) is None:
             self.ingest.run_scan_ended(f"Not analysed: {message}")
         self.statusBar().showMessage("The analysis failed.", 10000)

@@ -188,7 +188,7 @@ def cmd_analyze(args) -> int:
     else:
         captured = ("no basis images: the images do not vary (each one equals the mean image"
                     + (", as a single image always does)" if d.n_images == 1 else ")"))
-    print(f"analysed {d.n_images} image{'s' if d.n_images != 1 else ''} of {rows}x{cols} "
+    print(f"analysed {counted(d.n_images, 'image')} of {rows}x{cols} "
           f"({'gray' if ch == 1 else 'rgb'}) in {elapsed:.1f} s; {captured}", file=sys.stderr)
     print(f"wrote {written}", file=sys.stderr)
     _print_problems(result.problems)
