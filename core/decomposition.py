@@ -23,7 +23,7 @@ from typing import Any
 
 import numpy as np
 
-from ._checks import check_int
+from modescope.core.validation import check_int
 
 __all__ = ["Decomposition", "fix_signs"]
 

@@ -5,7 +5,7 @@ Not collected by the test run (file name does not start with ``test_``). Run it 
 
     .venv/bin/python tests/benchmarks/bench_foundation.py [--quick] [--workdir DIR]
 
-It writes two generated collections (germination-tray frames from ``modescope.core.demo``) once
+It writes two generated collections (germination-tray frames from ``modescope.core.demo.tray``) once
 into the work folder (default: a ``modescope-bench`` folder in the system temp folder):
 5,000 gray 128x128 PNG and 2,000 RGB 256x256 JPEG (``--quick``: 1,000 and 400). Every
 measurement runs in its own child process and reports that process's own peak resident memory
@@ -39,7 +39,7 @@ K = 50
 def _write_one(args):
     folder, index, n, size, color, fmt = args
     from PIL import Image
-    from modescope.core.demo import render_frame
+    from modescope.core.demo.tray import render_frame
     rgb = render_frame(index, n_frames=n, size=size, seed=11)
     img = Image.fromarray(rgb)
     if color == "gray":
@@ -86,8 +86,8 @@ def _peak_mb():
 
 CHILD_DECODE = PEAK + r"""
 import json, sys, time
-from modescope.core.pipeline import AnalysisOptions, decode_workers, scan
-from modescope.core.reader import iter_blocks
+from modescope.core.engine.pipeline import AnalysisOptions, decode_workers, scan
+from modescope.core.sources.decode import iter_blocks
 folder, color = sys.argv[1], sys.argv[2]
 t = time.perf_counter()
 opts = AnalysisOptions(color=color)
@@ -103,8 +103,8 @@ import json, sys, time
 import numpy as np
 from threadpoolctl import threadpool_limits
 from sklearn.decomposition import IncrementalPCA
-from modescope.core.pipeline import AnalysisOptions, scan
-from modescope.core.reader import iter_blocks
+from modescope.core.engine.pipeline import AnalysisOptions, scan
+from modescope.core.sources.decode import iter_blocks
 folder, color, batch, out = sys.argv[1], sys.argv[2], int(sys.argv[3]), sys.argv[4]
 t = time.perf_counter()
 ss = scan([folder], AnalysisOptions(color=color))
@@ -132,7 +132,7 @@ print(json.dumps({"seconds": time.perf_counter() - t, "peak_mb": _peak_mb()}))
 RUN_CLI = PEAK + r"""
 import sys
 report = sys.argv[1]
-from modescope.core.cli import main
+from modescope.app.cli.main import main
 try:
     code = main(sys.argv[2:])
 finally:
@@ -168,8 +168,8 @@ def run_child(code: str, *args) -> dict:
 
 def exact_reference(folder: Path, color: str):
     from scipy.sparse.linalg import svds
-    from modescope.core.pipeline import AnalysisOptions, scan
-    from modescope.core.reader import iter_blocks
+    from modescope.core.engine.pipeline import AnalysisOptions, scan
+    from modescope.core.sources.decode import iter_blocks
     ss = scan([folder], AnalysisOptions(color=color))
     cols = [b.data for b in iter_blocks(ss, block_size=256, workers=2)]
     x = np.concatenate(cols, axis=1)
@@ -203,7 +203,7 @@ def bench_set(name, folder, color, n, quick, batches):
         cli = [sys.executable, RUN_CLI, "analyze", str(folder), "-o",
                str(model), "--rank", str(K), "--color", color, "--quiet"]
         ana = run_child(CHILD_ANALYZE, *cli)
-        from modescope.core.model_file import load_model
+        from modescope.core.output.model_file import load_model
         d = load_model(model)
         print(f"modescope analyze k={K}:           {ana['seconds']:7.2f} s, "
               f"peak {ana['peak_mb']:,.0f} MB", flush=True)

@@ -33,10 +33,10 @@ import numpy as np
 
 def slider_step(k=200, shape=(512, 512, 3), steps=60):
     from PySide6.QtWidgets import QApplication
-    from modescope.app.inspector import Inspector
-    from modescope.app.state import AppState
+    from modescope.app.desktop.views.inspector import Inspector
+    from modescope.app.desktop.state import AppState
     from modescope.core.decomposition import Decomposition
-    from modescope.core.reconstruct import LiveReconstruction
+    from modescope.core.review.reconstruct import LiveReconstruction
 
     app = QApplication.instance() or QApplication([])
     pixels = int(np.prod(shape))
@@ -89,9 +89,9 @@ def slider_step(k=200, shape=(512, 512, 3), steps=60):
 
 def first_partial(n_images: int, workdir: Path):
     from PySide6.QtWidgets import QApplication
-    from modescope.app.main_window import MainWindow
-    from modescope.app.settings import Settings
-    from modescope.core.demo import write_collection
+    from modescope.app.desktop.main_window import MainWindow
+    from modescope.app.desktop.settings import Settings
+    from modescope.core.demo.tray import write_collection
     from PySide6.QtCore import QSettings
 
     folder = workdir / f"tray_{n_images}"

@@ -1,0 +1,551 @@
+"""The inspector: one image next to its rank-r reconstruction and the residual.
+
+The image shown is the state's selected image, re-read from its source file with the analysis
+options (``pipeline.load_analysis_image``) and cached while it stays selected. The reconstruction
+comes from ``core.reconstruct.LiveReconstruction`` (mean plus the first r basis images times the
+image's weights: no SVD is computed here). The residual is ``image - reconstruction``, shown with
+the diverging colour map and a legend of its value range; colour images show the mean over their
+channels. When the source file is missing or changed, a note says so and the reconstruction is
+still shown.
+
+The rank slider writes ``state.set_rank`` through a short single-shot timer, so dragging it
+repaints the reconstruction live without flooding the other views.
+"""
+
+from __future__ import annotations
+
+import os
+from typing import Any, Callable
+
+import numpy as np
+from PySide6.QtCore import QRectF, QSize, Qt, QTimer, Slot
+from PySide6.QtGui import QColor, QImage, QPainter, QPalette
+from PySide6.QtWidgets import (
+    QHBoxLayout,
+    QLabel,
+    QSizePolicy,
+    QSlider,
+    QVBoxLayout,
+    QWidget,
+)
+
+from modescope.core.errors import ModescopeError
+from modescope.core.review.reconstruct import LiveReconstruction
+
+from modescope.app.desktop.imaging import (NO_VARIATION, array_to_qimage, colorbar_qimage, signed_to_qimage,
+                      symmetric_limit)
+from modescope.app.desktop.state import AppState
+
+__all__ = ["ImagePane", "ColorLegend", "Inspector", "RANK_DEBOUNCE_MS"]
+
+#: Delay between a slider move and the rank reaching the shared state.
+RANK_DEBOUNCE_MS = 15
+
+
+def _default_loader(decomposition, index: int) -> np.ndarray:
+    from modescope.core.engine import pipeline
+
+    return pipeline.load_analysis_image(decomposition, index)
+
+
+class ImagePane(QWidget):
+    """Paint one QImage scaled to fit with its aspect ratio kept, or a note when there is none.
+
+    Parameters
+    ----------
+    title : str
+        Caption drawn above the image.
+    parent : QWidget, optional
+    """
+
+    def __init__(self, title: str = "", parent: QWidget | None = None):
+        super().__init__(parent)
+        self._title = title
+        self._image = QImage()
+        self._note = ""
+        self.setMinimumSize(96, 96)
+        self.setSizePolicy(QSizePolicy.Policy.Expanding, QSizePolicy.Policy.Expanding)
+
+    def sizeHint(self) -> QSize:  # noqa: N802 - Qt name
+        return QSize(220, 200)
+
+    def title(self) -> str:
+        """Return the caption."""
+        return self._title
+
+    def set_title(self, title: str) -> None:
+        """Change the caption."""
+        if title != self._title:
+            self._title = title
+            self.update()
+
+    def image(self) -> QImage:
+        """Return the image shown (a null QImage when none)."""
+        return self._image
+
+    def note(self) -> str:
+        """Return the note shown instead of (or over) the image."""
+        return self._note
+
+    def set_image(self, image: QImage | None, note: str = "") -> None:
+        """Show ``image`` (None for none) and an optional note."""
+        if image is not None and image is self._image and note == self._note:
+            return                      # the same picture: no repaint (rank steps keep the source)
+        self._image = image if image is not None else QImage()
+        self._note = note
+        self.update()
+
+    def image_rect(self) -> QRectF:
+        """Return where the image is drawn, in widget coordinates."""
+        fm = self.fontMetrics()
+        top = fm.height() + 4
+        area = QRectF(0, top, self.width(), max(1, self.height() - top))
+        if self._image.isNull():
+            return area
+        iw, ih = self._image.width(), self._image.height()
+        scale = min(area.width() / iw, area.height() / ih)
+        w, h = iw * scale, ih * scale
+        return QRectF(area.x() + (area.width() - w) / 2, area.y() + (area.height() - h) / 2, w, h)
+
+    def paintEvent(self, event) -> None:  # noqa: N802 - Qt name
+        p = QPainter(self)
+        try:
+            pal = self.palette()
+            fm = self.fontMetrics()
+            p.setPen(pal.color(QPalette.ColorRole.WindowText))
+            title = fm.elidedText(self._title, Qt.TextElideMode.ElideRight, self.width())
+            p.drawText(QRectF(0, 0, self.width(), fm.height() + 2),
+                       Qt.AlignmentFlag.AlignHCenter | Qt.AlignmentFlag.AlignTop, title)
+            rect = self.image_rect()
+            if not self._image.isNull():
+                small = rect.width() < self._image.width()
+                p.setRenderHint(QPainter.RenderHint.SmoothPixmapTransform, small)
+                p.drawImage(rect, self._image)
+            else:
+                p.fillRect(rect, pal.color(QPalette.ColorRole.Base))
+            if self._note:
+                flags = (Qt.AlignmentFlag.AlignCenter | Qt.TextFlag.TextWordWrap)
+                box = rect.adjusted(8, 8, -8, -8)
+                if not self._image.isNull():
+                    bound = p.boundingRect(box, flags, self._note).adjusted(-4, -2, 4, 2)
+                    p.fillRect(bound, QColor(255, 255, 255, 210))
+                    p.setPen(QColor(20, 20, 20))
+                p.drawText(box, flags, self._note)
+        finally:
+            p.end()
+
+
+class ColorLegend(QWidget):
+    """A horizontal strip of the diverging map labelled ``-limit``, ``0`` and ``+limit``."""
+
+    def __init__(self, parent: QWidget | None = None):
+        super().__init__(parent)
+        self._limit: float | None = None
+        self._bar = colorbar_qimage(256, 1)
+        self.setSizePolicy(QSizePolicy.Policy.Expanding, QSizePolicy.Policy.Fixed)
+        self.setFixedHeight(self.fontMetrics().height() + 16)
+
+    def limit(self) -> float | None:
+        """Return the value at the right end (None when nothing is shown)."""
+        return self._limit
+
+    def set_limit(self, limit: float | None) -> None:
+        """Show the range ``[-limit, +limit]`` (None hides the labels)."""
+        self._limit = None if limit is None else float(limit)
+        self.update()
+
+    def labels(self) -> tuple[str, str, str]:
+        """Return the three labels drawn (empty strings when no limit is set)."""
+        if self._limit is None:
+            return ("", "", "")
+        return (f"−{self._limit:.3g}", "0", f"+{self._limit:.3g}")
+
+    def paintEvent(self, event) -> None:  # noqa: N802 - Qt name
+        p = QPainter(self)
+        try:
+            fm = self.fontMetrics()
+            bar = QRectF(2, 2, max(1, self.width() - 4), 9)
+            p.drawImage(bar, self._bar)
+            p.setPen(self.palette().color(QPalette.ColorRole.WindowText))
+            p.drawRect(bar)
+            left, mid, right = self.labels()
+            y = bar.bottom() + 2
+            h = fm.height() + 2
+            p.drawText(QRectF(0, y, self.width(), h), Qt.AlignmentFlag.AlignLeft, left)
+            p.drawText(QRectF(0, y, self.width(), h), Qt.AlignmentFlag.AlignHCenter, mid)
+            p.drawText(QRectF(0, y, self.width(), h), Qt.AlignmentFlag.AlignRight, right)
+        finally:
+            p.end()
+
+
+class _PaneArea(QWidget):
+    """Lay out the three image panes, the legend and the info text to make images large.
+
+    In a wide area the panes stand side by side (info text below); in a tall one they form a
+    2 x 2 grid with the info text in the fourth cell. The arrangement that shows the images at
+    the larger scale wins.
+    """
+
+    def __init__(self, panes: tuple[ImagePane, ImagePane, ImagePane], legend: QWidget,
+                 info: QWidget, parent: QWidget | None = None):
+        super().__init__(parent)
+        self._panes = panes
+        self._legend = legend
+        self._info = info
+        for w in (*panes, legend, info):
+            w.setParent(self)
+        self.columns = 3
+        self.setSizePolicy(QSizePolicy.Policy.Expanding, QSizePolicy.Policy.Expanding)
+        self.setMinimumSize(300, 200)
+
+    def sizeHint(self) -> QSize:  # noqa: N802 - Qt name
+        return QSize(660, 420)
+
+    def _aspect(self) -> float:
+        for pane in self._panes:
+            img = pane.image()
+            if not img.isNull():
+                return img.height() / max(1, img.width())
+        return 0.75
+
+    def _image_scale(self, cell_w: float, cell_h: float, aspect: float) -> float:
+        title = self.fontMetrics().height() + 4
+        return min(cell_w, max(1.0, cell_h - title) / aspect)
+
+    def resizeEvent(self, event) -> None:  # noqa: N802 - Qt name
+        super().resizeEvent(event)
+        self._arrange()
+
+    def _arrange(self) -> None:
+        w, h = self.width(), self.height()
+        gap = 8
+        legend_h = self._legend.minimumHeight()
+        info_h = self._info.sizeHint().height()
+        if self._info.hasHeightForWidth():
+            info_h = max(info_h, self._info.heightForWidth(w))
+        aspect = self._aspect()
+        wide_cell_w = (w - 2 * gap) / 3
+        wide_cell_h = h - legend_h - info_h - gap
+        tall_cell_w = (w - gap) / 2
+        tall_cell_h = (h - legend_h - gap) / 2
+        wide = self._image_scale(wide_cell_w, wide_cell_h, aspect)
+        tall = self._image_scale(tall_cell_w, tall_cell_h, aspect)
+        src, rec, res = self._panes
+        if wide >= tall:
+            self.columns = 3
+            cw, ch = int(wide_cell_w), int(max(40, wide_cell_h))
+            for i, pane in enumerate(self._panes):
+                pane.setGeometry(int(i * (wide_cell_w + gap)), 0, cw, ch)
+            self._legend.setGeometry(int(2 * (wide_cell_w + gap)), ch, cw, legend_h)
+            self._info.setGeometry(0, ch + legend_h + gap, w, max(0, h - ch - legend_h - gap))
+        else:
+            self.columns = 2
+            cw, ch = int(tall_cell_w), int(max(40, tall_cell_h))
+            src.setGeometry(0, 0, cw, ch)
+            rec.setGeometry(int(tall_cell_w + gap), 0, cw, ch)
+            res.setGeometry(0, ch + gap, cw, ch)
+            self._legend.setGeometry(0, 2 * ch + gap, cw, legend_h)
+            self._info.setGeometry(int(tall_cell_w + gap), ch + gap + self.fontMetrics().height(),
+                                   cw, max(0, h - ch - gap))
+
+    def rearrange(self) -> None:
+        """Lay the panes out again (after the image aspect ratio changed)."""
+        self._arrange()
+
+
+class Inspector(QWidget):
+    """The selected image, its rank-r reconstruction and the residual, with a rank slider.
+
+    Parameters
+    ----------
+    state : AppState
+        The shared state (read: decomposition, selected, rank; written: rank).
+    parent : QWidget, optional
+    load_image : callable(decomposition, index) -> ndarray, optional
+        Reads an image at analysis resolution, shape (rows, cols, channels). Default:
+        ``pipeline.load_analysis_image``.
+
+    Attributes
+    ----------
+    source_array : ndarray or None, shape (rows, cols, channels)
+        The image shown on the left (None when the source cannot be read).
+    reconstruction_array : ndarray or None, shape (rows, cols, channels)
+        ``decomposition.to_image(decomposition.reconstruct(index, rank))``, unclipped.
+    residual_array : ndarray or None, shape (rows, cols, channels)
+        ``source_array - reconstruction_array``.
+    """
+
+    def __init__(self, state: AppState, parent: QWidget | None = None, *,
+                 load_image: Callable[[Any, int], np.ndarray] | None = None):
+        super().__init__(parent)
+        if not isinstance(state, AppState):
+            raise TypeError(f"state must be an AppState, got {type(state).__name__}")
+        self._state = state
+        self._load_image = load_image or _default_loader
+        self._cache_key: tuple | None = None
+        self._live = None           # LiveReconstruction of the selected image
+        self._cache_value: np.ndarray | None = None
+        self._source_qimage: tuple | None = None   # (source array, its QImage)
+        self._running = False
+        self._cache_error = ""
+        self._syncing = False
+        self.source_array: np.ndarray | None = None
+        self.reconstruction_array: np.ndarray | None = None
+        self.residual_array: np.ndarray | None = None
+        self.source_note = ""
+        self.repaint_count = 0
+        self._build()
+        self._rank_timer = QTimer(self)
+        self._rank_timer.setSingleShot(True)
+        self._rank_timer.setInterval(RANK_DEBOUNCE_MS)
+        self._rank_timer.timeout.connect(self._push_rank)
+        self._wire()
+        self.refresh()
+
+    # ----- construction ------------------------------------------------------------------------
+    def _build(self) -> None:
+        self.title_label = QLabel("No image selected", self)
+        self.title_label.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
+        self.title_label.setSizePolicy(QSizePolicy.Policy.Ignored, QSizePolicy.Policy.Preferred)
+        font = self.title_label.font()
+        font.setBold(True)
+        self.title_label.setFont(font)
+
+        self.source_pane = ImagePane("Image", self)
+        self.reconstruction_pane = ImagePane("Reconstruction", self)
+        self.residual_pane = ImagePane("Residual", self)
+        self.residual_pane.setToolTip("Image minus reconstruction (the mean over the colour "
+                                      "channels for colour images)")
+        self.legend = ColorLegend(self)
+        self.legend.setToolTip("Residual values: teal where the image is darker than the "
+                               "reconstruction, brick where it is brighter")
+        self.energy_label = QLabel("", self)
+        self.energy_label.setWordWrap(True)
+        self.residual_label = QLabel("", self)
+        self.residual_label.setWordWrap(True)
+        info = QWidget(self)
+        info_layout = QVBoxLayout(info)
+        info_layout.setContentsMargins(0, 0, 0, 0)
+        info_layout.addWidget(self.energy_label)
+        info_layout.addWidget(self.residual_label)
+        info_layout.addStretch(1)
+        self.pane_area = _PaneArea((self.source_pane, self.reconstruction_pane,
+                                    self.residual_pane), self.legend, info, self)
+
+        self.rank_slider = QSlider(Qt.Orientation.Horizontal, self)
+        self.rank_slider.setRange(1, 1)
+        self.rank_slider.setEnabled(False)
+        self.rank_slider.setTracking(True)
+        self.rank_slider.setToolTip("Number of basis images used in the reconstruction "
+                                    "(keys + and −)")
+        self.rank_label = QLabel("Rank –", self)
+        self.rank_label.setMinimumWidth(self.fontMetrics().horizontalAdvance("Rank 9999 of 9999"))
+        slider_row = QHBoxLayout()
+        slider_row.addWidget(self.rank_label)
+        slider_row.addWidget(self.rank_slider, 1)
+
+        layout = QVBoxLayout(self)
+        layout.setContentsMargins(8, 6, 8, 6)
+        layout.addWidget(self.title_label)
+        layout.addWidget(self.pane_area, 1)
+        layout.addLayout(slider_row)
+        self.setFocusPolicy(Qt.FocusPolicy.StrongFocus)
+
+    def _wire(self) -> None:
+        self._state.decompositionChanged.connect(self._on_decomposition)
+        self._state.selectedChanged.connect(self._on_selected)
+        self._state.rankChanged.connect(self._on_rank)
+        self.rank_slider.valueChanged.connect(self._on_slider)
+
+    # ----- state -> view -----------------------------------------------------------------------
+    @Slot(object)
+    def _on_decomposition(self, _decomposition) -> None:
+        self.refresh()
+
+    @Slot(int)
+    def _on_selected(self, _index: int) -> None:
+        self.refresh()
+
+    @Slot(int)
+    def _on_rank(self, _rank: int) -> None:
+        self.refresh()
+
+    # ----- view -> state -----------------------------------------------------------------------
+    @Slot(int)
+    def _on_slider(self, value: int) -> None:
+        if not self._syncing:
+            d = self._state.decomposition
+            k = 0 if d is None else d.rank
+            self.rank_label.setText(f"Rank {value} of {k}")
+            self._rank_timer.start()
+
+    @Slot()
+    def _push_rank(self) -> None:
+        self._state.set_rank(self.rank_slider.value())
+
+    def flush_rank(self) -> None:
+        """Send a pending slider value to the state now."""
+        if self._rank_timer.isActive():
+            self._rank_timer.stop()
+            self._push_rank()
+
+    # ----- drawing -----------------------------------------------------------------------------
+    def set_running(self, running: bool) -> None:
+        """Say whether an analysis is running (the empty view then tells it is coming)."""
+        running = bool(running)
+        if running != self._running:
+            self._running = running
+            if self._state.decomposition is None:
+                self.refresh()
+
+    def _source(self, decomposition, index: int) -> tuple[np.ndarray | None, str]:
+        """Return the cached source image of ``index`` (re-read when the selection changes)."""
+        path = decomposition.paths[index] if decomposition.paths else ""
+        page = int(decomposition.pages[index]) if decomposition.pages is not None else 0
+        key = (path, page, tuple(decomposition.image_shape))
+        if key != self._cache_key:
+            self._cache_key = key
+            self._cache_value, self._cache_error = None, ""
+            if not path:
+                self._cache_error = "The analysis does not record the source file of this image."
+            else:
+                try:
+                    image = np.asarray(self._load_image(decomposition, index), dtype=np.float32)
+                    if image.ndim == 2:
+                        image = image[:, :, None]
+                    if tuple(image.shape) != tuple(decomposition.image_shape):
+                        raise ModescopeError(
+                            f"{path}: read with shape {image.shape}, the analysis expects "
+                            f"{tuple(decomposition.image_shape)}")
+                    self._cache_value = image
+                except (ModescopeError, OSError) as exc:
+                    self._cache_error = f"Source image not available: {exc}"
+                except ImportError:
+                    self._cache_error = "Source images cannot be read in this installation."
+        return self._cache_value, self._cache_error
+
+    def clear_cache(self) -> None:
+        """Forget the cached source image (it is read again on the next refresh)."""
+        self._cache_key, self._cache_value, self._cache_error = None, None, ""
+
+    @Slot()
+    def refresh(self) -> None:
+        """Redraw from the state."""
+        self.repaint_count += 1
+        d = self._state.decomposition
+        index = self._state.selected
+        self._sync_slider(d)
+        if d is None or index < 0 or index >= d.n_images or d.rank == 0:
+            self.source_array = self.reconstruction_array = self.residual_array = None
+            self.source_note = ""
+            if d is None:
+                title = "Analysis starting…" if self._running else "No analysis yet"
+            elif d.rank == 0 and d.n_images:
+                title = NO_VARIATION
+            else:
+                title = "No image selected"
+            self.title_label.setText(title)
+            if d is not None:
+                hint = ""
+            elif self._running:
+                hint = "Analysis running: the first results appear after the first block."
+            else:
+                hint = "Add images in the Sources pane and start an analysis."
+            self.source_pane.set_image(None, hint)
+            self.reconstruction_pane.set_image(None)
+            self.residual_pane.set_image(None)
+            self.reconstruction_pane.set_title("Reconstruction")
+            self.legend.set_limit(None)
+            self.energy_label.setText("")
+            self.residual_label.setText("")
+            return
+        rank = max(1, min(self._state.rank or d.rank, d.rank))
+        path = d.paths[index] if d.paths else ""
+        name = os.path.basename(path) if path else f"image {index + 1}"
+        page = int(d.pages[index])
+        if page:
+            name += f" (page {page})"
+        status = "" if d.exact else "  — analysis in progress"
+        self.title_label.setText(f"Image {index + 1:,} of {d.n_images:,}: {name}{status}")
+        self.title_label.setToolTip(path)
+
+        live = self._live
+        if live is None or live.decomposition is not d or live.index != index:
+            live = self._live = LiveReconstruction(d, index)
+        # incremental: a slider step adds or removes only the modes in between
+        recon = live.image_at(rank).copy()
+        self.reconstruction_array = recon
+        self.reconstruction_pane.set_title(f"Reconstruction, rank {rank}")
+        self.reconstruction_pane.set_image(array_to_qimage(recon))
+
+        source, error = self._source(d, index)
+        self.source_array = source
+        self.source_note = error
+        if source is not None:
+            # the source does not change with the rank: convert it once per image
+            if self._source_qimage is None or self._source_qimage[0] is not source:
+                self._source_qimage = (source, array_to_qimage(source))
+            self.source_pane.set_image(self._source_qimage[1])
+            residual = source - recon
+            self.residual_array = residual
+            plane = residual.mean(axis=2) if residual.shape[2] > 1 else residual[:, :, 0]
+            limit = symmetric_limit(plane)
+            self.residual_pane.set_image(signed_to_qimage(plane, limit))
+            self.residual_pane.set_title("Residual" + (" (channel mean)"
+                                                       if residual.shape[2] > 1 else ""))
+            self.legend.set_limit(limit)
+        else:
+            self.source_pane.set_image(None, error)
+            self.residual_array = None
+            self.residual_pane.set_image(None, "No residual without the source image.")
+            self.legend.set_limit(None)
+
+        self.pane_area.rearrange()
+        shares = d.cumulative_energy()
+        self.energy_label.setText(
+            f"The first {rank} basis image{'s' if rank != 1 else ''} capture "
+            f"{100.0 * float(shares[rank - 1]):.1f} % of the collection's variation "
+            f"(all {d.rank}: {100.0 * float(shares[-1]):.1f} %).")
+        if d.residual is not None:
+            # this image only: residual at k plus the squared weights of modes rank+1..k
+            w2 = d.weights[:, index].astype(np.float64) ** 2
+            res_i = float(d.residual[index] + np.sum(w2[rank:]))
+            total_i = float(d.residual[index] + np.sum(w2))
+            res = {index: res_i}
+            share = res_i / total_i if total_i > 0 else 0.0
+            pct = 100.0 * share
+            pct_text = f"{pct:.1f}" if pct >= 0.1 or pct == 0 else f"{pct:.2g}"
+            self.residual_label.setText(
+                f"This image at rank {rank}: residual {float(res[index]):.4g} (squared norm), "
+                f"{pct_text} % of its own variation.")
+        else:
+            self.residual_label.setText("Residuals are computed when the analysis finishes.")
+
+    def _sync_slider(self, d) -> None:
+        self._syncing = True
+        try:
+            k = 0 if d is None else d.rank
+            self.rank_slider.setEnabled(k > 0)
+            self.rank_slider.setRange(1, max(1, k))
+            if k and not self._rank_timer.isActive():
+                self.rank_slider.setValue(max(1, min(self._state.rank or k, k)))
+            self.rank_label.setText(f"Rank {self.rank_slider.value()} of {k}" if k else "Rank –")
+        finally:
+            self._syncing = False
+
+    # ----- keys --------------------------------------------------------------------------------
+    def keyPressEvent(self, event) -> None:  # noqa: N802 - Qt name
+        key = event.key()
+        if key in (Qt.Key.Key_Left, Qt.Key.Key_Right):
+            d = self._state.decomposition
+            if d is not None and d.n_images:
+                step = -1 if key == Qt.Key.Key_Left else 1
+                self._state.set_selected(max(0, min(d.n_images - 1,
+                                                    self._state.selected + step)))
+            event.accept()
+        elif key in (Qt.Key.Key_Up, Qt.Key.Key_Down):
+            if self._state.decomposition is not None:
+                self._state.set_rank(self._state.rank + (1 if key == Qt.Key.Key_Up else -1))
+            event.accept()
+        else:
+            super().keyPressEvent(event)

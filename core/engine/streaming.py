@@ -1,0 +1,311 @@
+"""Streaming, mean-centred truncated SVD updated one block of image columns at a time.
+
+The update follows Brand's thin-SVD update (M. Brand, "Fast low-rank modifications of the thin
+singular value decomposition", Linear Algebra Appl. 415, 2006) with the mean update of Ross, Lim,
+Lin and Yang ("Incremental learning for robust visual tracking", IJCV 77, 2008): a block ``B``
+with mean ``mu_B`` joins a model of ``n`` images with mean ``mu`` by appending the centred block
+and one extra column ``sqrt(n m / (n + m)) (mu_B - mu)`` that carries the scatter added by the
+shift of the mean.
+
+Each update (all pixel-sized products in float32 on row-major arrays, one row per image or
+direction; small matrices in float64):
+
+1. projects the new columns onto the current basis, a second time ("twice is enough") when
+   the first left a component float32 cannot ignore;
+2. finds orthonormal directions of the remainder from one eigendecomposition of its small
+   Gram matrix, without forming them: only the combination that survives the truncation is
+   computed;
+3. takes the left singular vectors of the small core matrix (eigendecomposition of
+   ``core core^T``) and truncates to ``rank + oversample`` internal directions;
+4. re-orthonormalises the new basis while keeping the decomposition consistent (one
+   float32 Gram pass leaves the new directions orthogonal only to about eps * condition): with
+   ``C = (B^T B)^(1/2)`` the data ``B W = (B C^-1)(C W)``, and a small SVD of ``C diag(s)``
+   gives the rotated basis, singular values and coordinates (a Cholesky-QR2-like correction
+   on k + oversample columns instead of on the whole remainder).
+
+Weights of all images seen so far are kept without touching every old column on every block:
+each block moves every old image by the same affine map (a rotation plus the shift of the mean),
+so the maps are composed on small matrices and applied to the stored columns only when a snapshot
+is asked for.
+
+Sign convention: see :func:`modescope.core.decomposition.fix_signs` (largest-magnitude entry of
+each basis image positive).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from modescope.core.validation import check_int
+from modescope.core.decomposition import Decomposition, fix_signs
+
+__all__ = ["StreamingSVD"]
+
+# Directions of the new data outside the basis whose norm is below this fraction of the block's
+# norm are dropped: float32 cannot resolve them and keeping them would spoil orthogonality.
+_DROP_RELATIVE = 1e-5
+
+
+class StreamingSVD:
+    """Mean-centred truncated SVD of a matrix whose columns arrive in blocks.
+
+    Parameters
+    ----------
+    n_pixels : int
+        Rows of the data matrix (values per image).
+    rank : int
+        Number of modes reported by :meth:`snapshot`, k >= 1.
+    oversample : int, optional
+        Extra directions kept internally (default 10) to hold accuracy of the reported ones.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> rng = np.random.default_rng(0)
+    >>> data = rng.random((50, 40), dtype=np.float32)
+    >>> engine = StreamingSVD(50, rank=5)
+    >>> for start in range(0, 40, 16):
+    ...     engine.update(data[:, start:start + 16])
+    >>> engine.snapshot().singular_values.shape
+    (5,)
+    """
+
+    def __init__(self, n_pixels: int, rank: int, oversample: int = 10):
+        self.n_pixels = check_int("n_pixels", n_pixels, minimum=1)
+        self.rank = check_int("rank", rank, minimum=1)
+        self.oversample = check_int("oversample", oversample, minimum=0)
+        self.internal = self.rank + self.oversample
+        self.n_seen = 0
+        self.mean = np.zeros(self.n_pixels, dtype=np.float64)
+        self.total_energy = 0.0
+        self.basis = np.zeros((self.n_pixels, 0), dtype=np.float32, order="F")
+        self.singular_values = np.zeros(0, dtype=np.float64)
+        # weights: flushed part (coordinates in an older basis) + pending affine map, and chunks
+        self._flushed = np.zeros((0, 0), dtype=np.float64)
+        self._map_a = np.zeros((0, 0))
+        self._map_b = np.zeros(0)
+        self._chunks: list[list[np.ndarray]] = []   # [A, b, W] per chunk since the last flush
+        self._updates = 0
+
+    # ---------------------------------------------------------------------------------------
+    def update(self, block: np.ndarray) -> None:
+        """Add a block of image columns.
+
+        Parameters
+        ----------
+        block : ndarray, shape (pixels, m)
+            New images as columns (float32 preferred, Fortran order, as the reader makes them;
+            other real types and layouts are converted).
+
+        Raises
+        ------
+        TypeError
+            If ``block`` is not a numeric array.
+        ValueError
+            If its row count differs from ``n_pixels`` or it holds non-finite values.
+        """
+        block = np.asarray(block)
+        if not np.issubdtype(block.dtype, np.number) or np.iscomplexobj(block):
+            raise TypeError(f"block must be a real numeric array, got dtype {block.dtype}")
+        if block.ndim != 2 or block.shape[0] != self.n_pixels:
+            raise ValueError(f"block must have shape ({self.n_pixels}, m), got {block.shape}")
+        m = block.shape[1]
+        if m == 0:
+            return
+        # Work on the transpose: one row per image, C-contiguous. Every pixel-sized product
+        # below is then a plain row-major GEMM whose output has the layout of its operands, so
+        # no elementwise step mixes C and Fortran order (that alone cost 5x here).
+        rows = np.ascontiguousarray(block.T, dtype=np.float32)          # m x pixels
+        block_mean = rows.mean(axis=0, dtype=np.float64)
+        if not np.all(np.isfinite(block_mean)):
+            raise ValueError("block holds non-finite values (NaN or infinity)")
+        n = self.n_seen
+        n_new = n + m
+        ncol = m + 1 if n > 0 else m
+        z = np.empty((ncol, self.n_pixels), dtype=np.float32)             # centred block (+1)
+        np.subtract(rows, block_mean.astype(np.float32), out=z[:m])
+        # row sums of squares in float32 (numpy sums each contiguous row pairwise, so the
+        # relative error stays near 1e-7 * log2(pixels)), added up in float64
+        block_energy = float(np.sum(np.einsum("ij,ij->i", z[:m], z[:m]), dtype=np.float64))
+        if n > 0:
+            shift = block_mean - self.mean
+            z[m] = np.sqrt(n * m / n_new) * shift
+            shift_energy = (n * m / n_new) * float(shift @ shift)
+            self.total_energy += block_energy + shift_energy
+        else:
+            shift_energy = 0.0
+            self.total_energy = block_energy
+        u, s = self.basis, self.singular_values
+        ut = u.T                                                           # r x pixels, C
+        r = u.shape[1]
+        proj = (z @ u).T.astype(np.float64) if r else np.zeros((0, ncol))  # r x ncol
+        if r:
+            z -= proj.T.astype(np.float32) @ ut                            # z is now the remainder
+            # a second projection ("twice is enough") when the first left a component along
+            # the basis that float32 cannot ignore: for data of low rank the remainder is
+            # rounding noise that lies mostly in the span of the basis
+            proj2 = z @ u
+            if np.max(np.abs(proj2)) > 1e-6 * max(float(np.max(np.abs(proj))), 1e-30):
+                z -= proj2 @ ut
+                proj += proj2.T
+        rem = z
+        # Orthonormal directions of the remainder from one eigendecomposition of its small Gram
+        # matrix rem rem^T = vec diag(lam) vec^T: the rows of J = (vec / root)^T rem are
+        # orthonormal and rem = (vec * root) J. J itself is never formed, only the combination
+        # of it that survives the truncation.
+        norm_ref = np.sqrt(block_energy + shift_energy) or 1.0
+        floor = (_DROP_RELATIVE * norm_ref) ** 2
+        gram = (rem @ rem.T).astype(np.float64)
+        lam, vec = np.linalg.eigh(gram)
+        keep = lam > floor
+        lam, vec = lam[keep], vec[:, keep]
+        root = np.sqrt(lam)
+        c = lam.size
+        core = np.zeros((r + c, r + ncol))
+        core[:r, :r] = np.diag(s)
+        core[:r, r:] = proj
+        core[r:, r:] = (vec * root).T                                      # rem^T = J^T F
+        # left singular vectors of the small core from the eigendecomposition of core core^T
+        # (float64; the squared condition number stays far inside float64's range for data
+        # that is float32 to begin with, and eigh is ~3x cheaper than the SVD here)
+        lam_core, p_mat = np.linalg.eigh(core @ core.T)
+        order = np.argsort(lam_core)[::-1]
+        p_mat = p_mat[:, order]
+        sig = np.sqrt(np.maximum(lam_core[order], 0.0))
+        q_new = min(self.internal, int(np.sum(sig > sig[0] * 1e-7)) if sig.size and sig[0] > 0
+                    else 0)
+        p_keep = p_mat[:, :q_new]
+        # new basis (rows) = P_u^T U^T + P_j^T J^T with J^T = (vec / root)^T rem
+        new_rows = np.empty((q_new, self.n_pixels), dtype=np.float32)
+        if r:
+            np.matmul(p_keep[:r].T.astype(np.float32), ut, out=new_rows)
+        else:
+            new_rows[...] = 0.0
+        if c:
+            new_rows += ((vec / root) @ p_keep[r:]).T.astype(np.float32) @ rem
+        # affine map of old image coordinates: new = A old + b
+        if n > 0:
+            coord_extra = core[:, r + m]                      # coordinates of the extra column
+            coord_old_shift = -np.sqrt(m / (n * n_new)) * coord_extra   # mean moves by -m/n' dS
+            coord_new_shift = np.sqrt(n / (m * n_new)) * coord_extra     # block mean -> new mean
+        else:
+            coord_old_shift = np.zeros(r + c)
+            coord_new_shift = np.zeros(r + c)
+        a_blk = p_keep[:r, :].T                               # q_new x r
+        b_blk = p_keep.T @ coord_old_shift
+        new_w = p_keep.T @ (core[:, r:r + m] + coord_new_shift[:, None])
+        sig = sig[:q_new]
+        # One float32 Gram pass leaves the new directions orthogonal only to about
+        # eps * cond(remainder), so the new basis B (q columns, cheap to check) is made exactly
+        # orthonormal in a way that keeps the decomposition consistent: with C = (B^T B)^(1/2),
+        # data ~ B W = (B C^-1)(C W), and the SVD C diag(s) = P' diag(s') Q'^T gives the
+        # orthonormal basis B C^-1 P', singular values s' and coordinates P'^T C W.
+        if q_new:
+            gram_b = (new_rows @ new_rows.T).astype(np.float64)
+            if np.max(np.abs(gram_b - np.eye(q_new))) > 1e-6:
+                lam_b, vec_b = np.linalg.eigh(gram_b)
+                root_b = np.sqrt(np.maximum(lam_b, 1e-12))
+                half = (vec_b * root_b) @ vec_b.T
+                p_fix, sig, _ = np.linalg.svd(half * sig, full_matrices=False)
+                fix = p_fix.T @ half
+                new_rows = (((vec_b / root_b) @ vec_b.T) @ p_fix).T.astype(np.float32) @ new_rows
+                a_blk, b_blk, new_w = fix @ a_blk, fix @ b_blk, fix @ new_w
+        self._compose(a_blk, b_blk)
+        self._chunks.append([np.eye(q_new), np.zeros(q_new), new_w])
+        if len(self._chunks) > 64:
+            self._flush()
+        self.basis = new_rows.T                               # Fortran order (pixels x q)
+        self.singular_values = sig.copy()
+        self.mean = self.mean + (m / n_new) * (block_mean - self.mean)
+        self.n_seen = n_new
+        self._updates += 1
+
+    def _compose(self, a_blk: np.ndarray, b_blk: np.ndarray) -> None:
+        if self._flushed.shape[1] > 0:
+            self._map_a = a_blk @ self._map_a
+            self._map_b = a_blk @ self._map_b + b_blk
+        for chunk in self._chunks:
+            chunk[0] = a_blk @ chunk[0]
+            chunk[1] = a_blk @ chunk[1] + b_blk
+
+    def _flush(self) -> None:
+        parts = []
+        if self._flushed.shape[1] > 0:
+            parts.append(self._map_a @ self._flushed + self._map_b[:, None])
+        for a, b, w in self._chunks:
+            parts.append(a @ w + b[:, None])
+        q = self.basis.shape[1] if not self._chunks else self._chunks[-1][0].shape[0]
+        self._flushed = np.concatenate(parts, axis=1) if parts else np.zeros((q, 0))
+        self._map_a = np.eye(self._flushed.shape[0])
+        self._map_b = np.zeros(self._flushed.shape[0])
+        self._chunks = []
+
+    def _reorthonormalise_if_needed(self) -> None:
+        u = self.basis
+        if u.shape[1] == 0:
+            return
+        gram = (u.T @ u).astype(np.float64)
+        err = np.max(np.abs(gram - np.eye(u.shape[1])))
+        if err > 1e-5:
+            lam, vec = np.linalg.eigh(gram)
+            inv_root = (vec / np.sqrt(np.maximum(lam, 1e-12))) @ vec.T
+            self.basis = (inv_root.T.astype(np.float32) @ u.T).T     # stays Fortran order
+
+    @classmethod
+    def from_decomposition(cls, decomposition: Decomposition,
+                           oversample: int = 10) -> "StreamingSVD":
+        """Start an engine from an existing analysis so that more images can be added.
+
+        The engine holds the analysis' k modes (its extra internal directions were not saved),
+        its exact mean, image count, total energy and weights; new blocks update all of them.
+
+        Parameters
+        ----------
+        decomposition : Decomposition
+        oversample : int, optional
+            Extra directions to keep from now on.
+        """
+        d = decomposition
+        engine = cls(d.n_pixels, rank=max(d.rank, 1), oversample=oversample)
+        engine.n_seen = d.n_images
+        engine.mean = d.mean.astype(np.float64)
+        engine.total_energy = float(d.total_energy)
+        engine.basis = np.asfortranarray(d.basis, dtype=np.float32)
+        engine.singular_values = np.asarray(d.singular_values, dtype=np.float64).copy()
+        engine._flushed = np.asarray(d.weights, dtype=np.float64).copy()
+        engine._map_a = np.eye(d.rank)
+        engine._map_b = np.zeros(d.rank)
+        return engine
+
+    # ---------------------------------------------------------------------------------------
+    def internal_weights(self) -> np.ndarray:
+        """Return the weights of every image seen, shape (internal directions, n_seen)."""
+        self._flush()
+        return self._flushed.copy()
+
+    def snapshot(self, image_shape: tuple | None = None, **fields) -> Decomposition:
+        """Return a consistent Decomposition of everything seen so far (streaming, not exact).
+
+        Parameters
+        ----------
+        image_shape : tuple of int, optional
+            ``(rows, cols, channels)``; default ``(n_pixels, 1, 1)``.
+        **fields
+            Passed to :class:`Decomposition` (paths, pages, metadata).
+
+        Raises
+        ------
+        ValueError
+            If no image has been added yet.
+        """
+        if self.n_seen == 0:
+            raise ValueError("no images have been added yet")
+        self._reorthonormalise_if_needed()
+        k = min(self.rank, self.basis.shape[1])
+        weights = self.internal_weights()[:k]
+        basis, weights = fix_signs(self.basis[:, :k], weights)
+        shape = tuple(image_shape) if image_shape is not None else (self.n_pixels, 1, 1)
+        return Decomposition(mean=self.mean.astype(np.float32), basis=np.asfortranarray(basis),
+                             singular_values=self.singular_values[:k].copy(), weights=weights,
+                             total_energy=float(self.total_energy), image_shape=shape,
+                             exact=False, **fields)

@@ -1,0 +1,297 @@
+"""Atomic file output: write to a temporary name in the same folder, then rename.
+
+A reader never sees a half-written file under the final name: the data goes to a hidden
+temporary file ``.<name>.<random>.tmp`` beside the target, and only a complete file is moved
+into place with :func:`os.replace` (atomic on POSIX and Windows when both names are in the same
+folder). On any error the temporary file is removed. Failures of the destination (missing or
+read-only folder, no permission, disk full, file already present) are reported as
+:class:`DestinationError`, whose message names the path.
+
+Without ``overwrite`` an existing target is refused; the check is made before writing and again
+just before the rename (a file created by another program between those two moments, a window
+of microseconds, would be replaced).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import errno
+import os
+import secrets
+from pathlib import Path
+from typing import IO, Iterator
+
+from modescope.core.errors import ModescopeError
+
+__all__ = ["DestinationError", "atomic_writer", "atomic_write_bytes", "check_destination",
+           "check_folder_writable", "destination_error", "is_temp_name"]
+
+_TEMP_SUFFIX = ".tmp"
+
+
+class DestinationError(ModescopeError):
+    """A file cannot be written where it was asked to go.
+
+    Attributes
+    ----------
+    path : pathlib.Path or None
+        The file or folder concerned.
+    written : tuple of pathlib.Path
+        Files completed before the failure, when the error ends a multi-file export.
+    """
+
+    def __init__(self, message: str, *, path=None, written=()):
+        super().__init__(message)
+        self.path = None if path is None else Path(path)
+        self.written = tuple(Path(p) for p in written)
+
+
+def is_temp_name(name: str) -> bool:
+    """Return True if ``name`` (a bare file name) looks like one of our temporary files."""
+    return name.startswith(".") and name.endswith(_TEMP_SUFFIX)
+
+
+def _as_path(name: str, value) -> Path:
+    if isinstance(value, (str, os.PathLike)) and not isinstance(value, bytes):
+        text = os.fspath(value)
+        if isinstance(text, str) and text:
+            return Path(text)
+        if isinstance(text, str):
+            raise ValueError(f"{name} must be a non-empty path, got an empty string")
+    raise TypeError(f"{name} must be a str or os.PathLike path, got {type(value).__name__}")
+
+
+def destination_error(path, exc: OSError, action: str = "write") -> DestinationError:
+    """Translate an :class:`OSError` met while writing ``path`` into a clear DestinationError.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The file that was being written.
+    exc : OSError
+        The error from the operating system.
+    action : str
+        Verb used in the message ("write", "create a file in", ...).
+
+    Returns
+    -------
+    DestinationError
+        Not raised; the caller raises it (``raise destination_error(p, e) from e``).
+    """
+    path = Path(path)
+    folder = path.parent
+    code = getattr(exc, "errno", None)
+    detail = exc.strerror or str(exc)
+    if code in (errno.ENOSPC, getattr(errno, "EDQUOT", -1)):
+        msg = (f"cannot {action} {path}: the disk holding {folder} is full or over quota "
+               f"({detail}); no partial file was left")
+    elif code in (errno.EACCES, errno.EPERM, errno.EROFS):
+        msg = (f"cannot {action} {path}: the folder {folder} is read-only or you lack "
+               f"permission to write there ({detail})")
+    elif code == errno.ENOENT:
+        msg = f"cannot {action} {path}: the folder {folder} does not exist ({detail})"
+    else:
+        msg = f"cannot {action} {path}: {detail}"
+    return DestinationError(msg, path=path)
+
+
+def check_destination(path, *, overwrite: bool = False) -> Path:
+    """Check that ``path`` can be written: its folder exists and it is not taken.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        The file to write.
+    overwrite : bool
+        Allow replacing an existing file.
+
+    Returns
+    -------
+    pathlib.Path
+        ``path`` as a Path.
+
+    Raises
+    ------
+    TypeError
+        If ``path`` is not a path.
+    DestinationError
+        If the folder is missing or not a folder, ``path`` is a folder, or ``path`` exists and
+        ``overwrite`` is False.
+    """
+    target = _as_path("path", path)
+    folder = target.parent
+    if not folder.exists():
+        raise DestinationError(f"cannot write {target}: the folder {folder} does not exist",
+                               path=target)
+    if not folder.is_dir():
+        raise DestinationError(f"cannot write {target}: {folder} is not a folder", path=target)
+    if target.is_dir():
+        raise DestinationError(f"cannot write {target}: a folder of that name exists",
+                               path=target)
+    if not overwrite and os.path.lexists(target):
+        raise DestinationError(f"{target} already exists; pass overwrite=True to replace it",
+                               path=target)
+    return target
+
+
+def _open_temp(target: Path, mode: str, encoding, newline) -> tuple[IO, Path]:
+    """Create and open a new temporary file beside ``target`` (honours the umask)."""
+    flags = os.O_WRONLY | os.O_CREAT | os.O_EXCL | getattr(os, "O_BINARY", 0)
+    for _ in range(100):
+        tmp = target.with_name(f".{target.name}.{secrets.token_hex(4)}{_TEMP_SUFFIX}")
+        try:
+            fd = os.open(tmp, flags, 0o666)
+        except FileExistsError:
+            continue
+        except OSError as exc:
+            raise destination_error(target, exc, "create a temporary file for") from exc
+        try:
+            if "b" in mode:
+                return os.fdopen(fd, mode), tmp
+            return os.fdopen(fd, mode, encoding=encoding or "utf-8", newline=newline), tmp
+        except BaseException:
+            os.close(fd)
+            _remove_quietly(tmp)
+            raise
+    raise DestinationError(f"cannot create a temporary file beside {target}: 100 random "
+                           f"names were all taken", path=target)
+
+
+def _remove_quietly(path: Path) -> None:
+    with contextlib.suppress(OSError):
+        os.unlink(path)
+
+
+def check_folder_writable(folder) -> Path:
+    """Check that a file can be created in ``folder`` by creating and removing a temporary one.
+
+    Parameters
+    ----------
+    folder : str or os.PathLike
+        An existing folder.
+
+    Returns
+    -------
+    pathlib.Path
+
+    Raises
+    ------
+    DestinationError
+        If the folder is missing, not a folder, or a file cannot be created there.
+    """
+    folder = _as_path("folder", folder)
+    if not folder.is_dir():
+        raise DestinationError(f"the folder {folder} does not exist or is not a folder",
+                               path=folder)
+    probe = folder / "write-check"
+    f, tmp = _open_temp(probe, "wb", None, None)
+    f.close()
+    try:
+        os.unlink(tmp)
+    except OSError as exc:
+        raise destination_error(tmp, exc, "remove the temporary file") from exc
+    return folder
+
+
+@contextlib.contextmanager
+def atomic_writer(path, mode: str = "wb", overwrite: bool = False, *,
+                  encoding: str | None = None, newline: str | None = None,
+                  fsync: bool = False) -> Iterator[IO]:
+    """Open a temporary file beside ``path``; move it to ``path`` when the block succeeds.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        Final file name. Its folder must exist.
+    mode : {"wb", "w"}
+        Binary or text output.
+    overwrite : bool
+        Allow replacing an existing file.
+    encoding : str, optional
+        Text encoding for ``mode="w"`` (default UTF-8).
+    newline : str, optional
+        Passed to :func:`open` in text mode (use ``""`` for the csv module).
+    fsync : bool
+        Flush the file to the disk before the rename (slower, survives a power cut).
+
+    Yields
+    ------
+    file object
+        Open on the temporary file.
+
+    Raises
+    ------
+    DestinationError
+        If the target is refused (see :func:`check_destination`) or an :class:`OSError`
+        happens while creating, writing, closing or renaming; any OSError raised inside the
+        block is taken as a failure to write the destination. The temporary file is removed.
+    Other exceptions raised inside the block propagate unchanged, after the temporary file is
+    removed.
+
+    Examples
+    --------
+    >>> import tempfile, pathlib
+    >>> d = pathlib.Path(tempfile.mkdtemp())
+    >>> with atomic_writer(d / "a.txt", "w") as f:
+    ...     _ = f.write("hello")
+    >>> (d / "a.txt").read_text()
+    'hello'
+    """
+    if mode not in ("wb", "w"):
+        raise ValueError(f"mode must be 'wb' or 'w', got {mode!r}")
+    target = check_destination(path, overwrite=overwrite)
+    f, tmp = _open_temp(target, mode, encoding, newline)
+    try:
+        try:
+            yield f
+            f.flush()
+            if fsync:
+                os.fsync(f.fileno())
+        finally:
+            f.close()
+        if not overwrite and os.path.lexists(target):
+            raise DestinationError(f"{target} appeared while it was being written; it was "
+                                   f"left as it is (pass overwrite=True to replace it)",
+                                   path=target)
+        os.replace(tmp, target)
+    except OSError as exc:
+        _remove_quietly(tmp)
+        raise destination_error(target, exc) from exc
+    except BaseException:
+        _remove_quietly(tmp)
+        raise
+
+
+def atomic_write_bytes(path, data, *, overwrite: bool = False, fsync: bool = False) -> Path:
+    """Write ``data`` to ``path`` atomically (temporary file in the same folder, then rename).
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        Final file name. Its folder must exist.
+    data : bytes-like
+        The complete file content.
+    overwrite : bool
+        Allow replacing an existing file.
+    fsync : bool
+        Flush the file to the disk before the rename.
+
+    Returns
+    -------
+    pathlib.Path
+        The file written.
+
+    Raises
+    ------
+    TypeError
+        If ``data`` is not bytes-like.
+    DestinationError
+        As :func:`atomic_writer`; no partial or temporary file is left.
+    """
+    try:
+        view = memoryview(data)
+    except TypeError:
+        raise TypeError(f"data must be bytes-like, got {type(data).__name__}") from None
+    with atomic_writer(path, "wb", overwrite, fsync=fsync) as f:
+        f.write(view)
+    return Path(path)

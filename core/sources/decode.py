@@ -1,0 +1,448 @@
+"""Decode the images of a :class:`~modescope.core.sources.scan.SourceSet` into float32 columns.
+
+:func:`load_image` decodes one image; :func:`iter_blocks` streams the whole collection as blocks
+of columns of the data matrix, decoding on a small thread pool one block ahead of the caller.
+
+Decoding rules
+--------------
+Every image becomes a float32 array of shape ``(rows, cols, channels)`` with values in [0, 1]:
+
+1. The page is selected (multi-page TIFF) and the pixels decoded by Pillow.
+2. The EXIF orientation is applied with ``PIL.ImageOps.exif_transpose``, so the array looks
+   the way an image viewer shows the file (Pillow's TIFF reader applies the TIFF Orientation
+   tag itself while decoding; it is not applied twice).
+3. Values are scaled to [0, 1] by the storage type:
+
+   * 8-bit modes (L, LA, P, PA, RGB, RGBA, RGBX, CMYK, YCbCr): divided by 255.
+   * 16-bit modes (I;16, I;16B, I;16L, I;16N): divided by 65535.
+   * mode I (32-bit signed integers): negative values are set to 0; the image is divided by
+     65535 when its largest value is at most 65535 (16-bit data stored as 32-bit, the common
+     case), otherwise by 2**31 - 1, the largest int32. The rule is applied per image.
+   * mode F (32-bit float): float images are assumed to be already in [0, 1]; values are
+     clipped to [0, 1] as they are (no rescaling). An image holding NaN is a decode failure.
+   * mode 1 (bilevel): 0 or 1.
+
+4. Colour: P and PA palettes are converted to RGB first, CMYK and YCbCr are converted to RGB by
+   Pillow. Alpha is dropped: the colour channels are used as stored, alpha is ignored, nothing
+   is composited onto a background.
+
+   * ``color="gray"``: one channel. Gray files are used as they are; colour files become the
+     luma ``0.299 R + 0.587 G + 0.114 B`` (ITU-R BT.601 weights), computed in float32 from the
+     scaled RGB values (Pillow's integer "L" conversion is not used).
+   * ``color="rgb"``: three channels R, G, B; a gray file is repeated in the three channels.
+
+5. Size: an image whose oriented size differs from ``source_set.reference_size`` is resized to
+   it (only when ``source_set.resize_mismatched`` is True, otherwise it is a decode failure),
+   channel by channel in float32 with Pillow's LANCZOS filter, the result clipped to [0, 1].
+   This happens before the downscale.
+6. Downscale by an integer factor ``f``: the area average over ``f x f`` blocks of pixels
+   (numpy reshape-mean). The last rows and columns that do not fill a whole block are cropped,
+   so the analysed size is ``(rows // f, cols // f)``.
+
+The pixel vector of an image (a column of the data matrix) is the C-order ravel of its
+``(rows', cols', channels)`` array: for RGB the three values of a pixel are adjacent.
+"""
+
+from __future__ import annotations
+
+import math
+from concurrent.futures import Future, ThreadPoolExecutor
+from dataclasses import dataclass
+from typing import Callable, Iterator
+
+import numpy as np
+from PIL import Image, ImageOps
+
+from modescope.core.validation import check_int
+from modescope.core.errors import SourceError
+from modescope.core.sources.scan import ImageRef, Problem, SourceSet, _short_message
+
+__all__ = ["analysis_shape", "load_image", "Block", "iter_blocks"]
+
+_ORIENTATION_TAG = 0x0112
+_LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
+_INT32_MAX = float(np.iinfo(np.int32).max)
+_EIGHT_BIT_RGB = ("RGB", "RGBA", "RGBX")
+_SIXTEEN_BIT = ("I;16", "I;16B", "I;16L", "I;16N")
+
+
+class _DecodeFailure(Exception):
+    """Internal: an image could not be decoded; ``reason`` is a user sentence."""
+
+    def __init__(self, reason: str):
+        super().__init__(reason)
+        self.reason = reason
+
+
+@dataclass(frozen=True, eq=False)
+class Block:
+    """A block of consecutive images of a collection, decoded as columns.
+
+    Attributes
+    ----------
+    start : int
+        Index in ``source_set.images`` of the first image attempted in this block.
+    indices : ndarray, shape (m,), int64
+        Indices (into ``source_set.images``) of the images decoded successfully, ascending.
+    data : ndarray, shape (pixels, m), float32
+        Column ``j`` is the pixel vector of image ``indices[j]``. Fortran-ordered: each column
+        is contiguous in memory.
+    problems : tuple of Problem
+        The images of this block that failed to decode (absent from ``indices`` and ``data``).
+    exact8 : bool
+        True when every value of ``data`` is exactly ``v / 255`` (float32 division) for an 8-bit
+        stored value ``v``: 8-bit files used as stored (no luma mix, resize or downscale). Such a
+        block can be kept as uint8 and restored bit for bit (see :mod:`.blockcache`).
+    raw8 : ndarray or None
+        When ``exact8``: the stored values themselves, shape (m, pixels), uint8, one row per
+        image (``data == (raw8 / float32(255)).T`` exactly); otherwise None.
+    """
+
+    start: int
+    indices: np.ndarray
+    data: np.ndarray
+    problems: tuple[Problem, ...]
+    exact8: bool = False
+    raw8: np.ndarray | None = None
+
+
+def _check_source_set(source_set) -> None:
+    if not isinstance(source_set, SourceSet):
+        raise TypeError("source_set must be a SourceSet (from scan_sources), got "
+                        f"{type(source_set).__name__}")
+
+
+def analysis_shape(source_set: SourceSet, downscale: int = 1) -> tuple[int, int, int]:
+    """Return the shape every image has after decoding and downscaling.
+
+    Parameters
+    ----------
+    source_set : SourceSet
+        The collection, from :func:`~modescope.core.sources.scan.scan_sources`.
+    downscale : int, default 1
+        Integer downscale factor, at least 1.
+
+    Returns
+    -------
+    tuple of int
+        ``(rows // downscale, cols // downscale, channels)`` where ``(rows, cols)`` is the
+        reference size and ``channels`` is 1 (gray) or 3 (rgb).
+
+    Raises
+    ------
+    TypeError
+        If ``source_set`` is not a SourceSet or ``downscale`` is not an integer.
+    ValueError
+        If ``downscale`` is below 1 or so large that the analysed image would be empty.
+    """
+    _check_source_set(source_set)
+    f = check_int("downscale", downscale, minimum=1)
+    rows, cols = source_set.reference_size
+    out_rows, out_cols = rows // f, cols // f
+    if out_rows < 1 or out_cols < 1:
+        raise ValueError(f"downscale {f} is too large for the reference size {rows}x{cols}: "
+                         f"the analysed image would be {out_rows}x{out_cols}; use at most "
+                         f"{max(1, min(rows, cols))}")
+    return (out_rows, out_cols, source_set.channels)
+
+
+def _native(img: Image.Image) -> tuple[np.ndarray, float]:
+    """Return the stored values of a loaded image and the divisor that maps them to [0, 1].
+
+    The array is 2-D for gray data or 3-D with 3 colour channels (alpha dropped).
+    """
+    mode = img.mode
+    if mode == "L":
+        return np.asarray(img), 255.0
+    if mode in _EIGHT_BIT_RGB:
+        return np.asarray(img)[:, :, :3], 255.0
+    if mode in _SIXTEEN_BIT:
+        return np.asarray(img), 65535.0
+    if mode == "1":
+        return np.asarray(img), 1.0
+    if mode == "LA":
+        return np.asarray(img)[:, :, 0], 255.0
+    if mode == "P":
+        target = "RGBA" if "transparency" in img.info else "RGB"
+        return np.asarray(img.convert(target))[:, :, :3], 255.0
+    if mode == "PA":
+        return np.asarray(img.convert("RGBA"))[:, :, :3], 255.0
+    if mode in ("CMYK", "YCbCr"):
+        return np.asarray(img.convert("RGB")), 255.0
+    if mode == "I":
+        values = np.asarray(img)
+        if values.size and values.min() < 0:
+            values = np.maximum(values, 0)
+        top = int(values.max()) if values.size else 0
+        return values, (65535.0 if top <= 65535 else _INT32_MAX)
+    if mode == "F":
+        values = np.asarray(img, dtype=np.float32)
+        if np.isnan(values).any():
+            raise _DecodeFailure("float image holds NaN values")
+        return np.clip(values, 0.0, 1.0), 1.0
+    raise _DecodeFailure(f"image mode {mode!r} is not supported")
+
+
+def _to_float(values: np.ndarray, scale: float, color: str,
+              out: np.ndarray | None = None) -> np.ndarray:
+    """Scale stored values to float32 in [0, 1] with the channels asked for.
+
+    ``out`` (shape (rows, cols, channels), float32), when given, receives the result.
+    """
+    rows, cols = values.shape[:2]
+    channels = 3 if color == "rgb" else 1
+    if out is None:
+        out = np.empty((rows, cols, channels), dtype=np.float32)
+    divisor = np.float32(scale)
+    if values.ndim == 2:
+        np.divide(values, divisor, out=out[:, :, 0], casting="unsafe")
+        if channels == 3:
+            out[:, :, 1] = out[:, :, 0]
+            out[:, :, 2] = out[:, :, 0]
+    elif channels == 3:
+        np.divide(values, divisor, out=out, casting="unsafe")
+    else:
+        np.matmul(values.astype(np.float32), _LUMA / divisor, out=out[:, :, 0])
+        np.clip(out, 0.0, 1.0, out=out)
+    return out
+
+
+def _resize(image: np.ndarray, size: tuple[int, int]) -> np.ndarray:
+    rows, cols = size
+    out = np.empty((rows, cols, image.shape[2]), dtype=np.float32)
+    for c in range(image.shape[2]):
+        plane = Image.fromarray(np.ascontiguousarray(image[:, :, c]))
+        out[:, :, c] = np.asarray(plane.resize((cols, rows), Image.Resampling.LANCZOS))
+    return np.clip(out, 0.0, 1.0, out=out)
+
+
+def _downscale(image: np.ndarray, f: int) -> np.ndarray:
+    rows, cols, channels = image.shape
+    r, c = rows // f, cols // f
+    cropped = image[: r * f, : c * f]
+    return cropped.reshape(r, f, c, f, channels).mean(axis=(1, 3), dtype=np.float32)
+
+
+def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
+            raw_out: np.ndarray | None = None) -> bool:
+    """Decode ``ref`` into ``out`` (shape analysis_shape, float32) or raise _DecodeFailure.
+
+    Returns True when ``out`` holds exactly ``v / 255`` of 8-bit stored values ``v``; those
+    values are then also copied into ``raw_out`` (same shape, uint8) when it is given.
+    """
+    reference = source_set.reference_size
+    try:
+        with Image.open(ref.path) as img:
+            if ref.page:
+                img.seek(ref.page)
+            img.load()
+            orientation = img.getexif().get(_ORIENTATION_TAG, 1)
+            if orientation in (2, 3, 4, 5, 6, 7, 8):
+                img = ImageOps.exif_transpose(img)
+            values, scale = _native(img)
+    except _DecodeFailure:
+        raise
+    except MemoryError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - Pillow raises many types on damaged files
+        raise _DecodeFailure(f"cannot be decoded ({_short_message(exc, ref.path)})") from exc
+
+    size = (int(values.shape[0]), int(values.shape[1]))
+    if size != reference:
+        if not source_set.resize_mismatched:
+            raise _DecodeFailure(
+                f"decoded size {size[0]}x{size[1]} differs from the reference "
+                f"{reference[0]}x{reference[1]} (the file may have changed since the scan)")
+        image = _resize(_to_float(values, scale, source_set.color), reference)
+        if f > 1:
+            image = _downscale(image, f)
+        out[...] = image
+        return False
+    if f == 1:
+        _to_float(values, scale, source_set.color, out=out)  # fast path: no extra copy
+        luma = values.ndim == 3 and source_set.color == "gray"
+        exact8 = scale == 255.0 and values.dtype == np.uint8 and not luma
+        if exact8 and raw_out is not None:
+            raw_out[...] = values if values.ndim == 3 else values[:, :, None]
+        return exact8
+    out[...] = _downscale(_to_float(values, scale, source_set.color), f)
+    return False
+
+
+def _page_label(ref: ImageRef, source_set: SourceSet) -> int | None:
+    """Page to report for ``ref``: None for single-image files. Only used on failures."""
+    if ref.page > 0:
+        return ref.page
+    if any(other.path == ref.path and other.page > 0 for other in source_set.images):
+        return 0
+    return None
+
+
+def load_image(ref: ImageRef, source_set: SourceSet, downscale: int = 1) -> np.ndarray:
+    """Decode one image at analysis resolution.
+
+    Parameters
+    ----------
+    ref : ImageRef
+        The image (usually one of ``source_set.images``).
+    source_set : SourceSet
+        Gives the colour choice, the reference size and the resize policy.
+    downscale : int, default 1
+        Integer area-average downscale factor, at least 1.
+
+    Returns
+    -------
+    ndarray, shape (rows // downscale, cols // downscale, channels), float32
+        Values in [0, 1], decoded by the rules in the module docstring.
+
+    Raises
+    ------
+    TypeError
+        If an argument has the wrong type.
+    ValueError
+        If ``downscale`` is out of range.
+    SourceError
+        If the file (or page) cannot be decoded: missing, truncated, damaged, changed size.
+    """
+    if not isinstance(ref, ImageRef):
+        raise TypeError(f"ref must be an ImageRef, got {type(ref).__name__}")
+    shape = analysis_shape(source_set, downscale)
+    out = np.empty(shape, dtype=np.float32)
+    try:
+        _decode(ref, source_set, int(downscale), out)
+    except _DecodeFailure as failure:
+        problem = Problem(ref.path, failure.reason, _page_label(ref, source_set))
+        raise SourceError(str(problem)) from failure.__cause__
+    return out
+
+
+def _decode_chunk(jobs, source_set: SourceSet, f: int, buffer: np.ndarray,
+                  shape: tuple[int, int, int],
+                  raw: np.ndarray | None = None) -> tuple[list[tuple[int, str]], bool]:
+    """Decode each (row, ref) of ``jobs`` into ``buffer[row]`` (and ``raw[row]``).
+
+    Returns the failures and whether every decoded image was exact 8-bit data.
+    """
+    failures = []
+    exact8 = True
+    for row, ref in jobs:
+        try:
+            exact8 &= _decode(ref, source_set, f, buffer[row].reshape(shape),
+                              None if raw is None else raw[row].reshape(shape))
+        except _DecodeFailure as failure:
+            failures.append((row, failure.reason))
+    return failures, exact8
+
+
+def iter_blocks(source_set: SourceSet, *, block_size: int = 64, downscale: int = 1,
+                workers: int = 2,
+                cancel: Callable[[], bool] | None = None,
+                keep_raw: bool = False) -> Iterator[Block]:
+    """Decode the collection in blocks of columns, one block ahead of the caller.
+
+    Parameters
+    ----------
+    source_set : SourceSet
+        The collection, from :func:`~modescope.core.sources.scan.scan_sources`.
+    block_size : int, default 64
+        Images attempted per block (the last block may be smaller), at least 1.
+    downscale : int, default 1
+        Integer area-average downscale factor, at least 1.
+    workers : int, default 2
+        Decode threads, at least 1. One pool is made per call and shut down when the
+        iteration ends, is cancelled or the generator is closed.
+    cancel : callable() -> bool, optional
+        Checked before each block; when it returns True the iteration stops (no exception).
+    keep_raw : bool, default False
+        Also hand out the 8-bit stored values of exact 8-bit blocks (``Block.raw8``), copied
+        by the decode threads; used to cache blocks compactly.
+
+    Returns
+    -------
+    iterator of Block
+        Blocks in collection order covering every image once. ``Block.data`` has shape
+        ``(pixels, m)`` with ``pixels = rows' * cols' * channels``; images that fail to decode
+        are listed in ``Block.problems`` and left out (a block may then hold 0 columns).
+
+    Raises
+    ------
+    TypeError
+        If an argument has the wrong type.
+    ValueError
+        If ``block_size``, ``downscale`` or ``workers`` is out of range.
+
+    Examples
+    --------
+    >>> for block in iter_blocks(sset, block_size=64):      # doctest: +SKIP
+    ...     update(block.data)
+    """
+    shape = analysis_shape(source_set, downscale)
+    block_size = check_int("block_size", block_size, minimum=1)
+    workers = check_int("workers", workers, minimum=1)
+    if cancel is not None and not callable(cancel):
+        raise TypeError(f"cancel must be callable or None, got {type(cancel).__name__}")
+    return _generate_blocks(source_set, block_size, int(downscale), workers, cancel, shape,
+                            bool(keep_raw))
+
+
+def _generate_blocks(source_set: SourceSet, block_size: int, f: int, workers: int,
+                     cancel: Callable[[], bool] | None,
+                     shape: tuple[int, int, int], keep_raw: bool = False) -> Iterator[Block]:
+    images = source_set.images
+    n = len(images)
+    pixels = math.prod(shape)
+    executor = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="modescope-decode")
+
+    def submit(start: int):
+        stop = min(start + block_size, n)
+        buffer = np.empty((stop - start, pixels), dtype=np.float32)
+        raw = np.empty((stop - start, pixels), dtype=np.uint8) if keep_raw else None
+        jobs = [(row, images[start + row]) for row in range(stop - start)]
+        n_chunks = min(workers, len(jobs))
+        step = -(-len(jobs) // n_chunks)
+        futures: list[Future] = [
+            executor.submit(_decode_chunk, jobs[i:i + step], source_set, f, buffer, shape, raw)
+            for i in range(0, len(jobs), step)]
+        return start, stop, buffer, raw, futures
+
+    def collect(pending) -> Block:
+        start, stop, buffer, raw, futures = pending
+        results = [fut.result() for fut in futures]
+        failures = sorted(item for chunk, _ in results for item in chunk)
+        exact8 = all(flag for _, flag in results)
+        if not exact8:
+            raw = None
+        if not failures:
+            return Block(start=start, indices=np.arange(start, stop, dtype=np.int64),
+                         data=buffer.T, problems=(), exact8=exact8, raw8=raw)
+        failed = {row for row, _ in failures}
+        ok = np.array([row for row in range(stop - start) if row not in failed], dtype=np.int64)
+        problems = tuple(
+            Problem(images[start + row].path, reason, _page_label(images[start + row],
+                                                                  source_set))
+            for row, reason in failures)
+        kept = np.ascontiguousarray(buffer[ok]) if ok.size else np.empty((0, pixels),
+                                                                        np.float32)
+        if raw is not None:
+            raw = np.ascontiguousarray(raw[ok])
+        return Block(start=start, indices=ok + start, data=kept.T, problems=problems,
+                     exact8=exact8, raw8=raw)
+
+    pending = None
+    try:
+        if n == 0:
+            return
+        pending = submit(0)
+        next_start = block_size
+        while pending is not None:
+            if cancel is not None and cancel():
+                return
+            upcoming = submit(next_start) if next_start < n else None
+            next_start += block_size
+            current, pending = pending, upcoming
+            yield collect(current)
+    finally:
+        if pending is not None:
+            for fut in pending[4]:
+                fut.cancel()
+        executor.shutdown(wait=True, cancel_futures=True)

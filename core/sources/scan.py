@@ -1,0 +1,477 @@
+"""Find the images of a collection and check that they can be analysed together.
+
+:func:`scan_sources` turns a list of folders and files into a :class:`SourceSet`: the usable
+images in natural sort order, the reference size every image is analysed at, and a list of
+:class:`Problem` entries for everything that was skipped, each with a reason a user can act on.
+
+Only file headers are read during the scan (Pillow opens files lazily), so a scan of ten
+thousand files takes seconds. The pixels are decoded later by :mod:`modescope.core.sources.decode`.
+
+Rules
+-----
+* A folder contributes the files directly inside it (every file below it with
+  ``recursive=True``) whose suffix is one of :data:`SUPPORTED_SUFFIXES`, compared
+  case-insensitively. Hidden files and folders (name starting with ".") below a folder given
+  are skipped silently, and so are files of other types (README.md, thumbs.db, ...).
+* A file given explicitly is taken whatever its suffix, as long as Pillow can open it.
+* The same file reached twice (given twice, or through two folders) is kept once, at its first
+  occurrence.
+* Inside a folder the files are ordered by :func:`natural_key` over their path relative to the
+  folder ("frame_2" before "frame_10", case-insensitive); the order of the sources given is kept.
+* Every page of a multi-page TIFF is one image (pages are numbered from 0). Other formats
+  contribute their first frame only.
+* Sizes are ``(rows, cols)`` after the EXIF orientation of the file is applied (orientations 5-8
+  swap rows and cols), which is how an image viewer shows them. For TIFF files Pillow itself
+  reports the oriented size and applies the Orientation tag while decoding.
+* The reference size is the most common size (ties: the size found first in sort order). Images
+  of another size are skipped with a problem, or kept when ``resize_mismatched=True`` (the
+  reader then resizes them to the reference size).
+* Pillow modes accepted: 1, L, LA, P, PA, RGB, RGBA, RGBX, I;16 (and I;16B, I;16L, I;16N), I, F,
+  CMYK, YCbCr. Any other mode is a problem. Note that Pillow reads 16-bit-per-channel colour
+  files (48-bit RGB PNG or TIFF) as 8-bit RGB; 16-bit gray files keep their 16 bits.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+from collections import Counter
+from dataclasses import dataclass
+from typing import Callable, Iterable
+
+from PIL import Image, UnidentifiedImageError
+
+from modescope.core.validation import check_choice
+from modescope.core.errors import AnalysisCancelled, NoUsableImagesError
+
+__all__ = [
+    "Problem",
+    "ImageRef",
+    "SourceSet",
+    "SUPPORTED_SUFFIXES",
+    "SUPPORTED_MODES",
+    "scan_sources",
+    "natural_key",
+]
+
+SUPPORTED_SUFFIXES = (".png", ".jpg", ".jpeg", ".tif", ".tiff", ".bmp", ".webp")
+
+#: Pillow modes the reader can decode.
+SUPPORTED_MODES = ("1", "L", "LA", "P", "PA", "RGB", "RGBA", "RGBX", "I;16", "I;16B", "I;16L",
+                   "I;16N", "I", "F", "CMYK", "YCbCr")
+
+_COLORS = ("gray", "rgb")
+_ORIENTATION_TAG = 0x0112
+_MAX_PROBLEMS_IN_MESSAGE = 5
+
+
+@dataclass(frozen=True)
+class Problem:
+    """A file, or one page of a file, that was skipped, and why.
+
+    Attributes
+    ----------
+    path : str
+        The file (or folder) concerned.
+    reason : str
+        A sentence a user understands, e.g. "size 64x80 differs from the reference 96x128
+        (skipped; use --resize-mismatched to include it)".
+    page : int or None
+        Page of a multi-page file (numbered from 0), None when the whole file is concerned.
+    """
+
+    path: str
+    reason: str
+    page: int | None = None
+
+    def __str__(self) -> str:
+        where = self.path if self.page is None else f"{self.path} (page {self.page})"
+        return f"{where}: {self.reason}"
+
+
+@dataclass(frozen=True)
+class ImageRef:
+    """One image of a collection, as found by the scan (no pixels).
+
+    Attributes
+    ----------
+    path : str
+        Absolute path of the file.
+    page : int
+        Page of a multi-page TIFF, numbered from 0 (0 for every other file).
+    size : tuple of int
+        ``(rows, cols)`` after the EXIF orientation is applied.
+    mode : str
+        Pillow mode of the file, e.g. "L", "RGB", "I;16", "F", "RGBA".
+    """
+
+    path: str
+    page: int = 0
+    size: tuple[int, int] = (0, 0)
+    mode: str = ""
+
+
+@dataclass(frozen=True)
+class SourceSet:
+    """The validated image collection handed to the reader.
+
+    Attributes
+    ----------
+    images : tuple of ImageRef
+        Usable images, in natural sort order (source order kept between sources).
+    reference_size : tuple of int
+        ``(rows, cols)`` every image is analysed at: the most common size.
+    color : str
+        "gray" or "rgb".
+    resize_mismatched : bool
+        True when images of another size are kept and resized by the reader.
+    problems : tuple of Problem
+        Every skipped file or page with its reason.
+    """
+
+    images: tuple[ImageRef, ...]
+    reference_size: tuple[int, int]
+    color: str
+    resize_mismatched: bool
+    problems: tuple[Problem, ...]
+
+    @property
+    def n_images(self) -> int:
+        """Number of usable images."""
+        return len(self.images)
+
+    @property
+    def channels(self) -> int:
+        """1 for gray, 3 for rgb."""
+        return 3 if self.color == "rgb" else 1
+
+    @property
+    def image_shape(self) -> tuple[int, int, int]:
+        """``(rows, cols, channels)`` at source resolution."""
+        return (self.reference_size[0], self.reference_size[1], self.channels)
+
+
+_NATURAL_SPLIT = re.compile(r"([0-9]+)")
+
+
+def natural_key(name: str) -> tuple:
+    """Return a sort key that orders runs of digits by their value, ignoring case.
+
+    Parameters
+    ----------
+    name : str
+        A file name or one component of a path.
+
+    Returns
+    -------
+    tuple
+        Compare keys with ``<``: "frame_2" sorts before "frame_10", "B" after "a". Names that
+        differ only in case or leading zeros are ordered by the name itself, so the order is
+        total and repeatable.
+
+    Raises
+    ------
+    TypeError
+        If ``name`` is not a str.
+
+    Examples
+    --------
+    >>> sorted(["frame_10.png", "Frame_2.png", "frame_1.png"], key=natural_key)
+    ['frame_1.png', 'Frame_2.png', 'frame_10.png']
+    """
+    if not isinstance(name, str):
+        raise TypeError(f"name must be a str, got {type(name).__name__} {name!r}")
+    parts = []
+    for i, chunk in enumerate(_NATURAL_SPLIT.split(name)):
+        if i % 2:  # a run of digits
+            parts.append((1, int(chunk), ""))
+        elif chunk:
+            parts.append((0, 0, chunk.casefold()))
+    return (tuple(parts), name)
+
+
+def _path_key(relative: str) -> tuple:
+    """Natural key over every component of a relative path."""
+    return tuple(natural_key(part) for part in re.split(r"[\\/]", relative))
+
+
+def _as_source_list(sources) -> list[str]:
+    if isinstance(sources, (str, os.PathLike)):
+        sources = [sources]
+    elif isinstance(sources, bytes) or not isinstance(sources, Iterable):
+        raise TypeError("sources must be a folder or file path, or a sequence of them; got "
+                        f"{type(sources).__name__}")
+    result = []
+    for i, item in enumerate(sources):
+        if not isinstance(item, (str, os.PathLike)):
+            raise TypeError(f"sources[{i}] must be a str or path, got {type(item).__name__} "
+                            f"{item!r}")
+        item = os.fspath(item)
+        if not isinstance(item, str):
+            raise TypeError(f"sources[{i}] must be a str path, got bytes {item!r}")
+        if item == "":
+            raise ValueError(f"sources[{i}] is an empty string; expected a folder or file path")
+        result.append(item)
+    if not result:
+        raise ValueError("sources must name at least one folder or file")
+    return result
+
+
+def _is_hidden(name: str) -> bool:
+    return name.startswith(".")
+
+
+def _has_supported_suffix(name: str) -> bool:
+    return os.path.splitext(name)[1].lower() in SUPPORTED_SUFFIXES
+
+
+def _list_folder(folder: str, recursive: bool, problems: list[Problem]) -> list[str]:
+    """Return the supported files of ``folder`` in natural order (absolute paths)."""
+    found: list[tuple[tuple, str]] = []
+    if recursive:
+        def on_error(err: OSError) -> None:
+            problems.append(Problem(err.filename or folder,
+                                    f"folder cannot be read ({err.strerror or err})"))
+
+        for dirpath, dirnames, filenames in os.walk(folder, onerror=on_error):
+            dirnames[:] = [d for d in dirnames if not _is_hidden(d)]
+            for fname in filenames:
+                if _is_hidden(fname) or not _has_supported_suffix(fname):
+                    continue
+                full = os.path.join(dirpath, fname)
+                if not os.path.isfile(full):
+                    continue
+                found.append((_path_key(os.path.relpath(full, folder)), full))
+    else:
+        try:
+            with os.scandir(folder) as it:
+                entries = list(it)
+        except OSError as err:
+            problems.append(Problem(folder, f"folder cannot be read ({err.strerror or err})"))
+            return []
+        for entry in entries:
+            if _is_hidden(entry.name) or not _has_supported_suffix(entry.name):
+                continue
+            try:
+                if not entry.is_file():
+                    continue
+            except OSError:
+                continue
+            found.append((_path_key(entry.name), entry.path))
+    found.sort(key=lambda item: item[0])
+    return [os.path.abspath(full) for _, full in found]
+
+
+def _short_message(exc: BaseException, path: str) -> str:
+    if isinstance(exc, UnidentifiedImageError):
+        return "Pillow does not recognise the file format"
+    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    for variant in (f"'{path}'", f'"{path}"', path):
+        text = text.replace(variant, "the file")
+    if len(text) > 120:
+        text = text[:117] + "..."
+    return text
+
+
+def _header_orientation(img: Image.Image) -> int:
+    """Return the EXIF orientation (1-8) of an opened image without decoding its pixels.
+
+    Parameters
+    ----------
+    img : PIL.Image.Image
+        An image opened with ``Image.open`` (current frame for multi-page files).
+
+    Returns
+    -------
+    int
+        The orientation tag, 1 when absent or not in 1-8.
+    """
+    try:
+        # PngImageFile.getexif decodes the whole image when the EXIF block is not in the
+        # header; the base implementation only looks at what the header held.
+        exif = Image.Image.getexif(img)
+        value = exif.get(_ORIENTATION_TAG, 1)
+    except Exception:  # noqa: BLE001 - damaged EXIF must not hide a readable image
+        return 1
+    try:
+        value = int(value)
+    except (TypeError, ValueError):
+        return 1
+    return value if 1 <= value <= 8 else 1
+
+
+def _oriented_size(img: Image.Image) -> tuple[int, int]:
+    cols, rows = img.size
+    # Pillow's TIFF reader already reports the oriented size and rotates while decoding.
+    if img.format != "TIFF" and _header_orientation(img) >= 5:
+        rows, cols = cols, rows
+    return (rows, cols)
+
+
+def _probe(path: str, problems: list[Problem]) -> list[ImageRef]:
+    """Open ``path`` (header only) and return one ImageRef per usable page."""
+    refs: list[ImageRef] = []
+    try:
+        with Image.open(path) as img:
+            n_pages = 1
+            if img.format == "TIFF":
+                n_pages = int(getattr(img, "n_frames", 1))
+            for page in range(n_pages):
+                if page:
+                    img.seek(page)
+                mode = img.mode
+                page_label = page if n_pages > 1 else None
+                if mode not in SUPPORTED_MODES:
+                    problems.append(Problem(
+                        path, f"image mode {mode!r} is not supported (supported: "
+                              f"{', '.join(SUPPORTED_MODES)})", page_label))
+                    continue
+                rows, cols = _oriented_size(img)
+                if rows < 1 or cols < 1:
+                    problems.append(Problem(path, f"image has no pixels (size {rows}x{cols})",
+                                            page_label))
+                    continue
+                refs.append(ImageRef(path=path, page=page, size=(rows, cols), mode=mode))
+    except MemoryError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - Pillow plugins raise many types on bad files
+        problems.append(Problem(
+            path, f"not an image Modescope can read ({_short_message(exc, path)})"))
+        return []
+    return refs
+
+
+def _check_callable(name: str, value) -> None:
+    if value is not None and not callable(value):
+        raise TypeError(f"{name} must be callable or None, got {type(value).__name__}")
+
+
+def _check_bool(name: str, value) -> bool:
+    if not isinstance(value, bool):
+        raise TypeError(f"{name} must be True or False, got {type(value).__name__} {value!r}")
+    return value
+
+
+def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
+                 resize_mismatched: bool = False,
+                 progress: Callable[[int, int], None] | None = None,
+                 cancel: Callable[[], bool] | None = None) -> SourceSet:
+    """Find the images in folders and files and check that they can be analysed together.
+
+    Parameters
+    ----------
+    sources : str, os.PathLike or sequence of them
+        Folders and files, in the order wanted.
+    recursive : bool, default False
+        Take the supported files of every folder below a folder given (hidden folders skipped).
+    color : {"gray", "rgb"}, default "gray"
+        How the reader will decode the images: one luma channel or three colour channels.
+    resize_mismatched : bool, default False
+        Keep images whose size differs from the reference size (the reader resizes them)
+        instead of skipping them with a problem.
+    progress : callable(done, total), optional
+        Called after each file header is read; ``total`` is the number of files found.
+    cancel : callable() -> bool, optional
+        Checked before each file; when it returns True the scan stops.
+
+    Returns
+    -------
+    SourceSet
+        Usable images in order, the reference size, the colour choice and the problems.
+
+    Raises
+    ------
+    TypeError
+        If an argument has the wrong type.
+    ValueError
+        If ``sources`` is empty or ``color`` is not "gray" or "rgb".
+    NoUsableImagesError
+        If no usable image was found; the message says how many files were looked at and
+        lists the first problems.
+    AnalysisCancelled
+        If ``cancel()`` returned True.
+
+    Examples
+    --------
+    >>> sset = scan_sources(["frames/"], color="gray")          # doctest: +SKIP
+    >>> sset.n_images, sset.image_shape                          # doctest: +SKIP
+    (240, (96, 128, 1))
+    """
+    source_list = _as_source_list(sources)
+    _check_bool("recursive", recursive)
+    check_choice("color", color, _COLORS)
+    _check_bool("resize_mismatched", resize_mismatched)
+    _check_callable("progress", progress)
+    _check_callable("cancel", cancel)
+
+    problems: list[Problem] = []
+    files: list[str] = []
+    seen: set[str] = set()
+
+    def add(path: str) -> None:
+        key = os.path.normcase(os.path.realpath(path))
+        if key not in seen:
+            seen.add(key)
+            files.append(path)
+
+    for source in source_list:
+        if cancel is not None and cancel():
+            raise AnalysisCancelled("scan of the image sources was cancelled")
+        full = os.path.abspath(source)
+        if os.path.isdir(full):
+            for path in _list_folder(full, recursive, problems):
+                add(path)
+        elif os.path.isfile(full):
+            add(full)
+        elif os.path.exists(full):
+            problems.append(Problem(full, "is neither a file nor a folder"))
+        else:
+            problems.append(Problem(full, "does not exist"))
+
+    total = len(files)
+    found: list[ImageRef] = []
+    for done, path in enumerate(files, start=1):
+        if cancel is not None and cancel():
+            raise AnalysisCancelled("scan of the image sources was cancelled")
+        found.extend(_probe(path, problems))
+        if progress is not None:
+            progress(done, total)
+
+    multi_page = {ref.path for ref in found if ref.page > 0}
+    usable: list[ImageRef] = []
+    reference_size = (0, 0)
+    if found:
+        counts = Counter(ref.size for ref in found)
+        best = max(counts.values())
+        reference_size = next(ref.size for ref in found if counts[ref.size] == best)
+        for ref in found:
+            if ref.size == reference_size or resize_mismatched:
+                usable.append(ref)
+            else:
+                page = ref.page if ref.path in multi_page else None
+                problems.append(Problem(
+                    ref.path,
+                    f"size {ref.size[0]}x{ref.size[1]} differs from the reference "
+                    f"{reference_size[0]}x{reference_size[1]} (skipped; use "
+                    "--resize-mismatched to include it)", page))
+
+    if not usable:
+        listed = "; ".join(str(p) for p in problems[:_MAX_PROBLEMS_IN_MESSAGE])
+        more = len(problems) - _MAX_PROBLEMS_IN_MESSAGE
+        if more > 0:
+            listed += f"; and {more} more"
+        where = ", ".join(repr(s) for s in source_list[:3])
+        if len(source_list) > 3:
+            where += f" and {len(source_list) - 3} more"
+        if total == 0 and not problems:
+            hint = "" if recursive else "; subfolders are searched only with the recursive option"
+            message = (f"no usable image in {where}: 0 files looked at (no file with suffix "
+                       f"{', '.join(SUPPORTED_SUFFIXES)}{hint})")
+        else:
+            message = (f"no usable image in {where}: {total} file"
+                       f"{'' if total == 1 else 's'} looked at"
+                       + (f"; problems: {listed}" if listed else ""))
+        raise NoUsableImagesError(message)
+
+    return SourceSet(images=tuple(usable), reference_size=reference_size, color=color,
+                     resize_mismatched=resize_mismatched, problems=tuple(problems))

@@ -1,0 +1,162 @@
+"""Command line: analyze and info, exit codes and messages."""
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from modescope.app.cli.main import main
+from modescope.core.output.model_file import load_model
+
+
+@pytest.fixture()
+def folder(tmp_path):
+    rng = np.random.default_rng(0)
+    base = rng.random((3, 10, 12))
+    f = tmp_path / "frames"
+    f.mkdir()
+    for i in range(30):
+        v = 0.3 + 0.2 * np.tensordot(rng.normal(size=3), base, 1) / 3
+        Image.fromarray(np.clip(v * 255, 0, 255).astype(np.uint8)).save(f / f"frame_{i}.png")
+    Image.fromarray(np.zeros((5, 5), np.uint8)).save(f / "odd_size.png")
+    return f
+
+
+def test_analyze_writes_model_and_reports_problems(folder, tmp_path, capsys):
+    out = tmp_path / "m.npz"
+    code = main(["analyze", str(folder), "-o", str(out), "--rank", "4", "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 0
+    d = load_model(out)
+    assert d.n_images == 30 and d.rank == 4 and d.exact
+    assert "odd_size.png" in err and "1 file(s) skipped" in err
+    assert "analysed 30 images of 10x12 (gray)" in err
+    # with --resize-mismatched the odd one is included
+    assert main(["analyze", str(folder), "-o", str(out), "--rank", "4", "--quiet",
+                 "--resize-mismatched"]) == 0
+    assert load_model(out).n_images == 31
+
+
+def test_progress_is_shown_on_stderr(folder, tmp_path, capsys):
+    assert main(["analyze", str(folder), "-o", str(tmp_path / "p.npz"), "--rank", "2"]) == 0
+    err = capsys.readouterr().err
+    assert "learn: 30/30 images (100%)" in err and "score: 30/30 images (100%)" in err
+
+
+def test_info_lists_energy_per_rank(folder, tmp_path, capsys):
+    out = tmp_path / "m.npz"
+    main(["analyze", str(folder), "-o", str(out), "--rank", "5", "--quiet"])
+    capsys.readouterr()
+    assert main(["info", str(out)]) == 0
+    text = capsys.readouterr().out
+    d = load_model(out)
+    assert "images:       30" in text and "10 rows x 12 cols, gray" in text
+    cum = d.cumulative_energy()
+    for r in range(5):
+        assert f"{100 * cum[r]:9.2f}%" in text
+
+
+def test_exit_codes(tmp_path, capsys):
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    assert main(["analyze", str(empty), "-o", str(tmp_path / "x.npz")]) == 1
+    assert "nothing usable" in capsys.readouterr().err
+    with pytest.raises(SystemExit) as exc:
+        main(["analyze", str(empty)])           # missing -o
+    assert exc.value.code == 2
+    with pytest.raises(SystemExit) as exc:
+        main(["analyze", str(empty), "-o", "x.npz", "--rank", "zero"])
+    assert exc.value.code == 2
+    assert main(["info", str(tmp_path / "missing.npz")]) == 1
+    assert "missing.npz: no such file" in capsys.readouterr().err
+    assert main(["analyze", str(empty), "-o", str(empty)]) == 2
+    assert main([str(tmp_path / "nope")]) == 2
+
+
+def test_too_large_downscale_and_memory_errors_are_messages(folder, tmp_path, capsys,
+                                                            monkeypatch):
+    out = tmp_path / "d.npz"
+    # 10x12 frames cannot be downscaled by 20: a message naming the limit, no traceback
+    assert main(["analyze", str(folder), "-o", str(out), "--downscale", "20", "--quiet"]) == 1
+    err = capsys.readouterr().err
+    assert "downscale 20 is too large for the reference size 10x12" in err
+    assert "use at most 10" in err and not out.exists()
+    from modescope.core.engine import pipeline
+
+    def no_memory(*args, **kwargs):
+        raise MemoryError
+    monkeypatch.setattr(pipeline, "analyze", no_memory)
+    assert main(["analyze", str(folder), "-o", str(out), "--quiet"]) == 1
+    assert "not enough memory" in capsys.readouterr().err
+
+
+def test_single_image_gives_a_mean_only_model(tmp_path, capsys):
+    # one image (or identical ones): centred, the data is zero, so there is no basis image;
+    # the model holds the mean and the commands say so instead of failing
+    f = tmp_path / "one"
+    f.mkdir()
+    Image.fromarray(np.arange(120, dtype=np.uint8).reshape(10, 12)).save(f / "only.png")
+    out = tmp_path / "one.npz"
+    assert main(["analyze", str(f), "-o", str(out), "--quiet"]) == 0
+    assert "no basis images: the images do not vary" in capsys.readouterr().err
+    d = load_model(out)
+    assert d.rank == 0 and d.n_images == 1 and d.total_energy == 0
+    np.testing.assert_allclose(d.mean, np.arange(120) / 255, atol=1e-6)
+    assert main(["info", str(out)]) == 0
+    assert "basis images: none" in capsys.readouterr().out
+
+
+def test_info_into_a_closed_pipe_stops_quietly(folder, tmp_path, monkeypatch, capsys):
+    import io
+    import sys
+    out = tmp_path / "m.npz"
+    assert main(["analyze", str(folder), "-o", str(out), "--rank", "4", "--quiet"]) == 0
+    capsys.readouterr()
+
+    class ClosedPipe(io.TextIOBase):
+        # what `modescope info m.npz | head -1` meets once head has gone
+        def __init__(self, fd):
+            self.fd = fd
+
+        def write(self, text):
+            raise BrokenPipeError(32, "Broken pipe")
+
+        def fileno(self):
+            return self.fd
+
+    with open(tmp_path / "stdout.txt", "wb") as target:
+        monkeypatch.setattr(sys, "stdout", ClosedPipe(target.fileno()))
+        code = main(["info", str(out)])
+    monkeypatch.undo()
+    assert code == 1                          # stopped quietly: an exit code, no traceback
+    assert "Traceback" not in capsys.readouterr().err
+
+
+def test_ctrl_c_writes_the_partial_analysis_and_update_completes_it(folder, tmp_path,
+                                                                      monkeypatch, capsys):
+    import signal
+    from modescope.core.engine.streaming import StreamingSVD
+    out = tmp_path / "partial.npz"
+    real_update = StreamingSVD.update
+    calls = []
+
+    def update_then_ctrl_c(self, block):
+        real_update(self, block)
+        calls.append(block.shape[1])
+        if len(calls) == 2:
+            signal.raise_signal(signal.SIGINT)     # the user presses Ctrl-C once
+    monkeypatch.setattr(StreamingSVD, "update", update_then_ctrl_c)
+    code = main(["analyze", str(folder), "-o", str(out), "--rank", "3", "--block-size", "5",
+                 "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 130
+    assert "stopping after the current block" in err
+    assert "wrote the streaming result of the first 10 images" in err
+    partial = load_model(out)
+    assert partial.n_images == 10 and not partial.exact
+    assert partial.metadata["stage"] == "cancelled"
+    assert signal.getsignal(signal.SIGINT) is signal.default_int_handler   # handler restored
+    monkeypatch.undo()
+    # resuming: update adds the 20 images not yet in the model and runs the exact pass
+    assert main(["update", str(out), str(folder), "-o", str(out), "--quiet"]) == 0
+    full = load_model(out)
+    assert full.n_images == 30 and full.exact

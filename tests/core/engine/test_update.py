@@ -1,0 +1,76 @@
+"""Adding images to an existing analysis equals analysing everything at once."""
+
+import numpy as np
+import pytest
+from PIL import Image
+
+from modescope.app.cli.main import main
+from modescope.core.errors import NoUsableImagesError, SourceError
+from modescope.core.output.model_file import load_model, save_model
+from modescope.core.engine.pipeline import AnalysisOptions, analyze, update_analysis
+
+
+@pytest.fixture()
+def two_folders(tmp_path):
+    rng = np.random.default_rng(0)
+    base = rng.random((4, 14, 18))
+    first, second = tmp_path / "first", tmp_path / "second"
+    first.mkdir()
+    second.mkdir()
+    arrays = []
+    for i in range(100):
+        v = 0.4 + 0.1 * np.tensordot(rng.normal(size=4), base - 0.5, 1)
+        v += 0.01 * rng.normal(size=v.shape)
+        a = np.clip(np.round(v * 255), 0, 255).astype(np.uint8)
+        arrays.append(a)
+        Image.fromarray(a).save((first if i < 60 else second) / f"f_{i}.png")
+    x = np.stack([a.ravel() / 255.0 for a in arrays], axis=1)
+    return first, second, x
+
+
+def test_update_matches_lapack_and_one_run(two_folders):
+    first, second, x = two_folders
+    opts = AnalysisOptions(rank=8)
+    base = analyze([first], opts).decomposition
+    base = base.replace(marks=np.where(np.arange(60) == 5, 2, 0).astype(np.int8))
+    result = update_analysis(base, [second])
+    d = result.decomposition
+    assert d.exact and d.n_images == 100 and not result.cancelled
+    assert d.paths[:60] == base.paths and d.paths[60].endswith("f_60.png")
+    assert d.marks[5] == 2 and d.marks[60:].sum() == 0        # review marks kept
+    # reference: LAPACK SVD (numpy.linalg.svd) of all 100 centred images
+    c = x - x.mean(axis=1, keepdims=True)
+    s = np.linalg.svd(c, compute_uv=False)
+    np.testing.assert_allclose(d.singular_values[:4], s[:4], rtol=1e-4)
+    np.testing.assert_allclose(d.mean, x.mean(axis=1), atol=1e-5)
+    assert d.total_energy == pytest.approx(np.sum(c ** 2), rel=1e-6)
+    one = analyze([first, second], opts).decomposition
+    np.testing.assert_allclose(d.singular_values[:4], one.singular_values[:4], rtol=1e-4)
+    # adding the same files again finds nothing new
+    with pytest.raises(NoUsableImagesError, match="already in the analysis"):
+        update_analysis(d, [first])
+
+
+def test_update_with_missing_old_file_keeps_streaming_result(two_folders):
+    first, second, _ = two_folders
+    base = analyze([first], AnalysisOptions(rank=4)).decomposition
+    (first / "f_3.png").unlink()
+    result = update_analysis(base, [second])
+    assert not result.decomposition.exact and result.decomposition.n_images == 100
+    assert any("f_3.png" in p.path and "missing" in p.reason for p in result.problems)
+
+
+def test_update_refuses_mismatched_colour(two_folders):
+    first, second, _ = two_folders
+    base = analyze([first], AnalysisOptions(rank=4)).decomposition
+    with pytest.raises(SourceError, match="the analysis is gray"):
+        update_analysis(base, [second], AnalysisOptions(rank=4, color="rgb"))
+
+
+def test_update_command(two_folders, tmp_path, capsys):
+    first, second, _ = two_folders
+    model = tmp_path / "m.npz"
+    assert main(["analyze", str(first), "-o", str(model), "--rank", "5", "--quiet"]) == 0
+    assert main(["update", str(model), str(second), "-o", str(model), "--quiet"]) == 0
+    assert load_model(model).n_images == 100
+    assert "added 40 images to 60" in capsys.readouterr().err

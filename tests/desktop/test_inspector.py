@@ -1,0 +1,244 @@
+"""The inspector: image, rank-r reconstruction, residual, rank slider, missing sources."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from PySide6.QtCore import Qt
+
+from modescope.app.desktop.imaging import array_to_qimage, signed_to_qimage
+from modescope.app.desktop.views.inspector import Inspector, RANK_DEBOUNCE_MS
+from modescope.app.desktop.state import AppState
+from modescope.core.engine import pipeline
+
+
+@pytest.fixture
+def state(qtbot):
+    return AppState()
+
+
+@pytest.fixture
+def inspector(qtbot, state):
+    view = Inspector(state)
+    qtbot.addWidget(view)
+    view.resize(900, 500)
+    view.show()
+    return view
+
+
+def _qimage_array(img) -> np.ndarray:
+    """The pixels of a Grayscale8 QImage as (rows, cols) uint8."""
+    ptr = img.constBits()
+    arr = np.frombuffer(ptr, dtype=np.uint8, count=img.sizeInBytes())
+    return arr.reshape(img.height(), img.bytesPerLine())[:, :img.width()].copy()
+
+
+def test_empty_state_shows_hint(inspector):
+    assert inspector.reconstruction_array is None
+    assert "start an analysis" in inspector.source_pane.note()
+    assert not inspector.rank_slider.isEnabled()
+
+
+@pytest.mark.parametrize("index, rank", [(0, 1), (3, 2), (7, 5)])
+def test_reconstruction_equals_core(inspector, state, gray_decomposition, gray_pngs,
+                                    index, rank):
+    d = gray_decomposition
+    state.set_decomposition(d)
+    state.set_selected(index)
+    state.set_rank(rank)
+    expected = d.reconstruct(index, rank).reshape(20, 24, 1)
+    # the inspector updates incrementally (core.reconstruct): equal to float32 rounding
+    np.testing.assert_allclose(inspector.reconstruction_array, expected, atol=1e-6)
+    # and the same through the reference of the test matrix: mean + U_r (S V^T)_r (LAPACK SVD)
+    _, images = gray_pngs
+    x = images.reshape(8, -1).T.astype(np.float64)
+    mean = x.mean(axis=1)
+    u, s, vt = np.linalg.svd(x - mean[:, None], full_matrices=False)
+    ref = mean + u[:, :rank] @ (s[:rank] * vt[:rank, index])
+    np.testing.assert_allclose(inspector.reconstruction_array.ravel(), ref, atol=2e-5)
+    # the source is the PNG content read by Pillow (gray_pngs) and the residual their difference
+    np.testing.assert_allclose(inspector.source_array, images[index], atol=1e-6)
+    np.testing.assert_allclose(inspector.residual_array, images[index] - expected, atol=1e-6)
+    # the pane shows the reconstruction in gray, clipped to [0, 1] and rounded to 8 bits
+    shown = _qimage_array(inspector.reconstruction_pane.image())
+    # (at most one 8-bit level apart where float32 rounding lands on a half level)
+    np.testing.assert_allclose(
+        shown.astype(int), np.clip(np.rint(expected[:, :, 0] * 255), 0, 255), atol=1)
+
+
+def test_slider_repaints_without_new_svd(qtbot, inspector, state, gray_decomposition,
+                                         monkeypatch):
+    d = gray_decomposition
+    state.set_decomposition(d)
+    state.set_selected(2)
+    state.set_rank(5)
+    calls = []
+
+    def forbidden(*args, **kwargs):
+        calls.append(args)
+        raise AssertionError("no SVD may be computed when the rank changes")
+
+    monkeypatch.setattr(pipeline, "analyze", forbidden)
+    monkeypatch.setattr(np.linalg, "svd", forbidden)
+    import scipy.linalg
+    import scipy.sparse.linalg
+    monkeypatch.setattr(scipy.linalg, "svd", forbidden)
+    monkeypatch.setattr(scipy.sparse.linalg, "svds", forbidden)
+    before = inspector.reconstruction_array.copy()
+    before_image = inspector.reconstruction_pane.image().copy()
+    paints = inspector.repaint_count
+    inspector.rank_slider.setValue(2)
+    assert state.rank == 5                    # debounced: not yet
+    qtbot.waitUntil(lambda: state.rank == 2, timeout=2000)
+    assert not calls
+    assert inspector.repaint_count > paints
+    assert not np.array_equal(inspector.reconstruction_array, before)
+    assert inspector.reconstruction_pane.image() != before_image
+    np.testing.assert_allclose(inspector.reconstruction_array,
+                               d.reconstruct(2, 2).reshape(20, 24, 1), atol=1e-6)
+    assert "rank 2" in inspector.reconstruction_pane.title()
+
+
+def test_slider_drag_is_debounced(qtbot, inspector, state, gray_decomposition):
+    state.set_decomposition(gray_decomposition)
+    state.set_rank(5)
+    seen = []
+    state.rankChanged.connect(seen.append)
+    for value in (4, 3, 2, 1):                 # quicker than the debounce interval
+        inspector.rank_slider.setValue(value)
+    qtbot.wait(RANK_DEBOUNCE_MS * 6)
+    assert seen == [1]
+    assert inspector.rank_label.text() == "Rank 1 of 5"
+
+
+def test_state_rank_moves_slider(inspector, state, gray_decomposition):
+    state.set_decomposition(gray_decomposition)
+    state.set_rank(3)
+    assert inspector.rank_slider.value() == 3
+    assert inspector.rank_slider.maximum() == gray_decomposition.rank
+
+
+def test_energy_and_residual_text(inspector, state, gray_decomposition):
+    d = gray_decomposition
+    state.set_decomposition(d)
+    state.set_selected(4)
+    state.set_rank(2)
+    # energy share from the reference SVD values: (s1^2 + s2^2) / ||C||_F^2
+    s = d.singular_values
+    share = (s[0] ** 2 + s[1] ** 2) / d.total_energy
+    assert f"{100 * share:.1f} %" in inspector.energy_label.text()
+    res = d.residual_at_rank(2)[4]
+    assert f"{res:.4g}" in inspector.residual_label.text()
+
+
+def test_residual_legend_shows_range(inspector, state, gray_decomposition):
+    state.set_decomposition(gray_decomposition)
+    state.set_selected(1)
+    state.set_rank(1)
+    limit = float(np.max(np.abs(inspector.residual_array)))
+    assert inspector.legend.limit() == pytest.approx(limit)
+    left, mid, right = inspector.legend.labels()
+    assert right == f"+{limit:.3g}" and mid == "0" and left.endswith(f"{limit:.3g}")
+    shown = inspector.residual_pane.image()
+    expected = signed_to_qimage(inspector.residual_array, limit)
+    assert shown == expected
+
+
+def test_missing_source_still_shows_reconstruction(inspector, state, gray_decomposition,
+                                                   tmp_path):
+    d = gray_decomposition
+    moved = list(d.paths)
+    moved[0] = str(tmp_path / "gone" / "img_00.png")
+    state.set_decomposition(d.replace(paths=tuple(moved)))
+    state.set_selected(0)
+    assert inspector.source_array is None
+    assert "missing" in inspector.source_note and "img_00.png" in inspector.source_note
+    assert "missing" in inspector.source_pane.note()
+    assert inspector.reconstruction_array is not None
+    assert not inspector.reconstruction_pane.image().isNull()
+    assert inspector.residual_array is None
+
+
+def test_source_cached_while_selected(qtbot, state, gray_decomposition):
+    calls = []
+
+    def loader(decomposition, index):
+        calls.append(index)
+        return pipeline.load_analysis_image(decomposition, index)
+
+    view = Inspector(state, load_image=loader)
+    qtbot.addWidget(view)
+    state.set_decomposition(gray_decomposition)
+    state.set_selected(3)
+    for r in (1, 2, 3, 4):
+        state.set_rank(r)
+    state.set_decomposition(gray_decomposition.replace())   # e.g. a new snapshot, same image
+    assert calls.count(3) == 1
+    state.set_selected(4)
+    assert calls.count(4) == 1
+
+
+def test_arrow_keys_step_image_and_rank(qtbot, inspector, state, gray_decomposition):
+    state.set_decomposition(gray_decomposition)
+    state.set_selected(2)
+    state.set_rank(3)
+    inspector.setFocus()
+    qtbot.keyClick(inspector, Qt.Key.Key_Right)
+    assert state.selected == 3
+    qtbot.keyClick(inspector, Qt.Key.Key_Left)
+    qtbot.keyClick(inspector, Qt.Key.Key_Left)
+    assert state.selected == 1
+    qtbot.keyClick(inspector, Qt.Key.Key_Up)
+    assert state.rank == 4
+    qtbot.keyClick(inspector, Qt.Key.Key_Down)
+    qtbot.keyClick(inspector, Qt.Key.Key_Down)
+    assert state.rank == 2
+
+
+def test_rgb_images_in_colour(qtbot, state, tmp_path, make_decomposition):
+    from PIL import Image
+
+    rng = np.random.default_rng(5)
+    imgs = rng.integers(0, 256, size=(6, 10, 12, 3), dtype=np.uint8)
+    paths = []
+    for i, im in enumerate(imgs):
+        p = tmp_path / f"c{i}.png"
+        Image.fromarray(im).save(p)
+        paths.append(str(p))
+    meta = {"source_size": [10, 12], "color": "rgb", "downscale": 1}
+    d = make_decomposition(imgs.astype(np.float32) / 255.0, 3, paths, meta)
+    view = Inspector(state)
+    qtbot.addWidget(view)
+    state.set_decomposition(d)
+    state.set_selected(5)
+    assert view.source_pane.image() == array_to_qimage(imgs[5])
+    assert "channel mean" in view.residual_pane.title()
+
+
+def test_to_uint8_rounds_clips_and_handles_non_finite_values():
+    from modescope.app.desktop.imaging import to_uint8
+    rng = np.random.default_rng(2)
+    x = rng.random((7, 9, 3)) * 1.4 - 0.2                      # float64, some out of [0, 1]
+    # reference: round-half-even of 255 x in float32, clipped (written out independently)
+    expected = np.clip(np.round(x.astype(np.float32) * np.float32(255)), 0, 255).astype(np.uint8)
+    out = to_uint8(x)
+    assert out.dtype == np.uint8 and out.flags.c_contiguous
+    np.testing.assert_array_equal(out, expected)
+    np.testing.assert_array_equal(to_uint8(x[:, ::2]), expected[:, ::2])      # strided input
+    bad = np.array([[np.nan, np.inf, -np.inf, 0.5]], dtype=np.float32)
+    np.testing.assert_array_equal(to_uint8(bad), [[0, 255, 0, 128]])
+    np.testing.assert_array_equal(to_uint8(np.array([[True, False]])), [[255, 0]])
+    u = rng.integers(0, 256, (4, 4), dtype=np.uint8)
+    assert to_uint8(u) is not None and np.array_equal(to_uint8(u), u)
+
+
+def test_empty_inspector_tells_when_an_analysis_is_running(qtbot):
+    state = AppState()
+    ins = Inspector(state)
+    qtbot.addWidget(ins)
+    assert ins.source_pane._note.startswith("Add images in the Sources pane")
+    ins.set_running(True)
+    assert ins.source_pane._note.startswith("Analysis running")
+    assert ins.title_label.text() == "Analysis starting…"
+    ins.set_running(False)
+    assert ins.source_pane._note.startswith("Add images in the Sources pane")

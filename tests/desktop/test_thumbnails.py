@@ -1,0 +1,190 @@
+"""Tests of the off-thread thumbnail maker and its bounded LRU cache."""
+
+from __future__ import annotations
+
+import threading
+import numpy as np
+import pytest
+from PIL import Image
+from PySide6.QtCore import QThread
+from PySide6.QtGui import QImage
+
+from modescope.app.desktop.workers import thumbnails
+from modescope.app.desktop.workers.thumbnails import (ThumbnailCache, ThumbnailMaker, array_to_qimage,
+                                      make_thumbnail)
+
+
+def _pixels(image: QImage) -> np.ndarray:
+    """Read a QImage back as (rows, cols, 3) uint8 through QImage.pixelColor."""
+    out = np.empty((image.height(), image.width(), 3), dtype=np.uint8)
+    for r in range(image.height()):
+        for c in range(image.width()):
+            col = image.pixelColor(c, r)
+            out[r, c] = (col.red(), col.green(), col.blue())
+    return out
+
+
+# ----- numpy -> QImage -------------------------------------------------------------------------
+@pytest.mark.parametrize("shape", [(5, 7), (4, 5, 1), (3, 5, 3), (6, 9, 3)])
+def test_array_to_qimage_round_trip(shape):
+    rng = np.random.default_rng(3)
+    a = rng.integers(0, 256, size=shape, dtype=np.uint8)
+    img = array_to_qimage(a)
+    assert (img.height(), img.width()) == shape[:2]
+    got = _pixels(img)
+    expect = (a if a.ndim == 3 and a.shape[2] == 3
+              else np.repeat(a.reshape(shape[:2])[..., None], 3, 2)).copy()
+    np.testing.assert_array_equal(got, expect)
+    a[...] = 0  # the QImage owns its pixels
+    np.testing.assert_array_equal(_pixels(img), expect)
+
+
+def test_array_to_qimage_rejects():
+    with pytest.raises(TypeError, match="uint8"):
+        array_to_qimage(np.zeros((2, 2)))
+    with pytest.raises(ValueError, match=r"\(2, 2, 2\)"):
+        array_to_qimage(np.zeros((2, 2, 2), dtype=np.uint8))
+
+
+# ----- making one thumbnail --------------------------------------------------------------------
+def test_make_thumbnail_from_file_matches_pillow(tmp_path):
+    rng = np.random.default_rng(0)
+    a = rng.integers(0, 256, size=(90, 150, 3), dtype=np.uint8)
+    p = tmp_path / "a.png"
+    Image.fromarray(a).save(p)
+    t = make_thumbnail(str(p), size=64)
+    assert t.source == "file" and t.note == ""
+    ref = Image.fromarray(a)
+    ref.thumbnail((64, 64))  # reference: Pillow's own thumbnail of the same pixels
+    assert (t.image.width(), t.image.height()) == ref.size == (64, 38)
+    np.testing.assert_array_equal(_pixels(t.image), np.asarray(ref))
+
+
+def test_make_thumbnail_16_bit_and_pages(tmp_path):
+    a = np.linspace(0, 65535, 40 * 30).reshape(30, 40).astype(np.uint16)
+    p = tmp_path / "deep.png"
+    Image.fromarray(a).save(p)
+    t = make_thumbnail(str(p), size=64)
+    got = _pixels(t.image)[:, :, 0].astype(int)
+    expect = np.rint(a / 65535.0 * 255).astype(int)
+    assert np.max(np.abs(got - expect)) <= 1
+    # second page of a two-page TIFF
+    pages = [Image.fromarray(np.full((8, 8), v, dtype=np.uint8)) for v in (10, 200)]
+    tif = tmp_path / "two.tif"
+    pages[0].save(tif, save_all=True, append_images=pages[1:])
+    assert _pixels(make_thumbnail(str(tif), page=1).image)[0, 0, 0] == 200
+
+
+def test_make_thumbnail_missing_file(tmp_path):
+    gone = str(tmp_path / "gone.png")
+    t = make_thumbnail(gone)
+    assert t.source == "failed" and t.image.isNull() and "gone.png" in t.note
+    recon = np.full((10, 20, 1), 0.5, dtype=np.float32)
+    t = make_thumbnail(gone, fallback=lambda: recon)
+    assert t.source == "reconstruction" and "gone.png" in t.note
+    assert (t.image.width(), t.image.height()) == (20, 10)
+    assert _pixels(t.image)[3, 3, 0] == 128  # 0.5 * 255 rounded
+
+
+# ----- cache -----------------------------------------------------------------------------------
+def test_cache_is_bounded_lru():
+    c = ThumbnailCache(3)
+    for i in range(5):
+        c.put(i, f"v{i}")
+    assert len(c) == 3 and c.keys() == [2, 3, 4]  # oldest evicted
+    assert c.get(2) == "v2"  # touching 2 makes 3 the oldest
+    c.put(5, "v5")
+    assert c.keys() == [4, 2, 5] and 3 not in c
+    assert c.get(3, "none") == "none"
+    with pytest.raises(ValueError, match="at least 1"):
+        ThumbnailCache(0)
+    with pytest.raises(TypeError, match="integer"):
+        ThumbnailCache(2.5)
+
+
+# ----- the maker -------------------------------------------------------------------------------
+def _write(tmp_path, n):
+    paths = []
+    for i in range(n):
+        p = tmp_path / f"img_{i}.png"
+        Image.fromarray(np.full((12, 16), 10 * i, dtype=np.uint8)).save(p)
+        paths.append(str(p))
+    return paths
+
+
+def test_maker_works_off_the_gui_thread(qtbot, qapp, tmp_path, monkeypatch):
+    seen = []
+    real = thumbnails.make_thumbnail
+
+    def recording(*args, **kwargs):
+        seen.append(QThread.currentThread())
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(thumbnails, "make_thumbnail", recording)
+    paths = _write(tmp_path, 3)
+    maker = ThumbnailMaker(size=32)
+    try:
+        with qtbot.waitSignal(maker.thumbnailReady, timeout=5000) as blocker:
+            assert maker.request(("a", 0), paths[2]) is None  # not cached yet
+        assert blocker.args == [("a", 0)]
+        assert seen and all(t is not qapp.thread() for t in seen)
+        assert all(t != qapp.thread() for t in seen)
+        thumb = maker.request(("a", 0), paths[2])  # now from the cache
+        assert thumb.source == "file" and _pixels(thumb.image)[0, 0, 0] == 20
+        assert thumb.icon.availableSizes()[0].toTuple() == (16, 12)  # made on the GUI thread
+    finally:
+        maker.shutdown()
+
+
+def test_maker_cache_bound_and_newest_first(qtbot, tmp_path):
+    paths = _write(tmp_path, 8)
+    maker = ThumbnailMaker(size=16, cache_size=4, threads=1)
+    try:
+        got = []
+        maker.thumbnailReady.connect(got.append)
+        for i, p in enumerate(paths):
+            maker.request(i, p)
+            maker.request(i, p)  # a repeated request is not queued twice
+        qtbot.waitUntil(lambda: len(got) == 8, timeout=5000)
+        assert sorted(got) == list(range(8))
+        assert len(maker.cache) == 4
+        assert set(maker.cache.keys()) == set(got[-4:])  # the last finished are kept
+        assert maker.pending() == 0
+    finally:
+        maker.shutdown()
+
+
+def test_maker_drops_oldest_pending_and_stops(qtbot, tmp_path, monkeypatch):
+    paths = _write(tmp_path, 6)
+    maker = ThumbnailMaker(size=16, threads=1, max_pending=2)
+    maker.shutdown()  # stopped: nothing is queued any more
+    assert maker.request(0, paths[0]) is None and maker.pending() == 0
+
+    gate = threading.Event()
+    started = threading.Event()
+    real = thumbnails.make_thumbnail
+
+    def blocking(*args, **kwargs):
+        started.set()
+        gate.wait(5)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(thumbnails, "make_thumbnail", blocking)
+    maker = ThumbnailMaker(size=16, threads=1, max_pending=2)
+    got = []
+    maker.thumbnailReady.connect(got.append)
+    try:
+        maker.request(0, paths[0])
+        assert started.wait(5)  # image 0 is being made; the next ones queue up
+        for i in range(1, 6):
+            maker.request(i, paths[i])
+        assert maker.pending() == 3  # 1 being made + max_pending newest (4 and 5)
+        gate.set()
+        qtbot.waitUntil(lambda: maker.pending() == 0, timeout=5000)
+        qtbot.waitUntil(lambda: len(got) == 3, timeout=5000)
+        assert got == [0, 5, 4]  # newest first; 1..3 were dropped
+        maker.request(2, paths[2])  # a dropped one can be asked for again
+        qtbot.waitUntil(lambda: 2 in maker.cache, timeout=5000)
+    finally:
+        gate.set()
+        maker.shutdown()
