@@ -10,10 +10,6 @@ import threading
 import time
 
 
-def counted(n: int, noun: str) -> str:
-    """Return ``"1 image"`` or ``"2,345 images"``."""
-    n = int(n)
-    return f"{n:,} {noun}{'' if n == 1 else 's'}"
 
 
 class CountProgress:

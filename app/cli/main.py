@@ -15,7 +15,8 @@ import sys
 import time
 from pathlib import Path
 
-from modescope.app.cli.common import InterruptFlag, counted
+from modescope.app.cli.common import InterruptFlag
+from modescope.app.words import counted
 from modescope.core.errors import ModescopeError
 
 EXIT_OK, EXIT_UNUSABLE, EXIT_USAGE = 0, 1, 2

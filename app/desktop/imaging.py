@@ -17,7 +17,6 @@ from modescope.core.output.colormap import DIVERGING_LUT, signed_to_rgb
 
 __all__ = [
     "NO_VARIATION",
-    "counted",
     "DIVERGING_LUT",
     "signed_to_rgb",
     "symmetric_limit",
@@ -30,13 +29,6 @@ __all__ = [
 
 #: Shown by the views when an analysis has no basis image (every image equals the mean image).
 NO_VARIATION = "No basis images: these images do not vary (each equals the mean)."
-
-
-def counted(n: int, noun: str, plural: str | None = None) -> str:
-    """Return ``"1 image"``, ``"2,345 images"``: a count with thousands separators and the noun
-    in the number it needs."""
-    n = int(n)
-    return f"{n:,} {noun if n == 1 else (plural or noun + 's')}"
 
 
 def symmetric_limit(values: np.ndarray) -> float:

@@ -41,7 +41,7 @@ from PySide6.QtWidgets import (
 
 from modescope.core.errors import ModescopeError
 
-from modescope.app.desktop.imaging import counted
+from modescope.app.words import counted
 from modescope.app.desktop.views.sources import MODEL_FILE_FILTER, IngestPane, make_analysis_options
 from modescope.app.desktop.views.inspector import Inspector
 from modescope.app.desktop.settings import Settings, StoredOptions

@@ -27,7 +27,7 @@ from PySide6.QtWidgets import (QAbstractItemView, QDoubleSpinBox, QHBoxLayout, Q
 from modescope.core.review import marks as review
 from modescope.core.review.duplicates import DuplicateReport, find_duplicates
 
-from modescope.app.desktop.imaging import counted
+from modescope.app.words import counted
 from modescope.app.desktop.state import AppState
 
 __all__ = ["DuplicatesView", "DEFAULT_TOLERANCE", "SEARCH_RANK"]

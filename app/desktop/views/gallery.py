@@ -25,7 +25,7 @@ from PySide6.QtWidgets import QLabel, QListView, QSizePolicy, QVBoxLayout, QWidg
 from modescope.core.output.colormap import DIVERGING_LUT, signed_to_rgb
 from modescope.core.decomposition import Decomposition
 
-from modescope.app.desktop.imaging import counted
+from modescope.app.words import counted
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.workers.thumbnails import array_to_qimage

@@ -22,7 +22,7 @@ from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QHeaderView, QLab
 
 from modescope.core.decomposition import Decomposition
 
-from modescope.app.desktop.imaging import counted
+from modescope.app.words import counted
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.workers.thumbnails import ThumbnailMaker

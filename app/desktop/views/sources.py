@@ -39,7 +39,7 @@ from PySide6.QtWidgets import (
 
 from modescope.core.errors import AnalysisCancelled, ModescopeError
 
-from modescope.app.desktop.imaging import counted
+from modescope.app.words import counted
 from modescope.app.desktop.settings import StoredOptions
 
 __all__ = ["IngestPane", "make_analysis_options", "scan_collection", "describe_source_set",

@@ -19,7 +19,8 @@ from PySide6.QtWidgets import (QDoubleSpinBox, QHBoxLayout, QLabel, QPushButton,
 
 from modescope.core.review.rank import energy_rank, gavish_donoho
 
-from modescope.app.desktop.imaging import NO_VARIATION, counted
+from modescope.app.desktop.imaging import NO_VARIATION
+from modescope.app.words import counted
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 

@@ -26,7 +26,8 @@ from PySide6.QtWidgets import (QComboBox, QGraphicsRectItem, QHBoxLayout, QLabel
 
 from modescope.core.decomposition import Decomposition
 
-from modescope.app.desktop.imaging import NO_VARIATION, counted
+from modescope.app.desktop.imaging import NO_VARIATION
+from modescope.app.words import counted
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 
