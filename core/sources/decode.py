@@ -223,6 +223,10 @@ def _downscale(image: np.ndarray, f: int) -> np.ndarray:
     return cropped.reshape(r, f, c, f, channels).mean(axis=(1, 3), dtype=np.float32)
 
 
+def _pillow_failure(exc: Exception, ref: ImageRef) -> _DecodeFailure:
+    return _DecodeFailure(f"cannot be decoded ({_short_message(exc, ref.path)})")
+
+
 def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
             raw_out: np.ndarray | None = None) -> bool:
     """Decode ``ref`` into ``out`` (shape analysis_shape, float32) or raise _DecodeFailure.
@@ -231,21 +235,28 @@ def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
     values are then also copied into ``raw_out`` (same shape, uint8) when it is given.
     """
     reference = source_set.reference_size
+    # Only Pillow's own work is guarded: it raises many exception types on damaged files
+    # (OSError, ValueError, SyntaxError, struct.error, EOFError, ...); a bug in our conversion
+    # (_native) must surface as itself, not as "cannot be decoded".
     try:
-        with Image.open(ref.path) as img:
+        img = Image.open(ref.path)
+    except MemoryError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - see above
+        raise _pillow_failure(exc, ref) from exc
+    with img:
+        try:
             if ref.page:
                 img.seek(ref.page)
             img.load()
             orientation = img.getexif().get(_ORIENTATION_TAG, 1)
-            if orientation in (2, 3, 4, 5, 6, 7, 8):
-                img = ImageOps.exif_transpose(img)
-            values, scale = _native(img)
-    except _DecodeFailure:
-        raise
-    except MemoryError:
-        raise
-    except Exception as exc:  # noqa: BLE001 - Pillow raises many types on damaged files
-        raise _DecodeFailure(f"cannot be decoded ({_short_message(exc, ref.path)})") from exc
+            oriented = (ImageOps.exif_transpose(img) if orientation in (2, 3, 4, 5, 6, 7, 8)
+                        else img)
+        except MemoryError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - see above
+            raise _pillow_failure(exc, ref) from exc
+        values, scale = _native(oriented)
 
     size = (int(values.shape[0]), int(values.shape[1]))
     if size != reference:
