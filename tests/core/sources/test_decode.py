@@ -389,3 +389,27 @@ def test_iter_blocks_validation(tmp_path):
         iter_blocks(sset, cancel=True)
     with pytest.raises(ValueError, match="downscale 7 is too large"):
         iter_blocks(sset, downscale=7)
+
+
+def test_bug_in_own_conversion_is_not_reported_as_a_damaged_file(tmp_path, monkeypatch):
+    # only Pillow's work is guarded: an error in our own conversion must not turn into
+    # "cannot be decoded" (which would hide a bug behind a skipped file)
+    from modescope.core.sources import decode
+
+    path = save(tmp_path / "a.png", np.zeros((4, 5), np.uint8))
+    sset = scan_sources([path])
+
+    def broken(img):
+        raise RuntimeError("bug in _native")
+
+    monkeypatch.setattr(decode, "_native", broken)
+    with pytest.raises(RuntimeError, match="bug in _native"):
+        load_image(sset.images[0], sset)
+
+
+def test_damaged_file_is_still_a_source_error(tmp_path):
+    path = save(tmp_path / "a.png", np.zeros((40, 50), np.uint8))
+    sset = scan_sources([path])
+    path.write_bytes(path.read_bytes()[:60])  # truncated after the scan
+    with pytest.raises(SourceError, match="a.png"):
+        load_image(sset.images[0], sset)
