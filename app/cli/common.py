@@ -1,15 +1,148 @@
-"""Small pieces shared by the command-line modules: a count progress line on stderr, a Ctrl-C
-that asks to stop instead of killing, and the entry point that runs one sub-command on its own."""
+"""Pieces shared by the command-line verbs: exit codes, the parser class, argument types, the
+progress lines on stderr, a Ctrl-C that asks to stop instead of killing, how a failed or
+stopped command is reported, and the entry point that runs one verb on its own."""
 
 from __future__ import annotations
 
 import argparse
+import math
 import signal
 import sys
 import threading
 import time
 
+from modescope.core.errors import ModescopeError
 
+#: Exit codes of every verb (README): done, nothing usable, wrong usage, interrupted.
+EXIT_OK, EXIT_UNUSABLE, EXIT_USAGE, EXIT_INTERRUPTED = 0, 1, 2, 130
+
+
+class Parser(argparse.ArgumentParser):
+    """argparse parser that exits with :data:`EXIT_USAGE` and the usage line on a usage error."""
+
+    def error(self, message):  # argparse exits 2 on usage errors; keep that, with a hint
+        self.print_usage(sys.stderr)
+        self.exit(EXIT_USAGE, f"{self.prog}: error: {message}\n")
+
+
+class ProgressLine:
+    """Write progress of an analysis to a stream: one rewritten line on a terminal, a line per
+    ~10% otherwise."""
+
+    def __init__(self, stream=None):
+        self.stream = stream or sys.stderr
+        self.tty = hasattr(self.stream, "isatty") and self.stream.isatty()
+        self.last_stage, self.last_tenth, self.last_time = None, -1, 0.0
+
+    def __call__(self, p) -> None:
+        now = time.perf_counter()
+        frac = p.done / p.total if p.total else 1.0
+        left = "" if p.seconds_left is None else f", about {p.seconds_left:.0f} s left"
+        text = (f"{p.stage:>5}: {p.done}/{p.total} images ({100 * frac:.0f}%), "
+                f"{p.rate:.0f} images/s{left}")
+        if self.tty:
+            if now - self.last_time > 0.1 or p.done == p.total:
+                self.stream.write("\r" + text.ljust(78))
+                if p.done == p.total:
+                    self.stream.write("\n")
+                self.stream.flush()
+                self.last_time = now
+        else:
+            tenth = int(frac * 10)
+            if p.stage != self.last_stage or tenth > self.last_tenth:
+                self.stream.write(text + "\n")
+                self.stream.flush()
+        if p.stage != self.last_stage:
+            self.last_tenth = -1
+        self.last_stage = p.stage
+        self.last_tenth = max(self.last_tenth, int(frac * 10))
+
+
+def positive_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"expected a number of at least 1, got {value}")
+    return value
+
+
+
+def non_negative_int(text: str) -> int:
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"expected a number >= 0, got {value}")
+    return value
+
+
+def level(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not 0.0 < value < 1.0:
+        raise argparse.ArgumentTypeError(f"expected a confidence level strictly between 0 "
+                                         f"and 1, got {text}")
+    return value
+
+
+def tolerance(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not (math.isfinite(value) and value >= 0):
+        raise argparse.ArgumentTypeError(f"expected a finite number >= 0, got {text}")
+    return value
+
+
+def fmt(value: float) -> str:
+    if math.isinf(value):
+        return "inf"
+    return f"{value:.4g}"
+
+
+def label(path: str, page: int) -> str:
+    return f"{path} [page {page}]" if page else path
+
+
+def error(command: str, message: str, code: int) -> int:
+    print(f"modescope {command}: error: {message}", file=sys.stderr)
+    return code
+
+
+def check_rank(command: str, rank, decomposition) -> int | None:
+    if rank is not None and rank > decomposition.rank:
+        print(f"modescope {command}: error: --rank must be at most {decomposition.rank} (the "
+              f"model has {decomposition.rank} basis images), got {rank}", file=sys.stderr)
+        return EXIT_USAGE
+    return None
+
+
+def failed(command: str, exc: BaseException, unusable: str = "", memory_hint: str = "") -> int:
+    """Print why ``modescope COMMAND`` stopped and return its exit code (nothing was written)."""
+    if isinstance(exc, KeyboardInterrupt):
+        print(f"\nmodescope {command}: interrupted; nothing written", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    if isinstance(exc, MemoryError):
+        print(f"modescope {command}: not enough memory{memory_hint}", file=sys.stderr)
+    elif isinstance(exc, ModescopeError):
+        print(f"modescope {command}: {unusable}{exc}", file=sys.stderr)
+    else:
+        print(f"modescope {command}: {exc}", file=sys.stderr)
+    return EXIT_UNUSABLE
+
+
+def print_problems(problems) -> None:
+    if not problems:
+        return
+    print(f"{len(problems)} file(s) skipped:", file=sys.stderr)
+    for p in problems:
+        print(f"  {p}", file=sys.stderr)
 
 
 class CountProgress:

@@ -80,11 +80,11 @@ def test_too_large_downscale_and_memory_errors_are_messages(folder, tmp_path, ca
     err = capsys.readouterr().err
     assert "downscale 20 is too large for the reference size 10x12" in err
     assert "use at most 10" in err and not out.exists()
-    from modescope.core.engine import pipeline
+    from modescope.app.cli import analyze as analyze_verb
 
     def no_memory(*args, **kwargs):
         raise MemoryError
-    monkeypatch.setattr(pipeline, "analyze", no_memory)
+    monkeypatch.setattr(analyze_verb, "analyze", no_memory)
     assert main(["analyze", str(folder), "-o", str(out), "--quiet"]) == 1
     assert "not enough memory" in capsys.readouterr().err
 

@@ -15,7 +15,7 @@ from scipy.sparse import coo_matrix
 from scipy.sparse.csgraph import connected_components
 from scipy.spatial.distance import pdist, squareform
 
-from modescope.app.cli import outliers as cli_outliers
+from modescope.app.cli import duplicates as cli_duplicates
 from modescope.core.decomposition import Decomposition, fix_signs
 from modescope.core.review.duplicates import DuplicateReport, find_duplicates, pair_distance
 
@@ -171,37 +171,37 @@ def test_validation():
 
 def _parser():
     parser = argparse.ArgumentParser(prog="modescope")
-    cli_outliers.register(parser.add_subparsers(dest="command"))
+    cli_duplicates.register(parser.add_subparsers(dest="command"))
     return parser
 
 
 def test_cli_duplicates_prints_groups(monkeypatch, capsys):
     X, planted = collection_with_copies()
     d = make_decomposition(X, 8, paths=[f"/c/{i}.png" for i in range(X.shape[1])])
-    monkeypatch.setattr(cli_outliers, "_load", lambda path: d)
+    monkeypatch.setattr(cli_duplicates, "load_model", lambda path: d)
     args = _parser().parse_args(["duplicates", "m.npz", "--tolerance", "0.02"])
-    assert cli_outliers.run(args) == 0
+    assert cli_duplicates.run(args) == 0
     out = capsys.readouterr().out
     assert "2 groups, 5 images" in out
     assert "group 1: 3 images" in out and "group 2: 2 images" in out
     for i in (5, 60, 61, 10, 62):
         assert f"  [{i}] /c/{i}.png" in out
-    assert out.rstrip().endswith(cli_outliers.DUPLICATE_CAUTION)
+    assert out.rstrip().endswith(cli_duplicates.CAUTION)
 
 
 def test_cli_duplicates_no_groups_and_errors(monkeypatch, capsys):
     rng = np.random.default_rng(0)
     d = make_decomposition(rng.random((30, 20)), 5)
-    monkeypatch.setattr(cli_outliers, "_load", lambda path: d)
-    assert cli_outliers.run(_parser().parse_args(["duplicates", "m.npz"])) == 0
+    monkeypatch.setattr(cli_duplicates, "load_model", lambda path: d)
+    assert cli_duplicates.run(_parser().parse_args(["duplicates", "m.npz"])) == 0
     assert "No near-duplicate groups found." in capsys.readouterr().out
-    assert cli_outliers.run(_parser().parse_args(["duplicates", "m.npz", "--rank", "9"])) == 2
+    assert cli_duplicates.run(_parser().parse_args(["duplicates", "m.npz", "--rank", "9"])) == 2
     assert "--rank must be at most 5" in capsys.readouterr().err
     with pytest.raises(SystemExit) as info:
         _parser().parse_args(["duplicates", "m.npz", "--tolerance", "-1"])
     assert info.value.code == 2
-    monkeypatch.setattr(cli_outliers, "_load", lambda path: d.replace(residual=None))
-    assert cli_outliers.run(_parser().parse_args(["duplicates", "m.npz"])) == 1
+    monkeypatch.setattr(cli_duplicates, "load_model", lambda path: d.replace(residual=None))
+    assert cli_duplicates.run(_parser().parse_args(["duplicates", "m.npz"])) == 1
     assert "no residuals" in capsys.readouterr().err
 
 

@@ -408,7 +408,7 @@ def digits_model(monkeypatch):
     X = np.vstack([digits.data[digits.target == 0][:60], digits.data[digits.target == 1][:3]]).T
     paths = [f"/data/img_{i:03d}.png" for i in range(63)]
     d = make_decomposition(X / 16.0, 20, image_shape=(8, 8, 1), paths=paths)
-    monkeypatch.setattr(cli_outliers, "_load", lambda path: d)
+    monkeypatch.setattr(cli_outliers, "load_model", lambda path: d)
     return d
 
 

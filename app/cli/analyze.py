@@ -1,0 +1,106 @@
+"""``modescope analyze SOURCE... -o MODEL.npz``: stream images through the SVD, write the model."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from pathlib import Path
+
+from modescope.app.cli.common import (EXIT_INTERRUPTED, EXIT_OK, EXIT_UNUSABLE, EXIT_USAGE,
+                                      InterruptFlag, ProgressLine, failed, positive_int,
+                                      print_problems)
+from modescope.app.words import counted
+from modescope.core.errors import ModescopeError
+from modescope.core.output.model_file import save_model
+from modescope.core.engine.pipeline import AnalysisOptions, analyze
+
+__all__ = ["register", "run"]
+
+
+def register(subparsers) -> None:
+    """Add the ``analyze`` verb to an argparse sub-parsers object."""
+    a = subparsers.add_parser("analyze", help="analyse folders/files of images into a model file",
+                                  description="Stream images through a mean-centred truncated SVD and "
+                                              "write the model file.")
+    a.add_argument("sources", nargs="+", metavar="SOURCE", help="folders or image files")
+    a.add_argument("-o", "--output", required=True, metavar="MODEL.npz", help="model file to write")
+    a.add_argument("--rank", type=positive_int, default=20, metavar="K",
+                   help="number of basis images (default 20)")
+    a.add_argument("--color", choices=("gray", "rgb"), default="gray",
+                   help="analyse luma (gray, default) or three channels (rgb)")
+    a.add_argument("--downscale", type=positive_int, default=1, metavar="F",
+                   help="average F x F pixel blocks before analysis (default 1)")
+    a.add_argument("--recursive", action="store_true", help="look into sub-folders")
+    a.add_argument("--resize-mismatched", action="store_true",
+                   help="resize images of another size to the most common size instead of "
+                        "skipping them")
+    a.add_argument("--block-size", type=positive_int, default=128, metavar="B",
+                   help="images per streaming update (default 128)")
+    a.add_argument("--oversample", type=int, default=10, metavar="P",
+                   help="extra internal directions (default 10)")
+    a.add_argument("--no-refine", action="store_true",
+                   help="skip the Rayleigh-Ritz step of the scoring pass")
+    a.add_argument("--workers", type=int, default=0,
+                   help="decoding threads (default 0: chosen from the image size)")
+    a.add_argument("--quiet", action="store_true", help="no progress display")
+    a.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run ``modescope analyze``; return the exit code."""
+    try:
+        options = AnalysisOptions(rank=args.rank, color=args.color, downscale=args.downscale,
+                                  recursive=args.recursive,
+                                  resize_mismatched=args.resize_mismatched,
+                                  block_size=args.block_size, oversample=args.oversample,
+                                  refine=not args.no_refine, workers=args.workers)
+    except (TypeError, ValueError) as exc:
+        print(f"modescope analyze: {exc}", file=sys.stderr)
+        return EXIT_USAGE
+    output = Path(args.output)
+    if output.exists() and output.is_dir():
+        print(f"modescope analyze: {output}: is a folder; give a file name such as "
+              f"{output / 'model.npz'}", file=sys.stderr)
+        return EXIT_USAGE
+    start = time.perf_counter()
+    progress = None if args.quiet else ProgressLine(sys.stderr)
+    stop = InterruptFlag("modescope analyze: stopping after the current block; the images "
+                         "analysed so far will be written (Ctrl-C again to stop at once and "
+                         "write nothing)")
+    try:
+        with stop:
+            result = analyze(args.sources, options, progress=progress, cancel=stop)
+    except (ModescopeError, MemoryError, OSError, KeyboardInterrupt) as exc:
+        return failed("analyze", exc, unusable="nothing usable: ",
+                       memory_hint="; try --downscale 2 (or more) or a smaller --block-size")
+    d = result.decomposition
+    if result.cancelled and d is None:
+        print("modescope analyze: interrupted before any image was analysed; nothing written",
+              file=sys.stderr)
+        return EXIT_INTERRUPTED
+    try:
+        written = save_model(output, d)
+    except ModescopeError as exc:
+        print(f"modescope analyze: {exc}", file=sys.stderr)
+        return EXIT_UNUSABLE
+    if result.cancelled:
+        print(f"modescope analyze: interrupted; wrote the streaming result of the first "
+              f"{counted(d.n_images, 'image')} to {written} (not exact: run `modescope update "
+              f"{written} SOURCE...` to add the rest and get the exact scoring pass)",
+              file=sys.stderr)
+        print_problems(result.problems)
+        return EXIT_INTERRUPTED
+    elapsed = time.perf_counter() - start
+    rows, cols, ch = d.image_shape
+    cum = d.cumulative_energy()
+    if d.rank:
+        captured = f"rank {d.rank} captures {100 * cum[-1]:.1f}% of the energy"
+    else:
+        captured = ("no basis images: the images do not vary (each one equals the mean image"
+                    + (", as a single image always does)" if d.n_images == 1 else ")"))
+    print(f"analysed {counted(d.n_images, 'image')} of {rows}x{cols} "
+          f"({'gray' if ch == 1 else 'rgb'}) in {elapsed:.1f} s; {captured}", file=sys.stderr)
+    print(f"wrote {written}", file=sys.stderr)
+    print_problems(result.problems)
+    return EXIT_OK

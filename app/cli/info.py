@@ -1,0 +1,64 @@
+"""``modescope info MODEL.npz``: summarise a model file."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+from modescope.app.cli.common import EXIT_OK, EXIT_UNUSABLE, positive_int
+from modescope.core.errors import ModescopeError
+from modescope.core.output.model_file import load_model
+from modescope.core.review.rank import energy_rank, gavish_donoho
+
+__all__ = ["register", "run"]
+
+
+def register(subparsers) -> None:
+    """Add the ``info`` verb to an argparse sub-parsers object."""
+    i = subparsers.add_parser("info", help="summarise a model file")
+    i.add_argument("model", metavar="MODEL.npz")
+    i.add_argument("--ranks", type=positive_int, default=10, metavar="N",
+                   help="list the energy captured at the first N ranks (default 10)")
+    i.set_defaults(func=run)
+
+
+def run(args: argparse.Namespace) -> int:
+    """Run ``modescope info``; return the exit code."""
+    try:
+        d = load_model(args.model)
+    except ModescopeError as exc:
+        print(f"modescope info: {exc}", file=sys.stderr)
+        return EXIT_UNUSABLE
+    rows, cols, ch = d.image_shape
+    meta = d.metadata
+    print(f"model:        {args.model}")
+    print(f"images:       {d.n_images}")
+    print(f"image size:   {rows} rows x {cols} cols, {'gray' if ch == 1 else 'rgb'} "
+          f"({d.n_pixels} values per image)")
+    if meta.get("downscale", 1) != 1:
+        src = meta.get("source_size", ["?", "?"])
+        print(f"source size:  {src[0]} x {src[1]} (downscaled by {meta['downscale']})")
+    print(f"rank:         {d.rank}")
+    print(f"state:        {'exact scoring pass done' if d.exact else 'streaming snapshot'}"
+          f"{' (cancelled run)' if meta.get('stage') == 'cancelled' else ''}")
+    if meta.get("created"):
+        print(f"created:      {meta['created']}")
+    print(f"energy:       total {d.total_energy:.6g}")
+    shares, cum = d.energy_shares(), d.cumulative_energy()
+    if not d.rank:
+        print("basis images: none (the images do not vary: each one equals the mean image)")
+    else:
+        print("  rank  singular value   share   cumulative")
+    for r in range(min(args.ranks, d.rank)):
+        print(f"  {r + 1:4d}  {d.singular_values[r]:14.6g}  {100 * shares[r]:6.2f}%  "
+              f"{100 * cum[r]:9.2f}%")
+    if d.rank:
+        print(f"suggested rank: {energy_rank(d, 0.9)} for 90% of the energy", end="")
+        gd = gavish_donoho(d)
+        print(f"; {gd.rank} by the Gavish-Donoho hard threshold" if gd.rank is not None
+              else f"; Gavish-Donoho: not applicable ({gd.note})")
+    problems = meta.get("problems", [])
+    if problems:
+        print(f"skipped files: {len(problems)} (first: {problems[0]['path']}: "
+              f"{problems[0]['reason']})")
+    return EXIT_OK
