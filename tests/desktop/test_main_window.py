@@ -4,7 +4,8 @@ from __future__ import annotations
 
 import dataclasses
 import gc
-import resource
+import importlib
+import sys
 import time
 import weakref
 from importlib import metadata
@@ -17,6 +18,8 @@ from PySide6.QtGui import QDropEvent, QImage
 from PySide6.QtWidgets import QApplication, QMessageBox
 
 import modescope.app.desktop.main_window as main_window_module
+import modescope.app.desktop.window_files as window_files_module
+import modescope.app.desktop.window_status as window_status_module
 from modescope.app.desktop.main_window import (CAUTIONS, MainWindow, memory_in_use,
                                        sample_images_dir)
 from modescope.app.desktop.settings import StoredOptions
@@ -323,10 +326,56 @@ def test_menus(window):
 
 
 def test_memory_in_use_is_plausible():
+    resource = pytest.importorskip("resource")
     used = memory_in_use()
     # the peak resident size from getrusage (kilobytes on Linux) bounds the current one
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024
     assert 10 * 2 ** 20 < used <= peak * 1.05
+
+
+# the window's own modules, imported afresh by the tests that simulate a different platform
+_WINDOW_MODULES = ("modescope.app.desktop.main_window", "modescope.app.desktop.window_status",
+                   "modescope.app.desktop.window_run", "modescope.app.desktop.window_files",
+                   "modescope.app.desktop.window_menus", "modescope.app.desktop.window_docks")
+
+
+def _import_window_afresh(monkeypatch):
+    """Import main_window again as a new start of the program would (restored afterwards)."""
+    for name in _WINDOW_MODULES:
+        monkeypatch.delitem(sys.modules, name, raising=False)
+    return importlib.import_module("modescope.app.desktop.main_window")
+
+
+def test_window_imports_without_the_resource_module(monkeypatch, tmp_path):
+    # Windows has no `resource` module: None in sys.modules makes `import resource` fail
+    monkeypatch.setitem(sys.modules, "resource", None)
+    with pytest.raises(ImportError):
+        importlib.import_module("resource")
+    fresh = _import_window_afresh(monkeypatch)
+    assert fresh is not main_window_module and hasattr(fresh, "MainWindow")
+    # where /proc is readable the figure does not need `resource` at all
+    used = fresh.memory_in_use()
+    assert 10 * 2 ** 20 < used < 2 ** 40
+    # with neither /proc nor `resource` (as on Windows) the figure is 0: unknown
+    status = sys.modules["modescope.app.desktop.window_status"]
+    monkeypatch.setattr(status, "_STATM", str(tmp_path / "no_statm"))
+    assert fresh.memory_in_use() == 0
+
+
+def test_unknown_memory_is_not_shown(window, monkeypatch):
+    assert window.memory_label.text().startswith("Memory ")
+    assert window.memory_label.text().endswith((" MB", " GB"))
+    monkeypatch.setattr(window_status_module, "memory_in_use", lambda: 0)
+    window._update_memory()
+    assert window.memory_label.text() == "" and window.memory_label.isHidden()
+
+
+def test_a_broken_view_import_fails_loudly(monkeypatch):
+    # a view module that cannot be imported stops the window's import with that error,
+    # instead of a placeholder in the dock
+    monkeypatch.setitem(sys.modules, "modescope.app.desktop.views.gallery", None)
+    with pytest.raises(ImportError, match="modescope.app.desktop.views.gallery"):
+        _import_window_afresh(monkeypatch)
 
 
 def test_sample_dir_is_next_to_the_packages():
@@ -337,19 +386,10 @@ def test_sample_dir_is_next_to_the_packages():
 
 
 def test_empty_sample_folder_gives_hint(qtbot, window, tmp_path, monkeypatch):
-    monkeypatch.setattr(main_window_module, "sample_images_dir", lambda: tmp_path)
+    monkeypatch.setattr(window_files_module, "sample_images_dir", lambda: tmp_path)
     assert window.open_sample() is False
     assert "Add a folder" in window.statusBar().currentMessage()
     assert not window.runner.is_running()
-
-
-def test_missing_view_module_gets_placeholder(qtbot, ini_settings, monkeypatch):
-    specs = list(main_window_module.VIEW_SPECS)
-    specs[0] = ("imagesDock", "Images", "modescope.app.no_such_view", "Nothing")
-    monkeypatch.setattr(main_window_module, "VIEW_SPECS", tuple(specs))
-    w = MainWindow(ini_settings)
-    qtbot.addWidget(w)
-    assert "not available" in w.views["imagesDock"].text()
 
 
 # ----- the sources pane ------------------------------------------------------------------------

@@ -1,0 +1,212 @@
+"""The main window's run control: start, refit and cancel an analysis, and show how it goes.
+
+:class:`RunControlMixin` is one part of :class:`~modescope.app.desktop.main_window.MainWindow`.
+The analysis itself runs in the :class:`~modescope.app.desktop.workers.analysis.AnalysisRunner`
+(``self.runner``); this part starts it, turns its signals into the progress line, the state's
+decomposition and status messages, and keeps the Sources pane in step with a run that scans the
+files itself.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from typing import Sequence
+
+from PySide6.QtCore import Slot
+
+from modescope.app.words import counted
+from modescope.app.desktop.settings import StoredOptions
+from modescope.app.desktop.views.sources import make_analysis_options
+from modescope.app.desktop.window_status import format_seconds
+
+__all__ = ["RunControlMixin", "STAGES"]
+
+#: The words of the progress line for the stages of ``pipeline.Progress``.
+STAGES = {"scan": "Reading file headers", "learn": "Learning the basis",
+          "score": "Scoring the images"}
+
+
+class RunControlMixin:
+    """Start, refit, cancel and follow an analysis (a part of ``MainWindow``).
+
+    Uses ``self.state``, ``self.settings``, ``self.ingest``, ``self.inspector``, ``self.runner``,
+    ``self.progress_bar``, ``self.progress_label``, ``self.start_action``,
+    ``self.cancel_action`` and ``self._show_error``; keeps the start time of the run, whether
+    its learning stage has begun, and the (sources, options) of a run that scans for the pane.
+    """
+
+    @Slot()
+    def _start_from_pane(self) -> None:
+        if self.ingest.sources() and not self.runner.is_running():
+            self.start_analysis(self.ingest.sources(), self.ingest.options())
+
+    @Slot(object, object)
+    def start_analysis(self, sources: Sequence[str], options: StoredOptions) -> bool:
+        """Analyse ``sources`` with ``options`` in the worker thread.
+
+        Returns
+        -------
+        bool
+            False (with a message) when the options are not valid.
+        """
+        sources = [os.fspath(s) for s in sources]
+        analysis_options = self._checked_options(bool(sources), options,
+                                                 "Add a folder or image files first.")
+        if analysis_options is None:
+            return False
+        if [os.path.abspath(s) for s in sources] != self.ingest.sources():
+            self.ingest.set_sources(sources)
+        self.settings.set_last_folders(sources)
+        self.settings.set_options(options)
+        # reuse the pane's finished scan of the same sources and options; otherwise stop the
+        # pane's scan so the two do not compete, and let the run's scan fill the pane later
+        scanned = self.ingest.scanned_for(sources, options)
+        if scanned is None:
+            self.ingest.stop_scan(run_scans=True)
+        names = ", ".join(os.path.basename(s.rstrip(os.sep)) or s for s in sources[:2])
+        more = f" and {len(sources) - 2} more" if len(sources) > 2 else ""
+        self._begin_run(scanned if scanned is not None else sources, analysis_options,
+                        f"Modescope — {names}{more}", run_key=(list(sources), options))
+        return True
+
+    def refit_analysis(self, images: Sequence, options: StoredOptions) -> bool:
+        """Analyse again only ``images`` ((path, page) pairs), for instance the images of
+        the current analysis not marked excluded.
+
+        The Sources pane and the remembered folders are left as they are: a refit is a
+        variant of the current collection, not a new one. Pages of multi-page files that are
+        not listed are left out.
+
+        Returns
+        -------
+        bool
+            False (with a message) when there is nothing to analyse or the options are not
+            valid.
+        """
+        pairs = [(os.fspath(p), int(g)) for p, g in images]
+        analysis_options = self._checked_options(bool(pairs), options,
+                                                 "Every image is marked excluded.")
+        if analysis_options is None:
+            return False
+        files = list(dict.fromkeys(p for p, _ in pairs))
+        self.ingest.stop_scan()
+        self._begin_run(files, analysis_options,
+                        f"Modescope — refit of {counted(len(pairs), 'image')}", only=pairs)
+        return True
+
+    def _checked_options(self, anything: bool, options: StoredOptions, empty_hint: str):
+        """Return the AnalysisOptions of ``options``, or None after a message (nothing to
+        analyse, or options not valid)."""
+        if not anything:
+            self._show_error("Nothing to analyse", empty_hint)
+            return None
+        try:
+            return make_analysis_options(options)
+        except (TypeError, ValueError) as exc:
+            self._show_error("Options not valid", str(exc))
+            return None
+
+    def _begin_run(self, sources, analysis_options, title: str, run_key=None,
+                   only=None) -> None:
+        self.current_file = None
+        self.state.set_decomposition(None)
+        self._run_started = time.monotonic()
+        self._run_key = run_key
+        self._first_learn = True
+        self.runner.start(sources, analysis_options, only=only)
+        self.setWindowTitle(title)
+        self.progress_bar.setRange(0, 0)
+        self.progress_label.setText("Starting…")
+        self.progress_bar.show()
+        self.progress_label.show()
+
+    @Slot()
+    def cancel_analysis(self) -> None:
+        """Stop the analysis at the next block; the partial result stays."""
+        if self.runner.is_running():
+            self.runner.cancel()
+            self.progress_label.setText("Stopping…")
+
+    # ----- what the runner reports -------------------------------------------------------------
+    @Slot(bool)
+    def _on_running_changed(self, running: bool) -> None:
+        self.ingest.set_running(running)
+        self.inspector.set_running(running)
+        self.cancel_action.setEnabled(running)
+        self.start_action.setEnabled(not running)
+        if not running:
+            self.progress_bar.hide()
+            self.progress_label.hide()
+
+    @Slot(object)
+    def _on_progress(self, p) -> None:
+        total = max(int(getattr(p, "total", 0)), 0)
+        done = max(int(getattr(p, "done", 0)), 0)
+        stage = STAGES.get(getattr(p, "stage", ""), str(getattr(p, "stage", "")))
+        if self._run_key is not None:
+            if getattr(p, "stage", "") == "scan":
+                self.ingest.show_run_scan(done, total)
+            elif getattr(p, "stage", "") == "learn" and self._first_learn:
+                self._first_learn = False           # the run's own scan is over
+                self.ingest.show_run_found(total)
+        if total:
+            self.progress_bar.setRange(0, total)
+            self.progress_bar.setValue(min(done, total))
+        else:
+            self.progress_bar.setRange(0, 0)
+        parts = [f"{stage}: {done:,} of {total:,}"]
+        rate = float(getattr(p, "rate", 0.0) or 0.0)
+        if rate > 0:
+            parts.append(f"{rate:,.0f} images/s")
+        left = getattr(p, "seconds_left", None)
+        if left is not None:
+            parts.append(f"about {format_seconds(left)} left")
+        self.progress_label.setText(" · ".join(parts))
+
+    @Slot(object)
+    def _on_partial(self, decomposition) -> None:
+        self.state.set_decomposition(decomposition)
+
+    @Slot(object)
+    def _on_finished(self, result) -> None:
+        key = self._run_key
+        if key is not None and self.ingest.scanned_for(*key) is None:
+            self.ingest.adopt(result.source_set, *key)
+        if result.decomposition is not None:
+            self.state.set_decomposition(result.decomposition)
+        self.ingest.set_problems(result.problems)
+        seconds = time.monotonic() - self._run_started
+        n = result.decomposition.n_images if result.decomposition is not None else 0
+        skipped = len(result.problems)
+        self.statusBar().showMessage(
+            f"Analysis finished: {counted(n, 'image')} in {format_seconds(seconds)}"
+            + (f", {skipped} skipped (see Sources)" if skipped else ""), 10000)
+
+    @Slot(object)
+    def _on_cancelled(self, result) -> None:
+        d = None if result is None else result.decomposition
+        key = self._run_key
+        if key is not None and self.ingest.scanned_for(*key) is None:
+            if result is not None and result.source_set.n_images:
+                self.ingest.adopt(result.source_set, *key)   # the scan itself was complete
+            else:
+                self.ingest.run_scan_ended()
+        if result is not None:
+            self.ingest.set_problems(result.problems)
+        if d is not None:
+            self.state.set_decomposition(d)
+            self.statusBar().showMessage(
+                f"Analysis cancelled: the partial result from {counted(d.n_images, 'image')} "
+                "is kept (it can be saved).", 10000)
+        else:
+            self.statusBar().showMessage("Analysis cancelled before any image was analysed.",
+                                         10000)
+
+    @Slot(str)
+    def _on_failed(self, message: str) -> None:
+        key = self._run_key
+        if key is not None and self.ingest.scanned_for(*key) is None:
+            self.ingest.run_scan_ended(f"Not analysed: {message}")
+        self.statusBar().showMessage("The analysis failed.", 10000)
+        self._show_error("The analysis failed", message)
