@@ -167,7 +167,7 @@ def run(args: argparse.Namespace) -> int:
         arguments.
     """
     from modescope.core.output.atomic import DestinationError
-    from modescope.core.output.export import plan_export, run_export
+    from modescope.core.output.export import ExportOptions, plan_export, run_export
     from modescope.core.output.model_file import load_model
 
     err = sys.stderr
@@ -192,15 +192,13 @@ def run(args: argparse.Namespace) -> int:
                   f"{exc.strerror or exc}", file=err)
             return EXIT_FAILED
     try:
-        plan = plan_export(d, out, rank=args.rank, what=args.what,
-                           image_format=args.image_format, quality=args.quality, images=images,
-                           level=args.level, upsample=args.upsample, float16=args.float16,
-                           sheet_count=args.sheet_count, overwrite=args.overwrite,
-                           allow_source_folder=args.allow_source_folder)
-    except DestinationError as exc:
-        print(f"modescope export: {exc}", file=err)
-        return EXIT_FAILED
-    except ModescopeError as exc:
+        options = ExportOptions(
+            rank=args.rank, what=args.what, image_format=args.image_format,
+            quality=args.quality, images=images, level=args.level, upsample=args.upsample,
+            float16=args.float16, sheet_count=args.sheet_count, overwrite=args.overwrite,
+            allow_source_folder=args.allow_source_folder)
+        plan = plan_export(d, out, options)
+    except ModescopeError as exc:       # DestinationError included
         print(f"modescope export: {exc}", file=err)
         return EXIT_FAILED
     except (TypeError, ValueError) as exc:

@@ -25,8 +25,6 @@ metadata            () unicode                  JSON text: options, versions, da
 from __future__ import annotations
 
 import json
-import os
-import tempfile
 import zipfile
 from pathlib import Path
 
@@ -34,6 +32,8 @@ import numpy as np
 
 from modescope.core.decomposition import Decomposition
 from modescope.core.errors import ModelFileError
+from modescope.core.output.atomic import DestinationError, atomic_writer
+from modescope.core.validation import check_instance
 
 __all__ = ["save_model", "load_model", "FORMAT_NAME", "FORMAT_VERSION"]
 
@@ -46,7 +46,8 @@ _FLOATS = (np.float16, np.float32, np.float64)
 
 def save_model(path, decomposition: Decomposition, *, overwrite: bool = True,
                dtype=None) -> Path:
-    """Write an analysis to ``path`` atomically (temporary file in the same folder, then rename).
+    """Write an analysis to ``path`` atomically (temporary file in the same folder, flushed to
+    the disk, then renamed; see :mod:`modescope.core.output.atomic`).
 
     Parameters
     ----------
@@ -71,9 +72,7 @@ def save_model(path, decomposition: Decomposition, *, overwrite: bool = True,
     ModelFileError
         If the destination exists (with ``overwrite=False``) or cannot be written.
     """
-    if not isinstance(decomposition, Decomposition):
-        raise TypeError(f"decomposition must be a Decomposition, got "
-                        f"{type(decomposition).__name__}")
+    check_instance("decomposition", decomposition, Decomposition)
     path = Path(path)
     if path.suffix.lower() != ".npz":
         path = path.with_name(path.name + ".npz")
@@ -103,30 +102,10 @@ def save_model(path, decomposition: Decomposition, *, overwrite: bool = True,
     }
     folder = path.parent if str(path.parent) else Path(".")
     try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-    except OSError as exc:
-        raise ModelFileError(f"{path}: cannot write into {folder} ({exc.strerror})") from None
-    try:
-        with os.fdopen(fd, "wb") as fh:
+        with atomic_writer(path, "wb", overwrite, fsync=True) as fh:
             np.savez(fh, **arrays)
-            fh.flush()
-            os.fsync(fh.fileno())
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)       # like a plain new file, not mkstemp's 0600
-        os.replace(tmp, path)
-    except OSError as exc:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise ModelFileError(f"{path}: could not be written ({exc.strerror or exc})") from None
-    except BaseException:
-        try:
-            os.unlink(tmp)
-        except OSError:
-            pass
-        raise
+    except DestinationError as exc:
+        raise ModelFileError(f"{path}: cannot write into {folder} ({exc})") from exc
     return path
 
 

@@ -1,0 +1,179 @@
+"""Image arrays of an export: rank-k previews (optionally upsampled to the source size), the mean
+image and basis images shown in colour. The desktop gallery draws its tiles with
+:func:`basis_image_rgb` too, so the screen and the exported files agree pixel for pixel."""
+
+from __future__ import annotations
+
+import math
+import numbers
+
+import numpy as np
+from PIL import Image
+
+from modescope.core.decomposition import Decomposition
+from modescope.core.output.colormap import signed_to_rgb
+from modescope.core.output.metrics import quantize
+from modescope.core.validation import check_float, check_instance, check_int
+
+__all__ = ["source_size", "upsample_image", "preview_image", "basis_image_rgb", "mean_image"]
+
+
+def source_size(decomposition: Decomposition) -> tuple[int, int]:
+    """Return the source size ``metadata["source_size"]`` recorded by the analysis.
+
+    Parameters
+    ----------
+    decomposition : Decomposition
+
+    Returns
+    -------
+    (rows, cols) : tuple of int
+
+    Raises
+    ------
+    ValueError
+        If no size is recorded or it is not two positive integers.
+    """
+    size = decomposition.metadata.get("source_size")
+    if (not isinstance(size, (list, tuple)) or len(size) != 2
+            or not all(isinstance(v, numbers.Integral) and not isinstance(v, bool) and v > 0
+                       for v in size)):
+        raise ValueError(f"upsample needs decomposition.metadata['source_size'] = [rows, cols] "
+                         f"(two positive integers), found {size!r}")
+    return int(size[0]), int(size[1])
+
+
+def upsample_image(image, size: tuple[int, int]) -> np.ndarray:
+    """Resize an image to ``size`` with Pillow's bicubic filter, channel by channel, in float.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols, channels)
+        Float values (not clipped).
+    size : (rows, cols)
+        Target size.
+
+    Returns
+    -------
+    ndarray, shape (size[0], size[1], channels), float32
+        Not clipped (bicubic can overshoot slightly).
+
+    Raises
+    ------
+    ValueError
+        If ``image`` does not have three dimensions.
+    """
+    arr = np.asarray(image, dtype=np.float32)
+    if arr.ndim != 3:
+        raise ValueError(f"image must have shape (rows, cols, channels), got {arr.shape}")
+    rows, cols = int(size[0]), int(size[1])
+    if (rows, cols) == arr.shape[:2]:
+        return arr.copy()
+    out = np.empty((rows, cols, arr.shape[2]), dtype=np.float32)
+    for c in range(arr.shape[2]):
+        im = Image.fromarray(np.ascontiguousarray(arr[:, :, c]), mode="F")
+        out[:, :, c] = np.asarray(im.resize((cols, rows), Image.Resampling.BICUBIC))
+    return out
+
+
+def preview_image(decomposition: Decomposition, index: int, rank: int, *,
+                  upsample: bool = False, clip: bool = True) -> np.ndarray:
+    """Return the rank-k reconstruction of one image as an image array.
+
+    Parameters
+    ----------
+    decomposition : Decomposition
+    index : int
+        Image column, 0 <= index < n_images.
+    rank : int
+        Modes used, 0..k.
+    upsample : bool
+        Resize to ``metadata["source_size"]`` (bicubic, before clipping).
+    clip : bool
+        Clip to [0, 1] (default True).
+
+    Returns
+    -------
+    ndarray, shape (rows, cols, channels), float32
+
+    Raises
+    ------
+    TypeError
+        If ``decomposition`` is not a Decomposition.
+    ValueError
+        If ``index`` or ``rank`` is out of range, or ``upsample`` is asked without a recorded
+        source size.
+    """
+    d = check_instance("decomposition", decomposition, Decomposition)
+    img = d.to_image(d.reconstruct(index, rank)).astype(np.float32, copy=False)
+    if upsample:
+        img = upsample_image(img, source_size(d))
+    if clip:
+        img = np.clip(img, 0.0, 1.0)
+    return img
+
+
+def basis_image_rgb(decomposition: Decomposition, index: int,
+                    limit: float | None = None) -> tuple[np.ndarray, float]:
+    """Return basis image ``index`` (0-based) as sRGB colours, and the limit used.
+
+    Gray: the diverging map of :mod:`modescope.core.output.colormap`, ``-limit`` .. 0 ..
+    ``+limit``. RGB: each channel shown as ``0.5 + value / (2 * limit)``, clipped to [0, 1] and
+    quantised ``rint(x * 255)`` (mid-gray 128 is zero). A limit of 0 (a basis image of zeros)
+    gives the middle colour everywhere.
+
+    Parameters
+    ----------
+    decomposition : Decomposition
+    index : int
+        Basis image, ``0 <= index < decomposition.rank``.
+    limit : float, optional
+        Value shown at both ends, >= 0. Default: the largest absolute value of this basis
+        image (over its three channels for RGB).
+
+    Returns
+    -------
+    rgb : ndarray, shape (rows, cols, 3), uint8
+    limit : float
+
+    Raises
+    ------
+    TypeError
+        If ``decomposition`` is not a Decomposition or an argument is not a number.
+    ValueError
+        If ``index`` is out of range or ``limit`` is negative, infinite or NaN.
+    """
+    d = check_instance("decomposition", decomposition, Decomposition)
+    j = check_int("index", index, minimum=0, maximum=d.rank - 1)
+    img = d.to_image(d.basis[:, j]).astype(np.float64)
+    if limit is None:
+        limit = float(np.max(np.abs(img))) if img.size else 0.0
+    else:
+        limit = check_float("limit", limit, low=0.0)
+        if math.isinf(limit):
+            raise ValueError(f"limit must be finite, got {limit}")
+    if img.shape[2] == 1:
+        return signed_to_rgb(img[:, :, 0], limit), limit
+    if limit == 0.0:
+        return np.full(img.shape, 128, dtype=np.uint8), 0.0
+    return quantize(0.5 + img / (2.0 * limit), 8), limit
+
+
+def mean_image(decomposition: Decomposition) -> np.ndarray:
+    """Return the mean image, clipped and quantised to 8 bits.
+
+    Parameters
+    ----------
+    decomposition : Decomposition
+
+    Returns
+    -------
+    ndarray, shape (rows, cols, channels), uint8
+
+    Raises
+    ------
+    TypeError
+        If ``decomposition`` is not a Decomposition.
+    """
+    d = check_instance("decomposition", decomposition, Decomposition)
+    return quantize(d.to_image(d.mean), 8)
