@@ -19,7 +19,8 @@ from modescope.app.desktop.main_window import MainWindow
 from modescope.app.desktop.state import AppState
 from modescope.core.engine import pipeline
 from modescope.core.output.atomic import DestinationError
-from modescope.core.output.export import compression_numbers, plan_export
+from modescope.core.output.export import ExportOptions, plan_export
+from modescope.core.output.metrics import compression_numbers
 from modescope.core.review.outliers import score_table
 
 TIMEOUT = 20000
@@ -86,7 +87,8 @@ def test_previews_weights_spectrum_write_the_planned_files(qtbot, dialog, gray_d
     _tick(dialog, ("previews", "weights", "spectrum"))
     dialog.set_folder(out)
     assert dialog.rank_spin.value() == 3                      # state.rank is the default
-    planned = plan_export(d, out, rank=3, what=("previews", "weights", "spectrum")).files
+    planned = plan_export(d, out, ExportOptions(rank=3, what=("previews", "weights",
+                                                           "spectrum"))).files
     report = _export(qtbot, dialog)
     assert not report.cancelled
     assert set(_listing(out)) == {p.name for p in planned}

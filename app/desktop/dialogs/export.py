@@ -54,8 +54,11 @@ from PySide6.QtWidgets import (
 from modescope.core.output.atomic import DestinationError
 from modescope.core.decomposition import Decomposition
 from modescope.core.errors import ModescopeError
-from modescope.core.output.export import (FORMATS, ExportPlan, ExportReport, compression_numbers,
-                                   plan_export, run_export, select_images)
+from modescope.core.output.encode import FORMATS
+from modescope.core.output.export import (ExportOptions, ExportPlan, ExportReport, plan_export,
+                                          run_export)
+from modescope.core.output.metrics import compression_numbers
+from modescope.core.output.naming import select_images
 
 from modescope.app.desktop.settings import Settings
 from modescope.app.desktop.state import AppState, initial_rank
@@ -750,7 +753,7 @@ class ExportDialog(QDialog):
                                        f"{exc.strerror or exc}", path=path) from exc
             created = True
         try:
-            return plan_export(d, path, **options)
+            return plan_export(d, path, ExportOptions(**options))
         except BaseException:
             if created:
                 try:
