@@ -33,7 +33,6 @@ class ThrottledRedraw:
     def _timed_redraw(self, draw) -> None:
         """Run ``draw()`` and stretch the interval to 3x its duration (100 ms to 1 s), so that a
         slow redraw (many points) leaves the GUI time to respond between two of them."""
-        self.redraw_count += 1
         t0 = time.perf_counter()
         try:
             draw()

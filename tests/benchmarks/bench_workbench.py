@@ -131,7 +131,7 @@ def first_partial(n_images: int, workdir: Path):
         while time.perf_counter() - t0 < 120:
             app.processEvents()
             d = window.state.decomposition
-            if first is None and d is not None and gallery.redraw_count > 0 and \
+            if first is None and d is not None and \
                     gallery.model.rowCount() > 1:
                 first = time.perf_counter() - t0
                 n_first = d.n_images

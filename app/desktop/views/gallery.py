@@ -99,7 +99,6 @@ class BasisModel(QAbstractListModel):
         self._limits: dict[int, float] = {}
         self._icons: OrderedDict[tuple[int, int], QIcon] = OrderedDict()
         self._rank = 0
-        self.renders = 0  # icons rendered (for tests and tuning)
 
     # ----- contents ------------------------------------------------------------------------
     @property
@@ -217,7 +216,6 @@ class BasisModel(QAbstractListModel):
         # the same picture when selected: no highlight tint over the values
         icon.addPixmap(picture, QIcon.Mode.Normal)
         icon.addPixmap(picture, QIcon.Mode.Selected)
-        self.renders += 1
         self._icons[key] = icon
         while len(self._icons) > self.cache_size:
             self._icons.popitem(last=False)
@@ -332,7 +330,6 @@ class BasisGallery(ThrottledRedraw, QWidget):
         if not isinstance(state, AppState):
             raise TypeError(f"state must be an AppState, got {type(state).__name__}")
         self.state = state
-        self.redraw_count = 0
         self._syncing = False
 
         self.model = BasisModel(icon_size=icon_size, parent=self)
@@ -380,7 +377,6 @@ class BasisGallery(ThrottledRedraw, QWidget):
     # ----- state -> view ---------------------------------------------------------------------
     @Slot()
     def _redraw(self) -> None:
-        self.redraw_count += 1
         d = self.state.decomposition
         self._syncing = True
         try:

@@ -241,7 +241,6 @@ class ImageListView(ThrottledRedraw, QWidget):
         if not isinstance(state, AppState):
             raise TypeError(f"state must be an AppState, got {type(state).__name__}")
         self.state = state
-        self.redraw_count = 0
         self._syncing = False
         self._shown: set[int] = set()  # image rows last shown selected by the state
 
@@ -341,7 +340,6 @@ class ImageListView(ThrottledRedraw, QWidget):
     # ----- state -> view ---------------------------------------------------------------------
     @Slot()
     def _redraw(self) -> None:
-        self.redraw_count += 1
         self._syncing = True
         try:
             self.model.set_decomposition(self.state.decomposition, self.state.rank)

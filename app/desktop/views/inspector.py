@@ -293,7 +293,6 @@ class Inspector(QWidget):
         self.reconstruction_array: np.ndarray | None = None
         self.residual_array: np.ndarray | None = None
         self.source_note = ""
-        self.repaint_count = 0
         self._build()
         self._rank_timer = QTimer(self)
         self._rank_timer.setSingleShot(True)
@@ -431,7 +430,6 @@ class Inspector(QWidget):
     @Slot()
     def refresh(self) -> None:
         """Redraw from the state."""
-        self.repaint_count += 1
         d = self._state.decomposition
         index = self._state.selected
         self._sync_slider(d)

@@ -75,13 +75,27 @@ class SpectrumView(ThrottledRedraw, QWidget):
         if not isinstance(state, AppState):
             raise TypeError(f"state must be an AppState, got {type(state).__name__}")
         self.state = state
-        self.redraw_count = 0
         self._syncing = False
         self._pending_rank: int | None = None
         self.energy_suggestion: int | None = None
         self.gd_suggestion = None  # core.rank.RankSuggestion
 
-        # ----- controls ---------------------------------------------------------------------
+        rows = self._build_controls()
+        self._build_plots()
+        self._build_curves()
+        self._build_rank_lines()
+        self._build_suggestion_lines()
+        self._build_layout(rows)
+        self._init_redraw_timer()
+        self._build_drag_timer()
+        self._wire()
+
+        if state.decomposition is not None:
+            self._redraw()
+
+    # ----- construction ------------------------------------------------------------------------
+    def _build_controls(self) -> tuple[QHBoxLayout, QHBoxLayout]:
+        """The summary line, and the energy threshold with both suggested ranks."""
         self.summary = QLabel("No analysis yet.", self)
         self.threshold = QDoubleSpinBox(self)
         self.threshold.setRange(1.0, 100.0)
@@ -112,8 +126,10 @@ class SpectrumView(ThrottledRedraw, QWidget):
         row2.addWidget(self.gd_label)
         row2.addWidget(self.use_gd)
         row2.addStretch(1)
+        return row1, row2
 
-        # ----- plots ------------------------------------------------------------------------
+    def _build_plots(self) -> None:
+        """Singular values (log) above cumulative energy, sharing the mode axis."""
         self.plots = pg.GraphicsLayoutWidget(self)
         self.plots.setBackground("w")
         self.sv_plot = self.plots.addPlot(row=0, col=0)
@@ -138,6 +154,7 @@ class SpectrumView(ThrottledRedraw, QWidget):
         self.plots.ci.layout.setRowStretchFactor(0, 3)
         self.plots.ci.layout.setRowStretchFactor(1, 2)
 
+    def _build_curves(self) -> None:
         self.singular_curve = self.sv_plot.plot(
             [], [], pen=pg.mkPen(QColor(50, 50, 50), width=1.5), symbol="o", symbolSize=5,
             symbolBrush=QColor(50, 50, 50), symbolPen=None, name="singular value")
@@ -145,6 +162,8 @@ class SpectrumView(ThrottledRedraw, QWidget):
             [], [], pen=pg.mkPen(_ENERGY_COLOUR, width=2), symbol="o", symbolSize=4,
             symbolBrush=_ENERGY_COLOUR, symbolPen=None, name="cumulative energy")
 
+    def _build_rank_lines(self) -> None:
+        """The draggable rank line, once in each plot."""
         label_opts = dict(position=0.92, color=_RANK_COLOUR, fill=pg.mkBrush(255, 255, 255, 220),
                           movable=False)
         self.rank_lines = (
@@ -160,6 +179,8 @@ class SpectrumView(ThrottledRedraw, QWidget):
             line.setToolTip("Current rank r: drag to change it (snaps to whole numbers).")
             line.setZValue(20)
 
+    def _build_suggestion_lines(self) -> None:
+        """The energy-threshold and optimal-hard-threshold marks (hidden until known)."""
         dash, dot = Qt.PenStyle.DashLine, Qt.PenStyle.DotLine
         white = pg.mkBrush(255, 255, 255, 220)
         self.energy_line = pg.InfiniteLine(
@@ -182,35 +203,34 @@ class SpectrumView(ThrottledRedraw, QWidget):
         for item in (self.energy_line, self.threshold_line, self.gd_line, self.gd_tau_line):
             item.setVisible(False)
 
+    def _build_layout(self, rows: tuple[QHBoxLayout, QHBoxLayout]) -> None:
         lay = QVBoxLayout(self)
         lay.setContentsMargins(4, 4, 4, 4)
-        lay.addLayout(row1)
-        lay.addLayout(row2)
+        for row in rows:
+            lay.addLayout(row)
         lay.addWidget(self.plots, 1)
 
-        self._init_redraw_timer()
+    def _build_drag_timer(self) -> None:
+        """A rank line drag writes the rank at most every DRAG_MS."""
         self._drag_timer = QTimer(self)
         self._drag_timer.setSingleShot(True)
         self._drag_timer.setInterval(self.DRAG_MS)
-        self._drag_timer.timeout.connect(self._push_rank)
 
-        # all connections in one place
-        state.decompositionChanged.connect(self._schedule)
-        state.rankChanged.connect(self._on_rank)
+    def _wire(self) -> None:
+        """Every connection of the view, in one place."""
+        self.state.decompositionChanged.connect(self._schedule)
+        self.state.rankChanged.connect(self._on_rank)
         for line in self.rank_lines:
             line.sigPositionChanged.connect(self._on_line_moved)
             line.sigPositionChangeFinished.connect(self._on_line_finished)
+        self._drag_timer.timeout.connect(self._push_rank)
         self.threshold.valueChanged.connect(self._update_suggestions)
         self.use_energy.clicked.connect(self._use_energy)
         self.use_gd.clicked.connect(self._use_gd)
 
-        if state.decomposition is not None:
-            self._redraw()
-
     # ----- state -> view ---------------------------------------------------------------------
     @Slot()
     def _redraw(self) -> None:
-        self.redraw_count += 1
         d = self.state.decomposition
         if d is None or d.rank == 0:
             self.singular_curve.setData([], [])

@@ -16,10 +16,9 @@ Images are numbered from 1 for display; ``state.selected`` stays 0-based.
 
 from __future__ import annotations
 
-
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import QRectF, Qt, QTimer, Signal, Slot
+from PySide6.QtCore import QRectF, QSignalBlocker, Qt, QTimer, Signal, Slot
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QComboBox, QGraphicsRectItem, QHBoxLayout, QLabel, QSplitter,
                                QVBoxLayout, QWidget)
@@ -37,6 +36,7 @@ _N_COLOURS = 64
 _A_COLOUR = QColor(40, 120, 190)
 _B_COLOUR = QColor(220, 120, 30)
 _SEL_COLOUR = QColor(220, 30, 60)
+_ZERO_PEN = pg.mkPen(QColor(150, 150, 150), width=1)
 
 
 class _BoxSelectViewBox(pg.ViewBox):
@@ -110,24 +110,39 @@ class WeightsView(ThrottledRedraw, QWidget):
         if not isinstance(state, AppState):
             raise TypeError(f"state must be an AppState, got {type(state).__name__}")
         self.state = state
-        self.redraw_count = 0
         self._syncing = False
         self._k = -1
         self._pending_selected: int | None = None
         self.colour_values = np.zeros(0)
         self.colour_meaning = "image number"
 
+        self._build_brushes()
+        top = self._build_controls()
+        self._build_plane()
+        self._build_bars()
+        self._build_sequence()
+        self._build_layout(top)
+        self._init_redraw_timer()
+        self._build_drag_timer()
+        self._wire()
+
+        if state.decomposition is not None:
+            self._redraw()
+
+    # ----- construction ------------------------------------------------------------------------
+    def _build_brushes(self) -> None:
+        """Point colours (a viridis table) and the bar colours (plain, mode a, mode b)."""
         cmap = pg.colormap.get("viridis")
         self._cmap = cmap
         lut = cmap.getLookupTable(0.0, 1.0, _N_COLOURS, alpha=False, mode="byte")
         self._brushes = np.empty(_N_COLOURS, dtype=object)
         for i, (r, g, b) in enumerate(lut):
             self._brushes[i] = pg.mkBrush(int(r), int(g), int(b), 230)
-
         self._bar_brushes = (pg.mkBrush(140, 140, 140), pg.mkBrush(_A_COLOUR),
                              pg.mkBrush(_B_COLOUR))
 
-        # ----- controls ---------------------------------------------------------------------
+    def _build_controls(self) -> QHBoxLayout:
+        """The two mode choices of the weights plane and the summary line."""
         self.combo_a = QComboBox(self)
         self.combo_b = QComboBox(self)
         self.combo_a.setToolTip("Basis image on the horizontal axis of the weights plane.")
@@ -143,8 +158,10 @@ class WeightsView(ThrottledRedraw, QWidget):
         top.addWidget(self.combo_b)
         top.addSpacing(12)
         top.addWidget(self.info, 1)
+        return top
 
-        # ----- the weights plane ------------------------------------------------------------
+    def _build_plane(self) -> None:
+        """The weights plane: points, selection rings, zero lines and the colour bar."""
         self.plane_widget = pg.GraphicsLayoutWidget(self)
         self.plane_widget.setBackground("w")
         self.plane_vb = _BoxSelectViewBox()
@@ -159,11 +176,10 @@ class WeightsView(ThrottledRedraw, QWidget):
                                            brush=None, symbol="o")
         self.plane.addItem(self.set_marks)
         self.plane.addItem(self.sel_mark)
-        zero = pg.mkPen(QColor(150, 150, 150), width=1)
-        self.plane.addItem(pg.InfiniteLine(0, angle=90, pen=zero), ignoreBounds=True)
-        self.plane.addItem(pg.InfiniteLine(0, angle=0, pen=zero), ignoreBounds=True)
-        self.colour_bar = pg.ColorBarItem(values=(0, 1), colorMap=cmap, label="image number",
-                                          interactive=False, width=14)
+        self.plane.addItem(pg.InfiniteLine(0, angle=90, pen=_ZERO_PEN), ignoreBounds=True)
+        self.plane.addItem(pg.InfiniteLine(0, angle=0, pen=_ZERO_PEN), ignoreBounds=True)
+        self.colour_bar = pg.ColorBarItem(values=(0, 1), colorMap=self._cmap,
+                                          label="image number", interactive=False, width=14)
         self.plane_widget.addItem(self.colour_bar, row=0, col=1)
         for ax in ("left", "right"):
             self.colour_bar.getAxis(ax).setTextPen(pg.mkColor(40, 40, 40))
@@ -171,7 +187,8 @@ class WeightsView(ThrottledRedraw, QWidget):
                            "a box to select every image inside it. Drag to pan, wheel to zoom.")
         self.plane_widget.setToolTip(self._plane_tip)
 
-        # ----- weights of the selected image --------------------------------------------------
+    def _build_bars(self) -> None:
+        """The selected image's weights on each basis image."""
         self.bars_widget = pg.PlotWidget(self, background="w")
         self.bars_plot = self.bars_widget.getPlotItem()
         _style(self.bars_plot)
@@ -181,11 +198,12 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.bars = pg.BarGraphItem(x=np.zeros(0), height=np.zeros(0), width=0.75,
                                     brush=QColor(120, 120, 120), pen=None)
         self.bars_plot.addItem(self.bars)
-        self.bars_plot.addItem(pg.InfiniteLine(0, angle=0, pen=zero), ignoreBounds=True)
+        self.bars_plot.addItem(pg.InfiniteLine(0, angle=0, pen=_ZERO_PEN), ignoreBounds=True)
         self.bars_widget.setToolTip("Weights of the selected image on each basis image (the two "
                                     "modes of the weights plane in colour).")
 
-        # ----- weights against image number ---------------------------------------------------
+    def _build_sequence(self) -> None:
+        """Weights of the two plane modes against image number, with the selection line."""
         self.seq_widget = pg.PlotWidget(self, background="w")
         self.seq_plot = self.seq_widget.getPlotItem()
         _style(self.seq_plot)
@@ -202,6 +220,8 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.seq_widget.setToolTip("Weights of the two chosen basis images against image number. "
                                    "Click or drag the red line to select the nearest image.")
 
+    def _build_layout(self, top: QHBoxLayout) -> None:
+        """The plane left; the bars above the sequence plot right."""
         right = QSplitter(Qt.Orientation.Vertical, self)
         right.addWidget(self.bars_widget)
         right.addWidget(self.seq_widget)
@@ -216,13 +236,15 @@ class WeightsView(ThrottledRedraw, QWidget):
         lay.addLayout(top)
         lay.addWidget(self.splitter, 1)
 
-        self._init_redraw_timer()
+    def _build_drag_timer(self) -> None:
+        """A drag of the sequence line selects an image at most every DRAG_MS."""
         self._drag_timer = QTimer(self)
         self._drag_timer.setSingleShot(True)
         self._drag_timer.setInterval(self.DRAG_MS)
-        self._drag_timer.timeout.connect(self._push_selected)
 
-        # all connections in one place
+    def _wire(self) -> None:
+        """Every connection of the view, in one place."""
+        state = self.state
         state.decompositionChanged.connect(self._schedule)
         state.rankChanged.connect(self._schedule)
         state.modesChanged.connect(self._on_modes)
@@ -235,9 +257,7 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.seq_widget.scene().sigMouseClicked.connect(self._on_seq_scene_click)
         self.seq_line.sigPositionChanged.connect(self._on_seq_line_moved)
         self.seq_line.sigPositionChangeFinished.connect(self._on_seq_line_finished)
-
-        if state.decomposition is not None:
-            self._redraw()
+        self._drag_timer.timeout.connect(self._push_selected)
 
     # ----- helpers ------------------------------------------------------------------------
     def _modes(self, d: Decomposition) -> tuple[int, int]:
@@ -264,9 +284,8 @@ class WeightsView(ThrottledRedraw, QWidget):
             self.seq_b.setData([], [])
             self.info.setText("No analysis yet." if d is None or not d.n_images else NO_VARIATION)
             for combo in (self.combo_a, self.combo_b):
-                combo.blockSignals(True)
-                combo.clear()
-                combo.blockSignals(False)
+                with QSignalBlocker(combo):
+                    combo.clear()
             self._update_selected()
             self._update_set_marks()
             return
@@ -317,8 +336,7 @@ class WeightsView(ThrottledRedraw, QWidget):
         self._syncing = True
         try:
             for combo, want in ((self.combo_a, a), (self.combo_b, b)):
-                combo.blockSignals(True)
-                try:
+                with QSignalBlocker(combo):
                     if combo.count() != d.rank:
                         combo.clear()
                         combo.addItems(texts)
@@ -327,8 +345,6 @@ class WeightsView(ThrottledRedraw, QWidget):
                             if combo.itemText(j) != t:
                                 combo.setItemText(j, t)
                     combo.setCurrentIndex(want)
-                finally:
-                    combo.blockSignals(False)
         finally:
             self._syncing = False
 
