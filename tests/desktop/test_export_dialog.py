@@ -12,8 +12,9 @@ import pytest
 from PIL import Image
 from PySide6.QtCore import Qt
 from PySide6.QtGui import QKeySequence
+from PySide6.QtWidgets import QApplication
 
-import modescope.app.desktop.dialogs.export as export_dialog_module
+import modescope.app.desktop.dialogs.export_job as export_job_module
 from modescope.app.desktop.dialogs.export import ExportDialog
 from modescope.app.desktop.main_window import MainWindow
 from modescope.app.desktop.state import AppState
@@ -66,6 +67,13 @@ def _size(path):
 
 def _listing(folder):
     return sorted(p.name for p in folder.iterdir())
+
+
+def _assert_no_work_left(qtbot, dialog):
+    """The export's pool thread has left the job and no job of the dialog is still running."""
+    qtbot.waitUntil(lambda: not dialog.runner.is_busy()
+                    and dialog.runner.pool.activeThreadCount() == 0, timeout=5000)
+    assert not dialog.is_running()
 
 
 @pytest.fixture
@@ -267,7 +275,7 @@ def test_failures_show_a_message_not_a_traceback(qtbot, dialog, out, monkeypatch
     def boom(plan, progress=None, cancel=None):
         raise RuntimeError("the disk caught fire")
 
-    monkeypatch.setattr(export_dialog_module, "run_export", boom)
+    monkeypatch.setattr(export_job_module, "run_export", boom)
     _tick(dialog, ("spectrum",))
     dialog.set_folder(out)
     with qtbot.waitSignal(dialog.exportFailed, timeout=TIMEOUT) as blocker:
@@ -276,15 +284,20 @@ def test_failures_show_a_message_not_a_traceback(qtbot, dialog, out, monkeypatch
     assert "the disk caught fire" in dialog.message_text()
     assert "Traceback" not in dialog.message_text()
     assert not dialog.is_running() and dialog.export_button.isEnabled()
+    assert dialog.message_label.isVisible() and not dialog.progress_bar.isVisible()
+    assert dialog.last_report is None
+    _assert_no_work_left(qtbot, dialog)
 
     def full(plan, progress=None, cancel=None):
         raise DestinationError(f"cannot write {out / 'spectrum.csv'}: no space left on device")
 
-    monkeypatch.setattr(export_dialog_module, "run_export", full)
+    monkeypatch.setattr(export_job_module, "run_export", full)
     with qtbot.waitSignal(dialog.exportFailed, timeout=TIMEOUT):
         assert dialog.start_export()
     assert "no space left on device" in dialog.message_text()
     assert "spectrum.csv" in dialog.message_text()
+    assert not dialog.message_text().startswith("The export stopped on an unexpected error")
+    _assert_no_work_left(qtbot, dialog)
 
 
 # ----- stopping and threads -------------------------------------------------------------------
@@ -294,7 +307,8 @@ def test_cancel_after_the_first_file_keeps_it(qtbot, dialog, out):
     seen = []
 
     def on_started(worker):
-        def on_progress(done, total):            # runs in the worker thread, synchronously
+        def on_progress(counts):                 # runs in the worker thread, synchronously
+            done, total = counts
             seen.append((done, total, threading.get_ident()))
             if done == 1:
                 worker.cancel()
@@ -309,6 +323,7 @@ def test_cancel_after_the_first_file_keeps_it(qtbot, dialog, out):
     assert report.skipped == plan.files[1:]
     assert [s[:2] for s in seen] == [(0, 10), (1, 10)]
     assert "Stopped: 1 of 10 files" in dialog.message_text()
+    _assert_no_work_left(qtbot, dialog)
 
 
 def test_export_runs_off_the_gui_thread(qtbot, dialog, out):
@@ -317,13 +332,16 @@ def test_export_runs_off_the_gui_thread(qtbot, dialog, out):
     dialog.set_folder(out)
     writers = []
     dialog.exportStarted.connect(lambda w: w.progress.connect(
-        lambda done, total: writers.append(threading.get_ident()),
+        lambda counts: writers.append(threading.get_ident()),
         Qt.ConnectionType.DirectConnection))
     _export(qtbot, dialog)
     worker = dialog.worker
     assert worker.thread_ident is not None and worker.thread_ident != gui
     assert writers and set(writers) == {worker.thread_ident}
     assert dialog.progress_bar.value() == 2 and dialog.progress_bar.maximum() == 2
+    # the job's signals stayed in the GUI thread: nothing was moved from the pool thread
+    assert worker.signals.thread() is QApplication.instance().thread()
+    _assert_no_work_left(qtbot, dialog)
 
 
 def _hold_after_first_file(dialog):
@@ -331,8 +349,8 @@ def _hold_after_first_file(dialog):
     reached = threading.Event()
 
     def on_started(worker):
-        def on_progress(done, total):
-            if done == 1:
+        def on_progress(counts):
+            if counts[0] == 1:
                 reached.set()
                 end = time.monotonic() + 10
                 while not worker.is_cancel_requested() and time.monotonic() < end:
@@ -357,6 +375,7 @@ def test_stop_button_stops_after_the_current_file(qtbot, dialog, out):
     assert report.cancelled and report.n_written == 1
     assert _listing(out) == ["spectrum.csv"]
     assert not dialog.is_running() and dialog.export_button.isEnabled()
+    _assert_no_work_left(qtbot, dialog)
 
 
 def test_closing_during_an_export_stops_and_waits(qtbot, dialog, out):
@@ -371,6 +390,39 @@ def test_closing_during_an_export_stops_and_waits(qtbot, dialog, out):
     assert not dialog.isVisible()
     assert dialog.last_report is not None and dialog.last_report.cancelled
     assert _listing(out) == ["spectrum.csv"]
+    _assert_no_work_left(qtbot, dialog)
+
+
+def test_stopped_before_it_began_writes_nothing(qtbot, dialog, out):
+    _tick(dialog, ("previews", "spectrum"))
+    dialog.set_folder(out)
+    dialog.exportStarted.connect(lambda job: job.cancel())   # before the pool runs it
+    finished = []
+    dialog.exportFinished.connect(finished.append)
+    assert dialog.start_export()
+    qtbot.waitUntil(lambda: not dialog.is_running(), timeout=TIMEOUT)
+    assert dialog.message_text() == "Stopped: 0 of 9 files were written and are complete."
+    assert finished == [] and dialog.last_report is None
+    assert _listing(out) == []
+    assert dialog.export_button.isEnabled()
+    _assert_no_work_left(qtbot, dialog)
+
+
+def test_window_close_stops_a_running_export(qtbot, ini_settings, gray_decomposition, out):
+    w = MainWindow(ini_settings, confirm_dialogs=False)
+    qtbot.addWidget(w)
+    w.state.set_decomposition(gray_decomposition)
+    w.show_export_dialog()
+    dialog = w.export_dialog
+    _tick(dialog, ("previews", "spectrum"))
+    dialog.set_folder(out)
+    reached = _hold_after_first_file(dialog)
+    assert dialog.start_export()
+    qtbot.waitUntil(reached.is_set, timeout=TIMEOUT)
+    w.close()
+    assert dialog.worker.is_done() and not dialog.is_running()
+    assert dialog.last_report.cancelled and dialog.last_report.n_written == 1
+    _assert_no_work_left(qtbot, dialog)
 
 
 # ----- the live lines and the enabled state ---------------------------------------------------
