@@ -266,14 +266,13 @@ def test_window_and_worker_freed_after_close(qtbot, ini_settings, small_collecti
     qtbot.waitExposed(w)
     with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT):
         w.start_analysis([str(small_collection)], StoredOptions(rank=3))
-    thread = w.runner.worker_thread
-    assert thread.isRunning()
+    pool = w.runner.pool
     refs = [weakref.ref(w), weakref.ref(w.runner.worker), weakref.ref(w.inspector),
             weakref.ref(w.state)]
     w.close()
-    assert not thread.isRunning()
-    assert w.runner.worker_thread is None
-    del w, thread
+    assert pool.activeThreadCount() == 0
+    assert not w.runner.is_running()
+    del w, pool
     for _ in range(3):
         gc.collect()
         QApplication.processEvents()
@@ -293,11 +292,11 @@ def test_close_during_run_stops_thread(qtbot, ini_settings, small_collection):
     w.runner._interval = 0.0
     with qtbot.waitSignal(w.runner.partial, timeout=TIMEOUT):
         w.start_analysis([str(small_collection)], StoredOptions(rank=3))
-    thread = w.runner.worker_thread
+    pool = w.runner.pool
     started = time.monotonic()
     w.close()
     assert time.monotonic() - started < 5.0
-    assert not thread.isRunning()
+    assert pool.activeThreadCount() == 0
 
 
 def test_about_shows_version_and_cautions(qtbot, window):

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import gc
+import logging
 import threading
 import time
 import weakref
@@ -73,9 +74,10 @@ def test_signals_arrive_in_gui_thread(qtbot, runner, small_collection):
 
     runner.progress.connect(note)
     with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
-        runner.start([str(small_collection)], pipeline.AnalysisOptions(rank=3, block_size=16))
+        worker = runner.start([str(small_collection)],
+                              pipeline.AnalysisOptions(rank=3, block_size=16))
     assert seen and all(seen)
-    assert runner.worker_thread.isRunning()       # the thread waits for the next run
+    assert worker.thread_ident not in (None, threading.main_thread().ident)   # a pool thread
 
 
 def test_broken_source_fails_with_file_named(qtbot, runner, broken_folder):
@@ -164,17 +166,36 @@ def test_partials_throttled_and_last_one_sent(qtbot):
 def test_unexpected_error_becomes_a_message(qtbot, caplog):
     worker = AnalysisWorker(["x"], None,
                             analyze=_fake_analyze_factory(1, raise_exc=RuntimeError("boom")))
+    messages, partials = [], []
+    worker.failed.connect(messages.append)
+    worker.partial.connect(partials.append)
+    with caplog.at_level(logging.ERROR):
+        worker.run()
+    assert messages == ["The analysis stopped on an unexpected error (RuntimeError: boom; "
+                        "details in the log)"]
+    # the traceback is in the log
+    [record] = caplog.records
+    assert record.exc_info[0] is RuntimeError
+    assert partials == [("snapshot", 0)]          # a failed run sends no pending snapshot
+
+
+def test_expected_error_is_not_logged(qtbot, caplog):
+    worker = AnalysisWorker(["x"], None, analyze=_fake_analyze_factory(
+        1, raise_exc=SourceError("/data/f.png: cannot be decoded")))
     messages = []
     worker.failed.connect(messages.append)
-    worker.run()
-    assert messages == ["The analysis stopped on an unexpected error (RuntimeError: boom)"]
+    with caplog.at_level(logging.ERROR):
+        worker.run()
+    assert messages == ["/data/f.png: cannot be decoded"]
+    assert not caplog.records
 
 
 @pytest.mark.parametrize("exc, expected", [
     (SourceError("/data/f.png: the source file is missing"), "/data/f.png: the source file"),
     (NoUsableImagesError("no usable image in '/data'"), "no usable image in '/data'"),
     (FileNotFoundError(2, "No such file or directory", "/data/g.png"), "/data/g.png"),
-    (MemoryError(), "not enough memory"),
+    (MemoryError(), "not enough memory for this analysis"),
+    (RuntimeError("bug"), "unexpected error (RuntimeError: bug; details in the log)"),
 ])
 def test_error_messages_name_the_file(exc, expected):
     text = error_message(exc)
@@ -203,14 +224,14 @@ def test_runner_and_worker_freed_after_shutdown(qtbot, small_collection):
     r = AnalysisRunner()
     with qtbot.waitSignal(r.finished, timeout=TIMEOUT):
         worker = r.start([str(small_collection)], pipeline.AnalysisOptions(rank=2))
-    thread = r.worker_thread
+    pool = r.pool
     worker_ref = weakref.ref(worker)
     runner_ref = weakref.ref(r)
     del worker
     assert r.shutdown(10000)
-    assert not thread.isRunning()
-    assert r.worker_thread is None
-    del r, thread
+    assert pool.activeThreadCount() == 0
+    assert not r.is_running()
+    del r, pool
     gc.collect()
     qtbot.wait(10)
     gc.collect()
@@ -229,10 +250,10 @@ def test_analysis_runs_off_the_gui_thread(qtbot, runner):
     with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
         worker = runner.start(["x"], None)
     assert where == [False]
-    # the finished worker stays in the worker thread (no moveToThread from there: see
-    # AnalysisWorker._emit_end); the runner keeps it until the thread has moved on
-    assert worker.thread() is runner.worker_thread
+    # the worker never moves between threads (no moveToThread from the pool thread: see
+    # workers/background.py); it is only a job the pool thread ran
     assert worker.is_done() and worker.has_started()
+    assert runner.wait(TIMEOUT) and worker.has_returned()
 
 
 def test_scan_progress_is_thinned_but_ends_complete(qtbot):
@@ -255,23 +276,40 @@ def test_scan_progress_is_thinned_but_ends_complete(qtbot):
     assert [p.stage for p in seen][-1] == "learn"     # other stages pass unchanged
 
 
-def test_finished_workers_are_kept_until_the_thread_moved_on(qtbot, runner):
-    # a finished worker is deleted only once the worker thread has started a newer one (it
-    # may still be finishing the event that ran the old one) or has stopped
+def test_finished_workers_are_let_go(qtbot, runner):
+    # a finished worker is let go once the pool thread has left it (here: the pool is idle)
     def fake(sources, options, *, progress, cancel, on_partial):
         return SimpleNamespace(decomposition=None, cancelled=False, problems=())
 
     runner._analyze = fake
-    with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
-        first = runner.start(["x"], None)
-    first_ref = weakref.ref(first)
-    del first
-    with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
-        second = runner.start(["y"], None)
-    assert second.has_started() and second.is_done()
-    # the first worker was let go when the second had started
-    with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
-        runner.start(["z"], None)
+    refs = []
+    for sources in (["x"], ["y"], ["z"]):
+        with qtbot.waitSignal(runner.finished, timeout=TIMEOUT):
+            refs.append(weakref.ref(runner.start(sources, None)))
+    assert runner.wait(TIMEOUT)
     gc.collect()
-    assert first_ref() is None
-    assert second not in runner._old_workers     # and the second once the third had started
+    assert [r() is None for r in refs] == [True, True, False]    # the runner keeps the last
+    assert runner.worker is refs[2]()
+
+
+def test_cancel_of_a_running_analysis_keeps_its_partial(qtbot, runner):
+    # pipeline stand-in: snapshots until asked to stop, then the partial result
+    def fake(sources, options, *, progress, cancel, on_partial):
+        i = 0
+        while i < 3 or not cancel():       # at least one snapshot is pending when it stops
+            on_partial(("snapshot", i))
+            i += 1
+            time.sleep(0.005)
+        return SimpleNamespace(decomposition=("snapshot", i - 1), cancelled=True, problems=())
+
+    runner._analyze = fake
+    runner._interval = 10.0          # only the first snapshot and the flushed last one are sent
+    partials = []
+    runner.partial.connect(partials.append)
+    with qtbot.waitSignal(runner.partial, timeout=TIMEOUT):
+        runner.start(["x"], None)
+    with qtbot.waitSignal(runner.cancelled, timeout=TIMEOUT) as blocker:
+        runner.cancel()
+    result = blocker.args[0]
+    assert result.cancelled and partials[0] == ("snapshot", 0)
+    assert partials[-1] == result.decomposition and len(partials) == 2

@@ -49,8 +49,8 @@ from PySide6.QtCore import QObject, QThreadPool, Signal, Slot
 
 from modescope.core.errors import AnalysisCancelled, ModescopeError
 
-__all__ = ["EXPECTED_ERRORS", "plain_message", "error_message", "Stopped", "JobSignals",
-           "JobContext", "Job", "BackgroundRunner"]
+__all__ = ["EXPECTED_ERRORS", "plain_message", "unexpected_message", "error_message", "Stopped",
+           "JobSignals", "JobContext", "Job", "BackgroundRunner"]
 
 _log = logging.getLogger(__name__)
 
