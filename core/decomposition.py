@@ -81,6 +81,10 @@ class Decomposition:
         the scoring pass; None for a streaming snapshot.
     exact : bool
         True when weights, residuals and singular values come from the exact scoring pass.
+    singular_value_error : ndarray, shape (k,), float64, or None
+        Certificate of each singular value: an upper bound of ``|computed - true|`` from the
+        residual norms of the Ritz triplets of the last refinement pass (see
+        :func:`modescope.core.engine.refine.certify`); None for a streaming snapshot.
     marks : ndarray, shape (images,), int8
         Review marks: 0 not reviewed, 1 reviewed and kept, 2 reviewed and excluded. All zeros
         when not given.
@@ -100,6 +104,7 @@ class Decomposition:
     exact: bool = False
     marks: np.ndarray | None = None
     metadata: dict = field(default_factory=dict)
+    singular_value_error: np.ndarray | None = None
 
     def __post_init__(self):
         pixels = int(np.prod(self.image_shape))
@@ -122,6 +127,9 @@ class Decomposition:
             raise ValueError(f"marks must have shape ({n},), got {self.marks.shape}")
         if self.residual is not None and self.residual.shape != (n,):
             raise ValueError(f"residual must have shape ({n},), got {self.residual.shape}")
+        if self.singular_value_error is not None and self.singular_value_error.shape != (k,):
+            raise ValueError(f"singular_value_error must have shape ({k},), got "
+                             f"{self.singular_value_error.shape}")
 
     # ----- sizes ---------------------------------------------------------------------------
     @property
@@ -138,6 +146,28 @@ class Decomposition:
     def rank(self) -> int:
         """Number of basis images kept, k."""
         return int(self.singular_values.shape[0])
+
+    # ----- certificate ---------------------------------------------------------------------
+    def unconverged_modes(self, tolerance: float) -> np.ndarray:
+        """Return the 0-based modes whose certified error exceeds ``tolerance`` (relative).
+
+        A mode ``i`` is converged when ``singular_value_error[i] <= tolerance *
+        singular_values[i]``. Without a certificate (a streaming snapshot) every mode counts
+        as not converged.
+
+        Parameters
+        ----------
+        tolerance : float
+            Relative tolerance, e.g. 1e-4.
+
+        Returns
+        -------
+        ndarray of int
+        """
+        if self.singular_value_error is None:
+            return np.arange(self.rank)
+        bound = float(tolerance) * self.singular_values
+        return np.flatnonzero(~(self.singular_value_error <= bound))
 
     # ----- energy --------------------------------------------------------------------------
     def energy_shares(self) -> np.ndarray:
@@ -208,7 +238,9 @@ class Decomposition:
         return dataclasses.replace(
             self, basis=np.ascontiguousarray(self.basis[:, :r].T).T,
             singular_values=self.singular_values[:r].copy(),
-            weights=self.weights[:r].copy(), residual=residual)
+            weights=self.weights[:r].copy(), residual=residual,
+            singular_value_error=(None if self.singular_value_error is None
+                                  else self.singular_value_error[:r].copy()))
 
     def replace(self, **changes: Any) -> "Decomposition":
         """Return a copy with some fields replaced (like :func:`dataclasses.replace`)."""

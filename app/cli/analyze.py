@@ -8,8 +8,9 @@ import time
 from pathlib import Path
 
 from modescope.app.cli.common import (EXIT_INTERRUPTED, EXIT_OK, EXIT_UNUSABLE, EXIT_USAGE,
-                                      InterruptFlag, ProgressLine, failed, positive_int,
-                                      print_problems)
+                                      InterruptFlag, ProgressLine, add_accuracy_options, failed,
+                                      positive_int, print_problems)
+from modescope.core.review.accuracy import describe_accuracy
 from modescope.app.words import counted
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import save_model
@@ -37,10 +38,10 @@ def register(subparsers) -> None:
                         "skipping them")
     a.add_argument("--block-size", type=positive_int, default=128, metavar="B",
                    help="images per streaming update (default 128)")
-    a.add_argument("--oversample", type=int, default=10, metavar="P",
-                   help="extra internal directions (default 10)")
+    add_accuracy_options(a)
     a.add_argument("--no-refine", action="store_true",
-                   help="skip the Rayleigh-Ritz step of the scoring pass")
+                   help="one plain scoring pass: no Rayleigh-Ritz rotation, no refinement "
+                        "and no certificate")
     a.add_argument("--workers", type=int, default=0,
                    help="decoding threads (default 0: chosen from the image size)")
     a.add_argument("--quiet", action="store_true", help="no progress display")
@@ -54,7 +55,8 @@ def run(args: argparse.Namespace) -> int:
                                   recursive=args.recursive,
                                   resize_mismatched=args.resize_mismatched,
                                   block_size=args.block_size, oversample=args.oversample,
-                                  refine=not args.no_refine, workers=args.workers)
+                                  refine=not args.no_refine, workers=args.workers,
+                                  tolerance=args.tolerance, max_passes=args.max_passes)
     except (TypeError, ValueError) as exc:
         print(f"modescope analyze: {exc}", file=sys.stderr)
         return EXIT_USAGE
@@ -101,6 +103,7 @@ def run(args: argparse.Namespace) -> int:
                     + (", as a single image always does)" if d.n_images == 1 else ")"))
     print(f"analysed {counted(d.n_images, 'image')} of {rows}x{cols} "
           f"({'gray' if ch == 1 else 'rgb'}) in {elapsed:.1f} s; {captured}", file=sys.stderr)
+    print(f"singular values: {describe_accuracy(d)}", file=sys.stderr)
     print(f"wrote {written}", file=sys.stderr)
     print_problems(result.problems)
     return EXIT_OK

@@ -38,8 +38,9 @@ class ProgressLine:
         now = time.perf_counter()
         frac = p.done / p.total if p.total else 1.0
         left = "" if p.seconds_left is None else f", about {p.seconds_left:.0f} s left"
+        detail = f" ({p.detail})" if getattr(p, "detail", "") else ""
         text = (f"{p.stage:>5}: {p.done}/{p.total} images ({100 * frac:.0f}%), "
-                f"{p.rate:.0f} images/s{left}")
+                f"{p.rate:.0f} images/s{left}{detail}")
         if self.tty:
             if now - self.last_time > 0.1 or p.done == p.total:
                 self.stream.write("\r" + text.ljust(78))
@@ -67,6 +68,30 @@ def positive_int(text: str) -> int:
         raise argparse.ArgumentTypeError(f"expected a number of at least 1, got {value}")
     return value
 
+
+
+def fraction(text: str) -> float:
+    """argparse type: a number strictly between 0 and 1 (a relative tolerance)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not 0.0 < value < 1.0:
+        raise argparse.ArgumentTypeError(f"expected a number strictly between 0 and 1, got "
+                                         f"{text}")
+    return value
+
+
+def add_accuracy_options(parser: argparse.ArgumentParser) -> None:
+    """Add ``--oversample``, ``--tolerance`` and ``--max-passes`` (analyze and update)."""
+    parser.add_argument("--oversample", type=non_negative_int, default=10, metavar="P",
+                        help="extra internal directions (default 10)")
+    parser.add_argument("--tolerance", type=fraction, default=1e-4, metavar="T",
+                        help="relative accuracy asked of every singular value; refinement "
+                             "passes run until each certified bound is within it "
+                             "(default 1e-4)")
+    parser.add_argument("--max-passes", type=positive_int, default=4, metavar="N",
+                        help="most passes over the images after learning (default 4)")
 
 
 def non_negative_int(text: str) -> int:

@@ -8,6 +8,7 @@ import sys
 from modescope.app.cli.common import EXIT_OK, EXIT_UNUSABLE, positive_int
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import load_model
+from modescope.core.review.accuracy import describe_accuracy
 from modescope.core.review.rank import energy_rank, gavish_donoho
 
 __all__ = ["register", "run"]
@@ -39,8 +40,13 @@ def run(args: argparse.Namespace) -> int:
         src = meta.get("source_size", ["?", "?"])
         print(f"source size:  {src[0]} x {src[1]} (downscaled by {meta['downscale']})")
     print(f"rank:         {d.rank}")
-    print(f"state:        {'exact scoring pass done' if d.exact else 'streaming snapshot'}"
+    print(f"state:        {'final (refinement passes done)' if d.exact else 'streaming snapshot'}"
           f"{' (cancelled run)' if meta.get('stage') == 'cancelled' else ''}")
+    print(f"accuracy:     {describe_accuracy(d)}")
+    passes = meta.get("refinement", {}).get("passes") if isinstance(meta.get("refinement"),
+                                                                      dict) else None
+    if passes:
+        print(f"passes:       {passes} after the learning pass")
     if meta.get("created"):
         print(f"created:      {meta['created']}")
     print(f"energy:       total {d.total_energy:.6g}")
@@ -48,9 +54,11 @@ def run(args: argparse.Namespace) -> int:
     if not d.rank:
         print("basis images: none (the images do not vary: each one equals the mean image)")
     else:
-        print("  rank  singular value   share   cumulative")
+        print("  rank  singular value   certified error   share   cumulative")
+    errors = d.singular_value_error
     for r in range(min(args.ranks, d.rank)):
-        print(f"  {r + 1:4d}  {d.singular_values[r]:14.6g}  {100 * shares[r]:6.2f}%  "
+        bound = "—" if errors is None else f"{errors[r]:.2g}"
+        print(f"  {r + 1:4d}  {d.singular_values[r]:14.6g}  {bound:>15}  {100 * shares[r]:6.2f}%  "
               f"{100 * cum[r]:9.2f}%")
     if d.rank:
         print(f"suggested rank: {energy_rank(d, 0.9)} for 90% of the energy", end="")

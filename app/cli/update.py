@@ -6,7 +6,9 @@ import argparse
 import dataclasses
 import sys
 
-from modescope.app.cli.common import EXIT_OK, ProgressLine, failed, print_problems
+from modescope.app.cli.common import (EXIT_OK, ProgressLine, add_accuracy_options, failed,
+                                      print_problems)
+from modescope.core.review.accuracy import describe_accuracy
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import load_model, save_model
 from modescope.core.engine.pipeline import AnalysisOptions, update_analysis
@@ -24,6 +26,7 @@ def register(subparsers) -> None:
     u.add_argument("-o", "--output", required=True, metavar="OUT.npz",
                    help="model file to write (may be MODEL.npz itself)")
     u.add_argument("--recursive", action="store_true", help="look into sub-folders")
+    add_accuracy_options(u)
     u.add_argument("--quiet", action="store_true", help="no progress display")
     u.set_defaults(func=run)
 
@@ -33,7 +36,9 @@ def run(args: argparse.Namespace) -> int:
     try:
         d = load_model(args.model)
         options = AnalysisOptions.from_dict(d.metadata.get("options", {}))
-        options = dataclasses.replace(options, rank=max(d.rank, 1), recursive=args.recursive)
+        options = dataclasses.replace(options, rank=max(d.rank, 1), recursive=args.recursive,
+                                      oversample=args.oversample, tolerance=args.tolerance,
+                                      max_passes=args.max_passes)
         progress = None if args.quiet else ProgressLine(sys.stderr)
         result = update_analysis(d, args.sources, options, progress=progress)
         written = save_model(args.output, result.decomposition)
@@ -41,8 +46,7 @@ def run(args: argparse.Namespace) -> int:
         return failed("update", exc)
     new = result.decomposition
     print(f"added {new.n_images - d.n_images} images to {d.n_images}; "
-          f"{'exact scoring pass done' if new.exact else 'streaming update only'}",
-          file=sys.stderr)
+          f"singular values: {describe_accuracy(new)}", file=sys.stderr)
     print(f"wrote {written}", file=sys.stderr)
     print_problems(result.problems)
     return EXIT_OK

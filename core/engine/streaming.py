@@ -112,113 +112,154 @@ class StreamingSVD:
         m = block.shape[1]
         if m == 0:
             return
-        # Work on the transpose: one row per image, C-contiguous. Every pixel-sized product
-        # below is then a plain row-major GEMM whose output has the layout of its operands, so
-        # no elementwise step mixes C and Fortran order (that alone cost 5x here).
+        z, block_mean, added_energy = self._centred_rows(block)
+        proj = self._project_out(z)                                  # step 1
+        root, vec = self._remainder_directions(z, added_energy)      # step 2
+        p_keep, sig, core = self._truncated_core(proj, root, vec)    # step 3
+        new_rows = self._new_basis_rows(p_keep, root, vec, z)
+        a_blk, b_blk, new_w = self._coordinate_maps(p_keep, core, m)
+        new_rows, sig, a_blk, b_blk, new_w = self._reorthonormalised(   # step 4
+            new_rows, sig, a_blk, b_blk, new_w)
+        self._compose(a_blk, b_blk)
+        self._chunks.append([np.eye(sig.size), np.zeros(sig.size), new_w])
+        if len(self._chunks) > 64:
+            self._flush()
+        self.basis = new_rows.T                               # Fortran order (pixels x q)
+        self.singular_values = sig.copy()
+        n_new = self.n_seen + m
+        self.mean = self.mean + (m / n_new) * (block_mean - self.mean)
+        self.n_seen = n_new
+        self._updates += 1
+
+    def _centred_rows(self, block: np.ndarray):
+        """Return the centred block as rows (plus the mean-shift row), its mean and energy.
+
+        Works on the transpose: one row per image, C-contiguous. Every pixel-sized product is
+        then a plain row-major GEMM whose output has the layout of its operands, so no
+        elementwise step mixes C and Fortran order (that alone cost 5x here). Updates
+        ``total_energy``.
+        """
         rows = np.ascontiguousarray(block.T, dtype=np.float32)          # m x pixels
+        m = rows.shape[0]
         block_mean = rows.mean(axis=0, dtype=np.float64)
         if not np.all(np.isfinite(block_mean)):
             raise ValueError("block holds non-finite values (NaN or infinity)")
         n = self.n_seen
         n_new = n + m
-        ncol = m + 1 if n > 0 else m
-        z = np.empty((ncol, self.n_pixels), dtype=np.float32)             # centred block (+1)
+        z = np.empty((m + 1 if n > 0 else m, self.n_pixels), dtype=np.float32)
         np.subtract(rows, block_mean.astype(np.float32), out=z[:m])
         # row sums of squares in float32 (numpy sums each contiguous row pairwise, so the
         # relative error stays near 1e-7 * log2(pixels)), added up in float64
-        block_energy = float(np.sum(np.einsum("ij,ij->i", z[:m], z[:m]), dtype=np.float64))
+        energy = float(np.sum(np.einsum("ij,ij->i", z[:m], z[:m]), dtype=np.float64))
         if n > 0:
             shift = block_mean - self.mean
             z[m] = np.sqrt(n * m / n_new) * shift
-            shift_energy = (n * m / n_new) * float(shift @ shift)
-            self.total_energy += block_energy + shift_energy
+            energy += (n * m / n_new) * float(shift @ shift)
+            self.total_energy += energy
         else:
-            shift_energy = 0.0
-            self.total_energy = block_energy
-        u, s = self.basis, self.singular_values
-        ut = u.T                                                           # r x pixels, C
+            self.total_energy = energy
+        return z, block_mean, energy
+
+    def _project_out(self, z: np.ndarray) -> np.ndarray:
+        """Step 1: remove the basis' span from ``z`` in place; return the coordinates (r x ncol).
+
+        A second projection ("twice is enough") runs when the first left a component along the
+        basis that float32 cannot ignore: for data of low rank the remainder is rounding noise
+        that lies mostly in the span of the basis.
+        """
+        u = self.basis
         r = u.shape[1]
-        proj = (z @ u).T.astype(np.float64) if r else np.zeros((0, ncol))  # r x ncol
-        if r:
-            z -= proj.T.astype(np.float32) @ ut                            # z is now the remainder
-            # a second projection ("twice is enough") when the first left a component along
-            # the basis that float32 cannot ignore: for data of low rank the remainder is
-            # rounding noise that lies mostly in the span of the basis
-            proj2 = z @ u
-            if np.max(np.abs(proj2)) > 1e-6 * max(float(np.max(np.abs(proj))), 1e-30):
-                z -= proj2 @ ut
-                proj += proj2.T
-        rem = z
-        # Orthonormal directions of the remainder from one eigendecomposition of its small Gram
-        # matrix rem rem^T = vec diag(lam) vec^T: the rows of J = (vec / root)^T rem are
-        # orthonormal and rem = (vec * root) J. J itself is never formed, only the combination
-        # of it that survives the truncation.
-        norm_ref = np.sqrt(block_energy + shift_energy) or 1.0
-        floor = (_DROP_RELATIVE * norm_ref) ** 2
-        gram = (rem @ rem.T).astype(np.float64)
-        lam, vec = np.linalg.eigh(gram)
+        if not r:
+            return np.zeros((0, z.shape[0]))
+        ut = u.T                                                           # r x pixels, C
+        proj = (z @ u).T.astype(np.float64)
+        z -= proj.T.astype(np.float32) @ ut
+        proj2 = z @ u
+        if np.max(np.abs(proj2)) > 1e-6 * max(float(np.max(np.abs(proj))), 1e-30):
+            z -= proj2 @ ut
+            proj += proj2.T
+        return proj
+
+    @staticmethod
+    def _remainder_directions(rem: np.ndarray, added_energy: float):
+        """Step 2: orthonormal directions of the remainder, from its small Gram matrix.
+
+        ``rem rem^T = vec diag(root**2) vec^T``: the rows of ``J = (vec / root)^T rem`` are
+        orthonormal and ``rem = (vec * root) J``. J itself is never formed, only the
+        combination that survives the truncation. Directions whose norm is below
+        ``_DROP_RELATIVE`` of the block's are dropped.
+        """
+        floor = (_DROP_RELATIVE * (np.sqrt(added_energy) or 1.0)) ** 2
+        lam, vec = np.linalg.eigh((rem @ rem.T).astype(np.float64))
         keep = lam > floor
-        lam, vec = lam[keep], vec[:, keep]
-        root = np.sqrt(lam)
-        c = lam.size
+        return np.sqrt(lam[keep]), vec[:, keep]
+
+    def _truncated_core(self, proj: np.ndarray, root: np.ndarray, vec: np.ndarray):
+        """Step 3: left singular vectors of the small core, truncated to the internal size.
+
+        From the eigendecomposition of ``core core^T`` (float64; the squared condition number
+        stays far inside float64's range for data that is float32 to begin with, and eigh is
+        ~3x cheaper than the SVD here).
+        """
+        r, c, ncol = proj.shape[0], root.size, proj.shape[1]
         core = np.zeros((r + c, r + ncol))
-        core[:r, :r] = np.diag(s)
+        core[:r, :r] = np.diag(self.singular_values)
         core[:r, r:] = proj
         core[r:, r:] = (vec * root).T                                      # rem^T = J^T F
-        # left singular vectors of the small core from the eigendecomposition of core core^T
-        # (float64; the squared condition number stays far inside float64's range for data
-        # that is float32 to begin with, and eigh is ~3x cheaper than the SVD here)
         lam_core, p_mat = np.linalg.eigh(core @ core.T)
         order = np.argsort(lam_core)[::-1]
-        p_mat = p_mat[:, order]
         sig = np.sqrt(np.maximum(lam_core[order], 0.0))
         q_new = min(self.internal, int(np.sum(sig > sig[0] * 1e-7)) if sig.size and sig[0] > 0
                     else 0)
-        p_keep = p_mat[:, :q_new]
-        # new basis (rows) = P_u^T U^T + P_j^T J^T with J^T = (vec / root)^T rem
-        new_rows = np.empty((q_new, self.n_pixels), dtype=np.float32)
+        return p_mat[:, order][:, :q_new], sig[:q_new], core
+
+    def _new_basis_rows(self, p_keep, root, vec, rem) -> np.ndarray:
+        """New basis as rows: ``P_u^T U^T + P_j^T J^T`` with ``J^T = (vec / root)^T rem``."""
+        r = self.basis.shape[1]
+        new_rows = np.empty((p_keep.shape[1], self.n_pixels), dtype=np.float32)
         if r:
-            np.matmul(p_keep[:r].T.astype(np.float32), ut, out=new_rows)
+            np.matmul(p_keep[:r].T.astype(np.float32), self.basis.T, out=new_rows)
         else:
             new_rows[...] = 0.0
-        if c:
+        if root.size:
             new_rows += ((vec / root) @ p_keep[r:]).T.astype(np.float32) @ rem
-        # affine map of old image coordinates: new = A old + b
+        return new_rows
+
+    def _coordinate_maps(self, p_keep, core, m: int):
+        """Affine map of old image coordinates (new = A old + b) and the new images' weights."""
+        r, n = self.basis.shape[1], self.n_seen
+        n_new = n + m
         if n > 0:
             coord_extra = core[:, r + m]                      # coordinates of the extra column
-            coord_old_shift = -np.sqrt(m / (n * n_new)) * coord_extra   # mean moves by -m/n' dS
-            coord_new_shift = np.sqrt(n / (m * n_new)) * coord_extra     # block mean -> new mean
+            old_shift = -np.sqrt(m / (n * n_new)) * coord_extra    # mean moves by -m/n' dS
+            new_shift = np.sqrt(n / (m * n_new)) * coord_extra     # block mean -> new mean
         else:
-            coord_old_shift = np.zeros(r + c)
-            coord_new_shift = np.zeros(r + c)
-        a_blk = p_keep[:r, :].T                               # q_new x r
-        b_blk = p_keep.T @ coord_old_shift
-        new_w = p_keep.T @ (core[:, r:r + m] + coord_new_shift[:, None])
-        sig = sig[:q_new]
-        # One float32 Gram pass leaves the new directions orthogonal only to about
-        # eps * cond(remainder), so the new basis B (q columns, cheap to check) is made exactly
-        # orthonormal in a way that keeps the decomposition consistent: with C = (B^T B)^(1/2),
-        # data ~ B W = (B C^-1)(C W), and the SVD C diag(s) = P' diag(s') Q'^T gives the
-        # orthonormal basis B C^-1 P', singular values s' and coordinates P'^T C W.
-        if q_new:
-            gram_b = (new_rows @ new_rows.T).astype(np.float64)
-            if np.max(np.abs(gram_b - np.eye(q_new))) > 1e-6:
-                lam_b, vec_b = np.linalg.eigh(gram_b)
-                root_b = np.sqrt(np.maximum(lam_b, 1e-12))
-                half = (vec_b * root_b) @ vec_b.T
-                p_fix, sig, _ = np.linalg.svd(half * sig, full_matrices=False)
-                fix = p_fix.T @ half
-                new_rows = (((vec_b / root_b) @ vec_b.T) @ p_fix).T.astype(np.float32) @ new_rows
-                a_blk, b_blk, new_w = fix @ a_blk, fix @ b_blk, fix @ new_w
-        self._compose(a_blk, b_blk)
-        self._chunks.append([np.eye(q_new), np.zeros(q_new), new_w])
-        if len(self._chunks) > 64:
-            self._flush()
-        self.basis = new_rows.T                               # Fortran order (pixels x q)
-        self.singular_values = sig.copy()
-        self.mean = self.mean + (m / n_new) * (block_mean - self.mean)
-        self.n_seen = n_new
-        self._updates += 1
+            old_shift = new_shift = np.zeros(core.shape[0])
+        return (p_keep[:r, :].T, p_keep.T @ old_shift,
+                p_keep.T @ (core[:, r:r + m] + new_shift[:, None]))
+
+    @staticmethod
+    def _reorthonormalised(new_rows, sig, a_blk, b_blk, new_w):
+        """Step 4: make the new basis exactly orthonormal, keeping the decomposition consistent.
+
+        One float32 Gram pass leaves the new directions orthogonal only to about
+        eps * cond(remainder). With ``C = (B^T B)^(1/2)``, data ~ ``B W = (B C^-1)(C W)``, and
+        the SVD ``C diag(s) = P' diag(s') Q'^T`` gives the orthonormal basis ``B C^-1 P'``,
+        singular values ``s'`` and coordinates ``P'^T C W``.
+        """
+        q = new_rows.shape[0]
+        if not q:
+            return new_rows, sig, a_blk, b_blk, new_w
+        gram_b = (new_rows @ new_rows.T).astype(np.float64)
+        if np.max(np.abs(gram_b - np.eye(q))) <= 1e-6:
+            return new_rows, sig, a_blk, b_blk, new_w
+        lam_b, vec_b = np.linalg.eigh(gram_b)
+        root_b = np.sqrt(np.maximum(lam_b, 1e-12))
+        half = (vec_b * root_b) @ vec_b.T
+        p_fix, sig, _ = np.linalg.svd(half * sig, full_matrices=False)
+        fix = p_fix.T @ half
+        new_rows = (((vec_b / root_b) @ vec_b.T) @ p_fix).T.astype(np.float32) @ new_rows
+        return new_rows, sig, fix @ a_blk, fix @ b_blk, fix @ new_w
 
     def _compose(self, a_blk: np.ndarray, b_blk: np.ndarray) -> None:
         if self._flushed.shape[1] > 0:
@@ -252,7 +293,7 @@ class StreamingSVD:
             self.basis = (inv_root.T.astype(np.float32) @ u.T).T     # stays Fortran order
 
     @classmethod
-    def from_decomposition(cls, decomposition: Decomposition,
+    def from_decomposition(cls, decomposition: Decomposition, rank: int | None = None,
                            oversample: int = 10) -> "StreamingSVD":
         """Start an engine from an existing analysis so that more images can be added.
 
@@ -262,11 +303,14 @@ class StreamingSVD:
         Parameters
         ----------
         decomposition : Decomposition
+        rank : int, optional
+            Modes to report from now on (default: the analysis' rank, at least 1).
         oversample : int, optional
             Extra directions to keep from now on.
         """
         d = decomposition
-        engine = cls(d.n_pixels, rank=max(d.rank, 1), oversample=oversample)
+        engine = cls(d.n_pixels, rank=max(d.rank, 1) if rank is None else rank,
+                     oversample=oversample)
         engine.n_seen = d.n_images
         engine.mean = d.mean.astype(np.float64)
         engine.total_energy = float(d.total_energy)
@@ -276,6 +320,27 @@ class StreamingSVD:
         engine._map_a = np.eye(d.rank)
         engine._map_b = np.zeros(d.rank)
         return engine
+
+    def padded_basis(self, seed: int = 0) -> np.ndarray:
+        """Return the basis completed to ``internal`` orthonormal columns for refinement passes.
+
+        An engine started from a saved analysis holds only its k modes; subspace iteration needs
+        the extra directions, so random ones (seeded, orthogonal to the basis) fill the gap.
+
+        Returns
+        -------
+        ndarray, shape (pixels, min(internal, pixels)), float32, Fortran order
+        """
+        u = np.asarray(self.basis, dtype=np.float64)
+        want = min(self.internal, self.n_pixels)
+        if u.shape[1] >= want:
+            return np.asfortranarray(self.basis)
+        rng = np.random.default_rng(seed)
+        extra = rng.standard_normal((self.n_pixels, want - u.shape[1]))
+        for _ in range(2):
+            extra -= u @ (u.T @ extra)
+            extra, _r = np.linalg.qr(extra)
+        return np.asfortranarray(np.hstack([u, extra]).astype(np.float32))
 
     # ---------------------------------------------------------------------------------------
     def internal_weights(self) -> np.ndarray:

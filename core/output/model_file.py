@@ -10,6 +10,7 @@ basis               (pixels, k) float32/16      orthonormal basis images as colu
 singular_values     (k,) float64                descending, non-negative
 weights             (k, images) float64/32/16   coordinates of every image
 residual            (images,) float64           squared residual norm outside the k modes
+singular_value_error (k,) float64               certified bound of each singular value's error
 total_energy        () float64                  squared Frobenius norm of the centred data
 image_shape         (3,) int64                  rows, cols, channels
 paths               (images,) unicode           source file of each image
@@ -19,7 +20,8 @@ exact               () bool                     True after the exact scoring pas
 metadata            () unicode                  JSON text: options, versions, date, problems
 ==================  ==========================  ==========================================
 
-``residual`` is stored as an empty array for a streaming snapshot that has none.
+``residual`` and ``singular_value_error`` are stored as empty arrays for a streaming snapshot
+that has none (files written before the certificate existed have no ``singular_value_error``).
 """
 
 from __future__ import annotations
@@ -92,6 +94,8 @@ def save_model(path, decomposition: Decomposition, *, overwrite: bool = True,
         "weights": cast(d.weights),
         "residual": (np.zeros(0) if d.residual is None
                      else np.asarray(d.residual, dtype=np.float64)),
+        "singular_value_error": (np.zeros(0) if d.singular_value_error is None
+                                 else np.asarray(d.singular_value_error, dtype=np.float64)),
         "total_energy": np.float64(d.total_energy),
         "image_shape": np.asarray(d.image_shape, dtype=np.int64),
         "paths": np.asarray([str(p) for p in d.paths], dtype=str).reshape(len(d.paths)),
@@ -197,6 +201,12 @@ def load_model(path) -> Decomposition:
     residual = None
     if "residual" in data and data["residual"].size:
         residual = floats("residual", 1).astype(np.float64)
+    sv_error = None
+    if "singular_value_error" in data and data["singular_value_error"].size:
+        sv_error = floats("singular_value_error", 1).astype(np.float64)
+        if sv_error.shape != sv.shape or np.any(sv_error < 0):
+            raise _bad(path, f"entry 'singular_value_error' must be {sv.size} non-negative "
+                             f"numbers, found shape {sv_error.shape}")
     pages = data.get("pages")
     if pages is not None and (not np.issubdtype(pages.dtype, np.integer) or pages.shape != (n,)):
         raise _bad(path, f"entry 'pages' must be {n} integers, found {pages.dtype} {pages.shape}")
@@ -213,6 +223,7 @@ def load_model(path) -> Decomposition:
             total_energy=float(te), image_shape=image_shape, paths=tuple(str(p) for p in paths),
             pages=None if pages is None else pages.astype(np.int32),
             residual=residual, exact=exact,
-            marks=None if marks is None else marks.astype(np.int8), metadata=meta)
+            marks=None if marks is None else marks.astype(np.int8), metadata=meta,
+            singular_value_error=sv_error)
     except ValueError as exc:
         raise _bad(path, f"entries do not fit together ({exc})") from None

@@ -200,7 +200,7 @@ def test_options_validation():
 
 
 def test_block_size_is_capped_for_large_images(tmp_path, monkeypatch):
-    from modescope.core.engine import pipeline
+    from modescope.core.engine import options as engine_options
     from modescope.core.engine.pipeline import block_size_for
     opts = AnalysisOptions(block_size=128)
     # 128x128 gray: 128 images of 64 KB fit the 256 MB block budget
@@ -214,7 +214,7 @@ def test_block_size_is_capped_for_large_images(tmp_path, monkeypatch):
     rng = np.random.default_rng(4)
     write_pngs(tmp_path / "imgs", [rng.integers(0, 256, (6, 5), dtype=np.uint8)
                                    for _ in range(35)])
-    monkeypatch.setattr(pipeline, "_BLOCK_BYTES", 10 * 30 * 4)
+    monkeypatch.setattr(engine_options, "_BLOCK_BYTES", 10 * 30 * 4)
     seen = []
     result = analyze([tmp_path / "imgs"], AnalysisOptions(rank=3, block_size=128),
                      progress=lambda p: seen.append((p.stage, p.done)))

@@ -1,0 +1,194 @@
+"""The passes after the learning pass: read every image again (from the block cache where it
+holds them, from the files otherwise), project it on the current basis, and refine until every
+reported singular value is certified within the tolerance or the pass limit is reached."""
+
+from __future__ import annotations
+
+import dataclasses
+from dataclasses import dataclass
+from typing import Callable, Iterator
+
+import numpy as np
+
+from modescope.core.engine.blockcache import BlockCache
+from modescope.core.engine.options import AnalysisOptions, Clock, block_size_for
+from modescope.core.engine.refine import (PassAccumulator, RitzStep, rayleigh_ritz_step,
+                                          rounding_error)
+from modescope.core.errors import SourceError
+from modescope.core.sources.decode import analysis_shape, iter_blocks
+from modescope.core.sources.scan import SourceSet
+
+__all__ = ["Refined", "refine"]
+
+
+@dataclass(frozen=True)
+class Refined:
+    """Outcome of :func:`refine`.
+
+    Attributes
+    ----------
+    basis, singular_values, weights, residual, error : ndarray
+        The first ``rank`` Ritz triplets of the last complete pass (see
+        :meth:`~modescope.core.engine.refine.RitzStep.truncate`); ``error`` is None without
+        refinement (``options.refine`` False).
+    energy : ndarray, shape (n,)
+        Squared norm of every centred image.
+    passes : int
+        Complete passes over the data.
+    stopped : bool
+        True when cancelled before the first pass completed (then the arrays are None).
+    """
+
+    basis: np.ndarray | None
+    singular_values: np.ndarray | None
+    weights: np.ndarray | None
+    residual: np.ndarray | None
+    error: np.ndarray | None
+    energy: np.ndarray | None
+    passes: int
+    stopped: bool
+
+
+def _blocks(used: SourceSet, options: AnalysisOptions, workers: int, cancel,
+            cache: BlockCache | None, cache_start: int) -> Iterator[np.ndarray]:
+    """Yield every image of ``used`` in order, as float32 column blocks.
+
+    Images ``cache_start`` to ``cache_start + cache.images`` come back from ``cache``; the
+    others are decoded from their files (a file that fails now, after a good learning pass,
+    changed during the analysis: SourceError).
+    """
+    pixels = int(np.prod(analysis_shape(used, options.downscale)))
+    # the learning pass's block width: files and cache then give the very same float32
+    # products, so the result does not depend on what the cache could hold
+    block_size = block_size_for(options, pixels)
+    cached = cache.images if cache is not None else 0
+
+    def from_files(start: int, stop: int):
+        if stop <= start:
+            return
+        part = dataclasses.replace(used, images=used.images[start:stop])
+        for block in iter_blocks(part, block_size=block_size, downscale=options.downscale,
+                                 workers=workers, cancel=cancel):
+            if block.problems:
+                bad = block.problems[0]
+                raise SourceError(f"{bad.path}: changed or became unreadable during the "
+                                  f"analysis ({bad.reason})")
+            yield block.data
+
+    yield from from_files(0, cache_start)
+    if cached:
+        for block in cache.blocks():
+            yield block.data
+    yield from from_files(cache_start + cached, used.n_images)
+
+
+def _one_pass(basis, mean, used, options, workers, cancel, cache, cache_start, clock,
+              want_y: bool) -> PassAccumulator | None:
+    acc = PassAccumulator(basis, mean, used.n_images, want_y=want_y)
+    for data in _blocks(used, options, workers, cancel, cache, cache_start):
+        acc.add(data)
+        clock.report(acc.done)
+        if cancel():
+            return None
+    return acc if acc.done == used.n_images else None
+
+
+def _source_note(cache: BlockCache | None, n_images: int) -> str:
+    cached = cache.images if cache is not None else 0
+    if cached >= n_images:
+        return "from the block cache"
+    if cached == 0:
+        return "re-reading the files"
+    return f"{cached:,} images from the block cache, the others re-read from their files"
+
+
+def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: AnalysisOptions, *,
+           workers: int, cache: BlockCache | None = None, cache_start: int = 0,
+           progress: Callable | None = None,
+           cancel: Callable[[], bool] = lambda: False) -> Refined:
+    """Score every image exactly and refine the basis until it is certified.
+
+    Pass 1 is the scoring pass: exact weights and residuals of every image in ``span(basis)``
+    with a Rayleigh-Ritz step and a certificate (:func:`~modescope.core.engine.refine.certify`).
+    While a reported mode's bound exceeds ``options.tolerance`` times its singular value, the
+    basis takes one subspace-iteration step and another pass follows, up to
+    ``options.max_passes``, or until a pass tightens no bound by a fifth. A pass stopped by ``cancel`` is dropped: the result is the last
+    complete pass.
+
+    Parameters
+    ----------
+    basis : ndarray, shape (pixels, q)
+        Orthonormal start basis (the streaming pass's internal directions).
+    mean : ndarray, shape (pixels,)
+        Exact mean of the images.
+    used : SourceSet
+        The images, in column order.
+    options : AnalysisOptions
+        ``rank``, ``refine``, ``tolerance``, ``max_passes``, ``downscale``, ``block_size``.
+    workers : int
+        Decoding threads for images not in the cache.
+    cache : BlockCache, optional
+        Decoded blocks of images ``cache_start ...`` of ``used``.
+    cache_start : int, optional
+    progress, cancel : callable, optional
+        Progress (stage "score", with the pass in ``detail``) and the stop request.
+
+    Returns
+    -------
+    Refined
+    """
+    rank = options.rank
+    note = _source_note(cache, used.n_images)
+    last: RitzStep | None = None
+    energy = None
+    passes = 0
+    rounding = 0.0
+    while passes < (options.max_passes if options.refine else 1):
+        detail = (f"pass {passes + 1} of at most {options.max_passes}, {note}"
+                  if options.refine else note)
+        clock = Clock("score", used.n_images, progress, detail)
+        acc = _one_pass(basis, mean, used, options, workers, cancel, cache, cache_start, clock,
+                        want_y=options.refine)
+        if acc is None:
+            break
+        passes += 1
+        energy = acc.energy
+        if not options.refine:
+            return _plain(acc, rank, passes)
+        if passes == 1:
+            rounding = rounding_error(mean.size, used.n_images,
+                                      np.sqrt(float(np.sum(acc.energy))),
+                                      float(np.linalg.norm(mean)))
+        previous, last = last, rayleigh_ritz_step(acc, rounding)
+        k = min(rank, last.singular_values.size)
+        if np.all(last.error[:k] <= options.tolerance * last.singular_values[:k]):
+            break
+        if previous is not None and _stalled(previous, last, k):
+            break
+        basis = last.next_basis
+    if last is None:
+        return Refined(None, None, None, None, None, None, passes, True)
+    b, s, w, res, err = last.truncate(rank)
+    return Refined(b, s, w, res, err, energy, passes, False)
+
+
+def _stalled(previous: RitzStep, last: RitzStep, k: int) -> bool:
+    """True when a pass tightened no bound by a fifth: the bounds sit at the float32 rounding
+    floor (or the spectrum has no gap), so more passes would cost time for nothing. The
+    factor is our own choice, no published source."""
+    return bool(np.all(last.error[:k] > 0.8 * previous.error[:k]))
+
+
+def _plain(acc: PassAccumulator, rank: int, passes: int) -> Refined:
+    """Keep the basis as it is: singular values are the norms of the weight rows, sorted."""
+    from modescope.core.decomposition import fix_signs
+
+    norms = np.sqrt(np.sum(acc.weights ** 2, axis=1))
+    order = np.argsort(norms)[::-1]
+    k = min(rank, norms.size)
+    basis = np.asarray(acc.basis, dtype=np.float32)[:, order]
+    weights = acc.weights[order]
+    residual = acc.residual + np.sum(weights[k:] ** 2, axis=0)
+    b, w = fix_signs(basis[:, :k], weights[:k])
+    return Refined(np.asfortranarray(b), norms[order][:k].copy(), w, residual, None,
+                   acc.energy, passes, False)

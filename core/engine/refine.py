@@ -1,0 +1,263 @@
+"""Refinement passes over the data, each ending in a Rayleigh-Ritz step with a certificate.
+
+The streaming pass leaves an orthonormal basis ``U`` (pixels x q, q = rank + oversample) close
+to the leading left singular subspace of the centred data ``A = X - mean``. Each refinement pass
+reads every image once (from the block cache when it holds them, otherwise from the files) and
+accumulates, for ``M = A A^T``:
+
+* ``W = U^T A`` (q x images): the exact coordinates of every image in ``span(U)``;
+* ``Y = M U = A W^T`` (pixels x q): one step of subspace (block power) iteration;
+* the squared norm of every centred image and of its part outside ``span(U)``.
+
+The Rayleigh-Ritz step takes the eigendecomposition ``W W^T = V diag(theta) V^T``: the Ritz
+vectors ``U V`` with singular values ``sqrt(theta)`` and weights ``V^T W`` are the best rank-q
+description of the data within ``span(U)`` (exact for that subspace). Their residuals
+``r_i = M u_i - theta_i u_i`` come from ``Y`` at no extra pass; :func:`certify` turns them into a
+bound for every singular value. When a reported mode is not yet within the tolerance, the next
+basis is ``orth(Y V diag(theta)^-1)`` (subspace iteration, Golub and Van Loan, "Matrix
+Computations", 4th ed., Sec. 8.2.4) and another pass follows, up to a pass limit.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from modescope.core.decomposition import fix_signs
+
+__all__ = ["PassAccumulator", "RitzStep", "certify", "rayleigh_ritz_step", "project_block"]
+
+# unit roundoff of float32 (2**-24): the pixel-sized products run in float32
+_U32 = float(np.finfo(np.float32).eps) / 2
+
+
+def project_block(basis: np.ndarray, mean: np.ndarray, block: np.ndarray):
+    """Return the weights and squared residual norms of a block of image columns.
+
+    Parameters
+    ----------
+    basis : ndarray, shape (pixels, q)
+        Orthonormal columns.
+    mean : ndarray, shape (pixels,)
+    block : ndarray, shape (pixels, m)
+
+    Returns
+    -------
+    weights : ndarray, shape (q, m), float64
+    residual : ndarray, shape (m,), float64
+        ``||x - mean - basis @ w||**2`` for each column, computed from the difference itself (not
+        as a difference of squares, which loses everything when the residual is small).
+    centred_energy : ndarray, shape (m,), float64
+        ``||x - mean||**2`` of each column.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> basis = np.eye(3, 1)                      # the first pixel only
+    >>> w, res, energy = project_block(basis, np.zeros(3), np.array([[1.0], [2.0], [2.0]]))
+    >>> w.tolist(), res.tolist(), energy.tolist()
+    ([[1.0]], [8.0], [9.0])
+    """
+    w, res, energy, _ = _project_rows(np.asarray(basis, dtype=np.float32),
+                                      np.asarray(mean, dtype=np.float32), block, want_y=False)
+    return w, res, energy
+
+
+def _project_rows(basis: np.ndarray, mean: np.ndarray, block: np.ndarray, want_y: bool):
+    # one row per image (C order), so that the products and the subtraction share a layout
+    rows = np.ascontiguousarray(np.asarray(block).T, dtype=np.float32)     # m x pixels
+    centred = rows - mean
+    wt = centred @ basis                                                   # m x q
+    energy = np.einsum("ij,ij->i", centred, centred, dtype=np.float64)
+    yt = (wt.T @ centred) if want_y else None                              # q x pixels
+    centred -= wt @ basis.T                                                # now the remainder
+    residual = np.einsum("ij,ij->i", centred, centred, dtype=np.float64)
+    return wt.T.astype(np.float64), residual, energy, yt
+
+
+class PassAccumulator:
+    """Collect one pass over the data block by block: weights, ``M U``, residuals, energies.
+
+    Parameters
+    ----------
+    basis : ndarray, shape (pixels, q)
+        Orthonormal columns.
+    mean : ndarray, shape (pixels,)
+    n_images : int
+        Number of columns that will be added in total.
+    want_y : bool, optional
+        Also accumulate ``Y = A A^T basis`` (needed for the certificate and the next
+        iteration; default True).
+    """
+
+    def __init__(self, basis: np.ndarray, mean: np.ndarray, n_images: int,
+                 want_y: bool = True):
+        self.basis = np.asfortranarray(basis, dtype=np.float32)
+        self.mean = np.asarray(mean, dtype=np.float32)
+        q, pixels = basis.shape[1], basis.shape[0]
+        self.weights = np.zeros((q, n_images))
+        self.residual = np.zeros(n_images)
+        self.energy = np.zeros(n_images)
+        # per block in float32 (m terms), summed over blocks in float64
+        self.yt = np.zeros((q, pixels)) if want_y else None
+        self.done = 0
+
+    def add(self, block: np.ndarray) -> None:
+        """Project the next block of columns (in order), shape (pixels, m)."""
+        m = block.shape[1]
+        if self.done + m > self.weights.shape[1]:
+            raise ValueError(f"more columns than announced: {self.done + m} > "
+                             f"{self.weights.shape[1]}")
+        w, res, en, yt = _project_rows(self.basis, self.mean, block, self.yt is not None)
+        sl = slice(self.done, self.done + m)
+        self.weights[:, sl] = w
+        self.residual[sl] = res
+        self.energy[sl] = en
+        if yt is not None:
+            self.yt += yt
+        self.done += m
+
+
+def certify(singular_values: np.ndarray, residual_norms: np.ndarray,
+            rounding: float = 0.0) -> np.ndarray:
+    """Return an upper bound of ``|computed - true|`` for each singular value.
+
+    For the symmetric matrix ``M = A A^T``, a unit vector ``u`` and ``theta = u^T M u``, some
+    eigenvalue ``lambda`` of ``M`` satisfies ``|lambda - theta| <= ||M u - theta u||`` (the
+    residual bound for symmetric matrices; Parlett, "The Symmetric Eigenvalue Problem", Thm
+    4.5.1, also Golub and Van Loan, "Matrix Computations", 4th ed., Thm 8.1.13). With
+    ``sigma = sqrt(lambda)`` and ``s = sqrt(theta) > 0``:
+    ``|sigma - s| = |lambda - theta| / (sigma + s) <= ||r|| / s``. The Ritz values of a
+    Rayleigh-Ritz step never exceed the matching eigenvalues (Cauchy interlacing, Parlett Thm
+    10.1.1), so the computed ``s_i`` is a lower bound of ``sigma_i`` and the bound is matched to
+    mode ``i`` as long as no mode above it is missing from the subspace (the streaming pass
+    starts every mode it keeps; a mode outside the subspace would have to be larger than
+    ``s_i`` yet invisible in every block).
+
+    Parameters
+    ----------
+    singular_values : ndarray, shape (q,)
+        Ritz singular values ``s_i = sqrt(theta_i)``, non-negative.
+    residual_norms : ndarray, shape (q,)
+        ``||M u_i - theta_i u_i||`` of each Ritz vector.
+    rounding : float, optional
+        Absolute error of the float32 products (added to every bound).
+
+    Returns
+    -------
+    ndarray, shape (q,), float64
+        ``||r_i|| / s_i + rounding``; ``sqrt(||r_i||) + rounding`` where ``s_i`` is 0 (then
+        ``sigma = sqrt(lambda) <= sqrt(||r_i||)``).
+
+    Examples
+    --------
+    >>> certify(np.array([2.0, 1.0]), np.array([1e-4, 1e-3])).tolist()
+    [5e-05, 0.001]
+    """
+    s = np.asarray(singular_values, dtype=np.float64)
+    r = np.asarray(residual_norms, dtype=np.float64)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        bound = np.where(s > 0, r / np.where(s > 0, s, 1.0), np.sqrt(r))
+    return bound + float(rounding)
+
+
+def rounding_error(n_pixels: int, n_images: int, centred_norm: float, mean_norm: float) -> float:
+    """Return the error budget of the float32 products, absolute, added to every bound.
+
+    A first-order estimate, not a proof. Probabilistic rounding-error analysis (Higham and Mary,
+    "A new approach to probabilistic rounding error analysis", SIAM J. Sci. Comput. 41, 2019)
+    gives a float32 inner product of length p an error of about ``sqrt(p) u`` relative to the
+    product of the norms (u = 2**-24); a perturbation of the weights moves a singular value by
+    about the size of one entry's error projected on the singular pair, i.e. the error of an
+    image of typical norm ``||A||_F / sqrt(n)``. Rounding the mean to float32 adds the same
+    error ``u |mean|`` to every image: a rank-one perturbation of norm ``u sqrt(n) ||mean||``
+    (Weyl's inequality). A factor 4 is kept as a margin (our own choice, no published source).
+
+    Parameters
+    ----------
+    n_pixels, n_images : int
+    centred_norm : float
+        ``||X - mean||_F`` (square root of the total energy).
+    mean_norm : float
+        ``||mean||``.
+    """
+    n = max(int(n_images), 1)
+    return 4.0 * _U32 * (np.sqrt(float(n_pixels)) * float(centred_norm) / np.sqrt(n)
+                         + np.sqrt(n) * float(mean_norm))
+
+
+@dataclass(frozen=True)
+class RitzStep:
+    """One Rayleigh-Ritz step on the sums of a pass.
+
+    Attributes
+    ----------
+    basis : ndarray, shape (pixels, q), float32
+        Ritz vectors, descending singular value, signs fixed.
+    singular_values : ndarray, shape (q,)
+    weights : ndarray, shape (q, n)
+    error : ndarray, shape (q,)
+        :func:`certify` bound of each singular value.
+    outside : ndarray, shape (n,)
+        Squared norm of each centred image outside ``span(basis)``.
+    next_basis : ndarray, shape (pixels, q), float32
+        Orthonormal basis for the next pass (subspace iteration).
+    """
+
+    basis: np.ndarray
+    singular_values: np.ndarray
+    weights: np.ndarray
+    error: np.ndarray
+    outside: np.ndarray
+    next_basis: np.ndarray
+
+    def truncate(self, rank: int):
+        """Return (basis, singular values, weights, residual, error) of the first ``rank``."""
+        k = min(rank, self.singular_values.size)
+        residual = self.outside + np.sum(self.weights[k:] ** 2, axis=0)
+        return (np.asfortranarray(self.basis[:, :k]), self.singular_values[:k].copy(),
+                self.weights[:k].copy(), residual, self.error[:k].copy())
+
+
+def rayleigh_ritz_step(acc: PassAccumulator, rounding: float = 0.0) -> RitzStep:
+    """Rotate the pass's basis to Ritz vectors, certify them and prepare the next basis.
+
+    Parameters
+    ----------
+    acc : PassAccumulator
+        A complete pass (every image added) with ``want_y``.
+    rounding : float, optional
+        See :func:`certify`.
+
+    Returns
+    -------
+    RitzStep
+    """
+    u = acc.basis                                            # pixels x q, float32
+    gram = acc.weights @ acc.weights.T                        # V diag(theta) V^T, float64
+    lam, vec = np.linalg.eigh(gram)
+    order = np.argsort(lam)[::-1]
+    theta, vec = np.maximum(lam[order], 0.0), vec[:, order]
+    sv = np.sqrt(theta)
+    weights = vec.T @ acc.weights
+    ritz_rows = vec.T.astype(np.float32) @ u.T               # q x pixels: Ritz vectors as rows
+    vt_yt = vec.T @ acc.yt                                    # rows of M U V, float64
+    res_rows = vt_yt - theta[:, None] * ritz_rows
+    error = certify(sv, np.linalg.norm(res_rows, axis=1), rounding)
+    next_rows = _orthonormal_rows(np.where(theta[:, None] > 0,
+                                           vt_yt / np.where(theta > 0, theta, 1.0)[:, None],
+                                           ritz_rows))
+    basis, weights = fix_signs(np.ascontiguousarray(ritz_rows.T), weights)
+    del res_rows, vt_yt
+    return RitzStep(basis=np.asfortranarray(basis), singular_values=sv, weights=weights,
+                    error=error, outside=acc.residual.copy(),
+                    next_basis=np.asfortranarray(next_rows.T))
+
+
+def _orthonormal_rows(rows: np.ndarray) -> np.ndarray:
+    """Return float32 orthonormal rows spanning the numerical row space of ``rows``."""
+    rows = np.asarray(rows, dtype=np.float64)
+    _, s, vt = np.linalg.svd(rows, full_matrices=False)
+    keep = s > (s[0] * 1e-10 if s.size else 0.0)
+    return vt[keep].astype(np.float32)

@@ -1,0 +1,145 @@
+"""Refinement passes and the per-mode certificate, checked against LAPACK.
+
+Outside references: numpy's LAPACK SVD (``numpy.linalg.svd``, gesdd) on the same decoded
+float32 data in float64; scipy.linalg.subspace_angles for principal angles; the
+Eckart-Young-Mirsky theorem (the rank-k truncated SVD is the best rank-k approximation in the
+Frobenius norm); scikit-learn's bundled digits (``sklearn.datasets.load_digits``).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from PIL import Image
+from scipy.linalg import subspace_angles
+
+from modescope.core.engine.pipeline import AnalysisOptions, analyze, update_analysis
+from modescope.core.engine.refine import PassAccumulator, certify, rayleigh_ritz_step
+from modescope.core.sources.scan import scan_sources
+
+
+@pytest.fixture(scope="module")
+def digits(tmp_path_factory):
+    """scikit-learn's bundled digits as 8-bit PNG files (values 0..16 times 15: exact)."""
+    from sklearn.datasets import load_digits
+    folder = tmp_path_factory.mktemp("digits")
+    images = (load_digits().images * 15).astype(np.uint8)
+    for i, img in enumerate(images):
+        Image.fromarray(img).save(folder / f"d_{i:04d}.png")
+    X = images.reshape(len(images), -1).T.astype(np.float32) / np.float32(255)
+    A = X.astype(np.float64) - X.astype(np.float64).mean(axis=1, keepdims=True)
+    u, s, _ = np.linalg.svd(A, full_matrices=False)          # LAPACK reference
+    return folder, X, A, u, s
+
+
+@pytest.mark.parametrize("rank", [5, 20, 40])
+def test_digits_match_lapack_and_the_bound_holds(digits, rank):
+    folder, X, A, u, s = digits
+    d = analyze([folder], AnalysisOptions(rank=rank, max_passes=8)).decomposition
+    err = np.abs(d.singular_values - s[:rank])
+    # singular values within 1e-4 relative of LAPACK
+    assert np.all(err <= 1e-4 * s[:rank])
+    # the certificate holds for every mode: |computed - LAPACK| <= stored bound
+    assert d.singular_value_error is not None
+    assert np.all(err <= d.singular_value_error)
+    # and it says the model is converged to the default tolerance
+    assert d.unconverged_modes(1e-4).size == 0
+    assert d.metadata["refinement"]["unconverged"] == []
+    # principal angles of the top 10 below 0.1 degree (scipy.linalg.subspace_angles)
+    top = min(10, rank)
+    angles = np.degrees(subspace_angles(d.basis[:, :top].astype(np.float64), u[:, :top]))
+    assert angles.max() < 0.1
+    # reconstruction within 1.0005 of the Eckart-Young-Mirsky optimum
+    approx = d.basis.astype(np.float64) @ d.weights
+    optimum = np.sqrt(np.sum(s[rank:] ** 2))
+    assert np.linalg.norm(A - approx) <= 1.0005 * optimum
+    # exact energy bookkeeping
+    assert d.total_energy == pytest.approx(np.sum(s ** 2), rel=1e-5)
+
+
+def test_order_of_the_images_does_not_matter(digits, tmp_path):
+    folder, X, A, u, s = digits
+    options = AnalysisOptions(rank=20, max_passes=8)
+    forward = analyze([folder], options).decomposition
+    files = sorted(folder.glob("*.png"))
+    rng = np.random.default_rng(3)
+    for order in (files[::-1], [files[i] for i in rng.permutation(len(files))]):
+        sset = scan_sources([str(p) for p in order])
+        # keep the given order (the scan sorts folders, not an explicit file list)
+        other = analyze(sset, options).decomposition
+        assert other.paths[0] == str(order[0])
+        np.testing.assert_allclose(other.singular_values, forward.singular_values, rtol=1e-4)
+
+
+def test_update_in_two_halves_equals_one_run(digits, tmp_path):
+    folder, X, A, u, s = digits
+    files = sorted(folder.glob("*.png"))
+    half = len(files) // 2
+    first, second = tmp_path / "a", tmp_path / "b"
+    first.mkdir()
+    second.mkdir()
+    for p in files[:half]:
+        (first / p.name).write_bytes(p.read_bytes())
+    for p in files[half:]:
+        (second / p.name).write_bytes(p.read_bytes())
+    options = AnalysisOptions(rank=20, max_passes=8)
+    base = analyze([first], options).decomposition
+    updated = update_analysis(base, [second], options).decomposition
+    one = analyze([folder], options).decomposition
+    assert updated.n_images == one.n_images == len(files)
+    np.testing.assert_allclose(updated.singular_values, one.singular_values, rtol=1e-4)
+    np.testing.assert_allclose(updated.singular_values, s[:20], rtol=1e-4)   # LAPACK
+    assert np.all(np.abs(updated.singular_values - s[:20]) <= updated.singular_value_error)
+
+
+def test_slowly_decaying_spectrum_bound_holds_and_says_what_is_not_converged(tmp_path):
+    # invented smooth data with a slowly decaying spectrum (no gap): with one pass the tail
+    # cannot converge; the model must say so, and every bound must still hold (LAPACK)
+    rng = np.random.default_rng(11)
+    rows = cols = 16
+    n = 400
+    freqs = np.arange(1, 41)
+    basis = np.linalg.qr(rng.standard_normal((rows * cols, 40)))[0]
+    coeffs = rng.standard_normal((40, n)) * (1.0 / freqs)[:, None]
+    X = 0.5 + 0.05 * basis @ coeffs + 0.002 * rng.standard_normal((rows * cols, n))
+    images = np.clip(np.round(X * 255), 0, 255).astype(np.uint8)
+    for i in range(n):
+        Image.fromarray(images[:, i].reshape(rows, cols)).save(tmp_path / f"f_{i:03d}.png")
+    Xf = images.astype(np.float32) / np.float32(255)
+    A = Xf.astype(np.float64) - Xf.astype(np.float64).mean(axis=1, keepdims=True)
+    s = np.linalg.svd(A, compute_uv=False)                      # LAPACK reference
+    quick = analyze([tmp_path], AnalysisOptions(rank=30, oversample=2, max_passes=1))
+    d = quick.decomposition
+    assert np.all(np.abs(d.singular_values - s[:30]) <= d.singular_value_error)
+    assert d.metadata["refinement"]["passes"] == 1
+    assert d.unconverged_modes(1e-4).size > 0          # it says the tail is not converged
+    assert d.metadata["refinement"]["unconverged"] == [int(i) + 1 for i in
+                                                       d.unconverged_modes(1e-4)]
+    full = analyze([tmp_path], AnalysisOptions(rank=30, oversample=30, max_passes=30))
+    e = full.decomposition
+    assert np.all(np.abs(e.singular_values - s[:30]) <= e.singular_value_error)
+    np.testing.assert_allclose(e.singular_values, s[:30], rtol=1e-3)   # no gap: 1e-3
+
+
+def test_certificate_formula_on_a_known_matrix():
+    # a diagonal matrix: the Ritz vector e1 + t e2 has a known residual; the true singular
+    # values are the diagonal (no outside reference needed: exact arithmetic by hand)
+    sv = certify(np.array([3.0, 0.0]), np.array([0.3, 0.04]), rounding=0.01)
+    assert sv.tolist() == pytest.approx([0.1 + 0.01, 0.2 + 0.01])
+    rng = np.random.default_rng(0)
+    X = rng.standard_normal((30, 12)).astype(np.float32)
+    mean = X.mean(axis=1)
+    A = X.astype(np.float64) - mean[:, None]
+    u = np.linalg.qr(rng.standard_normal((30, 5)))[0]
+    acc = PassAccumulator(u, mean, 12)
+    acc.add(X[:, :7])
+    acc.add(X[:, 7:])
+    step = rayleigh_ritz_step(acc)
+    s = np.linalg.svd(A, compute_uv=False)                       # LAPACK
+    # each Ritz value is below its singular value (Cauchy interlacing) and the bound holds
+    assert np.all(step.singular_values <= s[:5] * (1 + 1e-6))
+    lam = s ** 2
+    for i in range(5):
+        theta = step.singular_values[i] ** 2
+        nearest = np.min(np.abs(lam - theta))
+        assert nearest <= step.error[i] * step.singular_values[i] * (1 + 1e-6)
