@@ -11,11 +11,10 @@ and :attr:`IngestPane.cancelRequested` and the main window runs the worker.
 from __future__ import annotations
 
 import os
-import threading
 from collections import Counter
-from typing import Any, Iterable, Sequence
+from typing import Any, Callable, Iterable, Sequence
 
-from PySide6.QtCore import QObject, QThreadPool, QTimer, Qt, Signal, Slot
+from PySide6.QtCore import QTimer, Qt, Signal, Slot
 from PySide6.QtWidgets import (
     QAbstractItemView,
     QCheckBox,
@@ -37,10 +36,9 @@ from PySide6.QtWidgets import (
     QWidget,
 )
 
-from modescope.core.errors import AnalysisCancelled, ModescopeError
-
 from modescope.app.words import counted
 from modescope.app.desktop.settings import StoredOptions
+from modescope.app.desktop.workers.background import BackgroundRunner
 
 __all__ = ["IngestPane", "make_analysis_options", "scan_collection", "describe_source_set",
            "IMAGE_FILE_FILTER", "MODEL_FILE_FILTER"]
@@ -68,26 +66,32 @@ def make_analysis_options(stored: StoredOptions, **extra: Any):
 
 
 def scan_collection(sources: Sequence[str], stored: StoredOptions,
-                    cancel=None):
+                    cancel: Callable[[], bool] | None = None):
     """Scan ``sources`` with the pane's options and return a SourceSet.
 
-    Uses ``pipeline.scan``; ``cancel`` is only honoured when the pipeline is not available
-    (then :func:`modescope.core.sources.scan.scan_sources` is used directly).
+    Parameters
+    ----------
+    sources : sequence of str
+        Folders and files.
+    stored : StoredOptions
+        Colour, subfolders and resizing are used.
+    cancel : callable() -> bool, optional
+        Checked before each file (``pipeline.scan``); True stops the scan.
+
+    Returns
+    -------
+    SourceSet
 
     Raises
     ------
     NoUsableImagesError
         If nothing usable was found.
+    AnalysisCancelled
+        If ``cancel()`` returned True.
     """
-    try:
-        from modescope.core.engine import pipeline
-    except ImportError:  # pragma: no cover - only while core.pipeline is being written
-        from modescope.core.sources.scan import scan_sources
+    from modescope.core.engine import pipeline
 
-        return scan_sources(list(sources), recursive=bool(stored.recursive),
-                            color=str(stored.color),
-                            resize_mismatched=bool(stored.resize_mismatched), cancel=cancel)
-    return pipeline.scan(list(sources), make_analysis_options(stored))
+    return pipeline.scan(list(sources), make_analysis_options(stored), cancel=cancel)
 
 
 def describe_source_set(source_set, downscale: int = 1) -> str:
@@ -114,11 +118,6 @@ def describe_source_set(source_set, downscale: int = 1) -> str:
     if skipped:
         text += f"; {skipped} skipped"
     return text
-
-
-class _ScanSignals(QObject):
-    done = Signal(int, object)     # generation, SourceSet
-    error = Signal(int, str)       # generation, message
 
 
 class IngestPane(QWidget):
@@ -152,13 +151,11 @@ class IngestPane(QWidget):
         self.setAcceptDrops(True)
         self._running = False
         self._dialog_dir = ""
-        self._generation = 0
-        self._scan_cancel = threading.Event()
-        self._scan_signals = _ScanSignals(self)
-        self._scan_signals.done.connect(self._on_scan_done)
-        self._scan_signals.error.connect(self._on_scan_error)
-        self._pool = QThreadPool(self)
-        self._pool.setMaxThreadCount(1)
+        # one scan at a time; a newer scan (or stop_scan) cancels the older one and its result
+        # is never forwarded
+        self._scans = BackgroundRunner(self, threads=1, task="The scan")
+        self._scans.finished.connect(self._on_scan_done)
+        self._scans.failed.connect(self._on_scan_error)
         self.source_set = None
         self._scanned_key = None     # (sources, options) the current source_set was made for
         self._pending_key = None
@@ -379,16 +376,15 @@ class IngestPane(QWidget):
         self._scan_timer.start()
 
     def is_scanning(self) -> bool:
-        """Return True while a scan is queued or running."""
-        return self._scan_timer.isActive() or self._pool.activeThreadCount() > 0
+        """Return True while a scan is queued or running (a stopped one winding down included)."""
+        return self._scan_timer.isActive() or self._scans.is_busy()
 
     @Slot()
     def rescan(self) -> None:
-        """Scan the sources now, on the background thread (an older scan's result is dropped)."""
+        """Scan the sources now, in the background (an older scan is stopped, its result
+        dropped)."""
         self._scan_timer.stop()
-        self._generation += 1
-        self._scan_cancel.set()
-        self._scan_cancel = threading.Event()
+        self._scans.abandon()
         sources = self.sources()
         if not sources:
             self.source_set = None
@@ -398,23 +394,9 @@ class IngestPane(QWidget):
             self._update_buttons()
             return
         self.summary_label.setText("Looking at the files…")
-        generation, stored, cancel = self._generation, self.options(), self._scan_cancel
+        stored = self.options()
         self._pending_key = (tuple(sources), stored)
-        signals = self._scan_signals
-
-        def job() -> None:
-            try:
-                result = scan_collection(sources, stored, cancel=cancel.is_set)
-            except AnalysisCancelled:
-                return
-            except (ModescopeError, OSError) as exc:
-                signals.error.emit(generation, str(exc))
-            except Exception as exc:  # noqa: BLE001 - shown to the user, never a traceback
-                signals.error.emit(generation, f"the scan failed ({type(exc).__name__}: {exc})")
-            else:
-                signals.done.emit(generation, result)
-
-        self._pool.start(job)
+        self._scans.start(lambda ctx: scan_collection(sources, stored, cancel=ctx.cancelled))
 
     def scanned_for(self, sources, options):
         """Return the finished scan of exactly these sources and options, or None."""
@@ -435,8 +417,7 @@ class IngestPane(QWidget):
             empty pane's invitation) until :meth:`adopt` shows the run's scan.
         """
         self._scan_timer.stop()
-        self._generation += 1
-        self._scan_cancel.set()
+        self._scans.abandon()
         if run_scans:
             self.source_set = None
             self._scanned_key = None
@@ -470,10 +451,8 @@ class IngestPane(QWidget):
         self._refresh_summary()
         self._update_buttons()
 
-    @Slot(int, object)
-    def _on_scan_done(self, generation: int, source_set) -> None:
-        if generation != self._generation:
-            return
+    @Slot(object)
+    def _on_scan_done(self, source_set) -> None:
         self.source_set = source_set
         self._scanned_key = self._pending_key
         self.scan_message = ""
@@ -482,10 +461,8 @@ class IngestPane(QWidget):
         self._update_buttons()
         self.scanFinished.emit(source_set)
 
-    @Slot(int, str)
-    def _on_scan_error(self, generation: int, message: str) -> None:
-        if generation != self._generation:
-            return
+    @Slot(str)
+    def _on_scan_error(self, message: str) -> None:
         self.source_set = None
         self.scan_message = message
         self.summary_label.setText(f"No usable image: {message}")
@@ -523,11 +500,10 @@ class IngestPane(QWidget):
         return self.problem_table.rowCount()
 
     def shutdown(self, timeout_ms: int = 3000) -> bool:
-        """Stop any scan and wait for the scan thread at most ``timeout_ms``."""
+        """Stop any scan and wait for it at most ``timeout_ms``; return True when it stopped."""
         self._scan_timer.stop()
-        self._generation += 1
-        self._scan_cancel.set()
-        return bool(self._pool.waitForDone(int(timeout_ms)))
+        self._scans.abandon()
+        return self._scans.wait(timeout_ms)
 
     # ----- running -----------------------------------------------------------------------------
     def set_running(self, running: bool) -> None:
