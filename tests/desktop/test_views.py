@@ -615,3 +615,19 @@ def test_views_follow_rank_changes_and_clear(qtbot, state, gray):
     assert w.combo_a.count() == 0 and len(w.bars.opts["height"]) == 0
     assert lv.count.text() == "0 images"
     lv.close()
+
+
+def test_spectrum_summary_states_the_certificate(qtbot, state, gray):
+    # the Singular values view says whether every mode is certified (the model's bounds)
+    sp = SpectrumView(state)
+    qtbot.addWidget(sp)
+    k = gray.rank
+    certified = gray.replace(exact=True, residual=np.zeros(gray.n_images),
+                             singular_value_error=np.full(k, 1e-9))
+    state.set_decomposition(certified)
+    qtbot.waitUntil(lambda: "certified" in sp.summary.text(), timeout=2000)
+    assert "exact: every singular value is certified" in sp.summary.toolTip()
+    loose = certified.replace(singular_value_error=np.r_[np.full(k - 2, 1e-9), 1.0, 1.0])
+    state.set_decomposition(loose)
+    qtbot.waitUntil(lambda: "2 modes not converged" in sp.summary.text(), timeout=2000)
+    assert f"modes {k - 1}-{k}" in sp.summary.toolTip()

@@ -17,6 +17,7 @@ from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QDoubleSpinBox, QHBoxLayout, QLabel, QPushButton, QVBoxLayout,
                                QWidget)
 
+from modescope.core.review.accuracy import describe_accuracy, model_tolerance
 from modescope.core.review.rank import energy_rank, gavish_donoho
 
 from modescope.app.desktop.imaging import NO_VARIATION
@@ -266,8 +267,13 @@ class SpectrumView(ThrottledRedraw, QWidget):
         cum = d.cumulative_energy()
         kept = cum[r - 1] if r >= 1 else 0.0
         kind = "final" if d.exact else "snapshot during the run"
+        if d.exact and d.singular_value_error is not None:
+            bad = d.unconverged_modes(model_tolerance(d)).size
+            kind = ("final, certified" if bad == 0 else
+                    f"final, {counted(bad, 'mode')} not converged")
         self.summary.setText(f"Rank r = {r} of {d.rank}: {100 * kept:.1f} % of the energy "
                              f"({counted(d.n_images, 'image')}, {kind})")
+        self.summary.setToolTip("Singular values: " + describe_accuracy(d))
 
     @Slot()
     def _update_suggestions(self, *_) -> None:
