@@ -171,9 +171,47 @@ def test_partial_result_waits_and_new_analysis_clears(qtbot, view, state, dec):
 
 def test_result_of_a_replaced_analysis_is_dropped(qtbot, view, state, dec, make_decomposition):
     other = make_decomposition(np.random.default_rng(2).random((N, 10, 12, 1)), K)
+    reports = []
+    view.reportReady.connect(reports.append)
     assert view.find()
+    assert view.is_running() and not view.find_button.isEnabled()
     state.set_decomposition(other)          # before the search result arrives
-    qtbot.waitUntil(lambda: not view.is_running(), timeout=10000)
-    qtbot.wait(3 * view.POLL_MS)
+    assert not view.is_running()            # the old search no longer counts
+    assert view.shutdown() is True          # and has ended in its thread
+    qtbot.wait(50)                          # its queued result, if any, is dropped
+    assert reports == []
     assert view.report is None and view.tree.topLevelItemCount() == 0
-    assert view.shutdown() is True
+    # a search of the new analysis works
+    report = _find(qtbot, view)
+    assert view.report is report and reports == [report]
+
+
+def test_search_failure_is_a_message(qtbot, view, monkeypatch):
+    import modescope.app.desktop.views.duplicates as dup
+
+    def broken(decomposition, tolerance, rank):
+        raise MemoryError()
+
+    monkeypatch.setattr(dup, "find_duplicates", broken)
+    with qtbot.waitSignal(view._search.failed, timeout=10000):
+        assert view.find()
+    assert view.status.text() == ("Near-duplicates could not be found: there is not enough "
+                                  "memory.")
+    assert view.report is None and view.find_button.isEnabled()
+
+
+def test_search_runs_off_the_gui_thread(qtbot, view, monkeypatch):
+    import threading
+
+    import modescope.app.desktop.views.duplicates as dup
+
+    where = []
+    real = dup.find_duplicates
+
+    def recording(*args):
+        where.append(threading.current_thread() is threading.main_thread())
+        return real(*args)
+
+    monkeypatch.setattr(dup, "find_duplicates", recording)
+    _find(qtbot, view)
+    assert where == [False]

@@ -14,11 +14,10 @@ display; ``state.selected`` stays 0-based.
 
 from __future__ import annotations
 
-import concurrent.futures
 import os
 
 import numpy as np
-from PySide6.QtCore import Qt, QTimer, Signal, Slot
+from PySide6.QtCore import Qt, Signal, Slot
 from PySide6.QtGui import QAction, QColor
 from PySide6.QtWidgets import (QAbstractItemView, QDoubleSpinBox, QHBoxLayout, QHeaderView,
                                QLabel, QMessageBox, QPushButton, QToolButton, QTreeWidget,
@@ -29,6 +28,7 @@ from modescope.core.review.duplicates import DuplicateReport, find_duplicates
 
 from modescope.app.words import counted
 from modescope.app.desktop.state import AppState
+from modescope.app.desktop.workers.background import BackgroundRunner, plain_message
 
 __all__ = ["DuplicatesView", "DEFAULT_TOLERANCE", "SEARCH_RANK"]
 
@@ -57,6 +57,15 @@ def _search_and_group(decomposition, tolerance: float, rank: int) -> DuplicateRe
     return find_duplicates(decomposition, tolerance, rank)
 
 
+_TASK = "The near-duplicate search"
+
+
+def _describe_error(exc: BaseException) -> str:
+    if isinstance(exc, MemoryError):
+        return "Near-duplicates could not be found: there is not enough memory."
+    return f"Near-duplicates could not be found: {plain_message(exc, _TASK)}"
+
+
 class DuplicatesView(QWidget):
     """Tolerance, Find, the tree of near-duplicate groups and the trimming action.
 
@@ -83,8 +92,6 @@ class DuplicatesView(QWidget):
 
     reportReady = Signal(object)
 
-    POLL_MS = 30
-
     def __init__(self, state: AppState, parent: QWidget | None = None):
         super().__init__(parent)
         if not isinstance(state, AppState):
@@ -94,10 +101,9 @@ class DuplicatesView(QWidget):
         self.last_message = ""
         self.message_box: QMessageBox | None = None
         self._syncing = False
-        self._executor: concurrent.futures.ThreadPoolExecutor | None = None
-        self._future: concurrent.futures.Future | None = None
-        self._job = 0
-        self._job_decomposition = None
+        self._search = BackgroundRunner(self, threads=1, task=_TASK,
+                                        describe_error=_describe_error)
+        self._job_decomposition = None      # what the running search looks at
         self._items: dict[int, QTreeWidgetItem] = {}
 
         # ----- actions ---------------------------------------------------------------------
@@ -176,11 +182,9 @@ class DuplicatesView(QWidget):
         lay.addLayout(bottom)
         lay.addWidget(self.note)
 
-        self._poll = QTimer(self)
-        self._poll.setInterval(self.POLL_MS)
-        self._poll.timeout.connect(self._check_job)
-
         # all connections in one place
+        self._search.finished.connect(self._on_search_done)
+        self._search.failed.connect(self._on_search_failed)
         state.decompositionChanged.connect(self._on_decomposition)
         state.marksChanged.connect(self._on_marks)
         state.selectedChanged.connect(self._on_state_selected)
@@ -192,26 +196,19 @@ class DuplicatesView(QWidget):
     # ----- lifetime ----------------------------------------------------------------------------
     def is_running(self) -> bool:
         """True while a search is under way."""
-        return self._future is not None and not self._future.done()
+        return self._search.is_running()
 
     def shutdown(self, timeout_ms: int = 5000) -> bool:
-        """Wait (at most ``timeout_ms``) for a running search and stop the worker thread.
+        """Drop a running search's result and wait for it at most ``timeout_ms``.
 
         Returns
         -------
         bool
             True when no search is left running.
         """
-        self._poll.stop()
-        future, self._future = self._future, None
-        done = True
-        if future is not None:
-            finished, _ = concurrent.futures.wait([future], timeout=timeout_ms / 1000.0)
-            done = bool(finished)
-        if self._executor is not None:
-            self._executor.shutdown(wait=done)
-            self._executor = None
-        return done
+        self._search.abandon()
+        self._job_decomposition = None
+        return self._search.wait(timeout_ms)
 
     def closeEvent(self, event) -> None:  # noqa: N802 - Qt name
         self.shutdown()
@@ -283,38 +280,24 @@ class DuplicatesView(QWidget):
         d = self.state.decomposition
         tolerance = float(self.tolerance_spin.value())
         rank = min(SEARCH_RANK, d.rank)
-        if self._executor is None:
-            self._executor = concurrent.futures.ThreadPoolExecutor(
-                max_workers=1, thread_name_prefix="modescope-duplicates")
-        self._job += 1
         self._job_decomposition = d
-        self._future = self._executor.submit(_search_and_group, d, tolerance, rank)
+        self._search.start(lambda ctx: _search_and_group(d, tolerance, rank))
         self.status.setText(f"Looking for near-duplicates among {d.n_images:,} images…")
-        self._poll.start()
         self._update_actions()
         return True
 
-    @Slot()
-    def _check_job(self) -> None:
-        future = self._future
-        if future is None:
-            self._poll.stop()
-            return
-        if not future.done():
-            return
-        self._poll.stop()
-        self._future = None
-        d = self._job_decomposition
+    @Slot(str)
+    def _on_search_failed(self, message: str) -> None:
         self._job_decomposition = None
+        self.status.setText(message)
+        self._update_actions()
+
+    @Slot(object)
+    def _on_search_done(self, report: DuplicateReport) -> None:
+        d, self._job_decomposition = self._job_decomposition, None
         current = self.state.decomposition
         if current is None or d is None or current.weights is not d.weights:
             self._update_actions()       # the analysis changed meanwhile: drop the result
-            return
-        try:
-            report = future.result()
-        except (TypeError, ValueError, MemoryError) as exc:
-            self.status.setText(f"Near-duplicates could not be found: {exc}")
-            self._update_actions()
             return
         self.report = report
         self._fill_tree()
@@ -382,6 +365,10 @@ class DuplicatesView(QWidget):
     # ----- state -> view ---------------------------------------------------------------------
     @Slot(object)
     def _on_decomposition(self, d) -> None:
+        searched = self._job_decomposition
+        if searched is not None and (d is None or d.weights is not searched.weights):
+            self._search.abandon()           # its groups would be of another analysis
+            self._job_decomposition = None
         old = self.report
         self.report = None
         if old is not None or self.tree.topLevelItemCount():
