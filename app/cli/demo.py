@@ -13,7 +13,8 @@ import argparse
 import re
 import sys
 
-from modescope.core.demo import tray as demo
+from modescope.core import demo
+from modescope.core.output.atomic import DestinationError
 from modescope.app.cli.common import CountProgress, run_subcommand
 
 __all__ = ["register", "run", "main"]
@@ -91,6 +92,11 @@ def run(args: argparse.Namespace) -> int:
             args.out_dir, args.frames, size=tuple(args.size), seed=args.seed, fmt=args.fmt,
             quality=args.quality, progress=progress, workers=args.workers,
             overwrite=args.overwrite)
+    except DestinationError as exc:     # before ValueError: it is one, but not a usage error
+        if progress.tty:
+            print(file=sys.stderr)
+        print(f"modescope demo: error: could not write the collection: {exc}", file=sys.stderr)
+        return 1
     except (TypeError, ValueError) as exc:
         print(f"modescope demo: error: {exc}", file=sys.stderr)
         return 2

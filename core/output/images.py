@@ -15,7 +15,8 @@ from modescope.core.output.colormap import signed_to_rgb
 from modescope.core.output.metrics import quantize
 from modescope.core.validation import check_float, check_instance, check_int
 
-__all__ = ["source_size", "upsample_image", "preview_image", "basis_image_rgb", "mean_image"]
+__all__ = ["source_size", "upsample_image", "preview_image", "signed_image_rgb", "basis_image_rgb",
+           "mean_image"]
 
 
 def source_size(decomposition: Decomposition) -> tuple[int, int]:
@@ -113,14 +114,53 @@ def preview_image(decomposition: Decomposition, index: int, rank: int, *,
     return img
 
 
+def signed_image_rgb(image, limit: float) -> np.ndarray:
+    """Return a signed image (a basis image) as sRGB colours, ``limit`` shown at both ends.
+
+    This is the one colour rule of basis images, used by the exported files and the desktop
+    gallery alike. Gray: the diverging map of :mod:`modescope.core.output.colormap`, ``-limit``
+    .. 0 .. ``+limit``. RGB: each channel shown as ``0.5 + value / (2 * limit)``, clipped to
+    [0, 1] and quantised ``rint(x * 255)`` (mid-gray 128 is zero). A limit of 0 gives the
+    middle colour everywhere. The rule works pixel by pixel, so a subsampled image gives the
+    subsampled colours.
+
+    Parameters
+    ----------
+    image : ndarray, shape (rows, cols, 1) or (rows, cols, 3)
+        Finite signed values.
+    limit : float
+        Value shown at both ends, finite and >= 0.
+
+    Returns
+    -------
+    ndarray, shape (rows, cols, 3), uint8
+
+    Raises
+    ------
+    TypeError
+        If ``limit`` is not a number.
+    ValueError
+        If ``image`` has another shape or ``limit`` is negative, infinite or NaN.
+    """
+    img = np.asarray(image, dtype=np.float64)
+    if img.ndim != 3 or img.shape[2] not in (1, 3):
+        raise ValueError(f"image must have shape (rows, cols, 1 or 3), got {img.shape}")
+    limit = check_float("limit", limit, low=0.0)
+    if math.isinf(limit):
+        raise ValueError(f"limit must be finite, got {limit}")
+    if img.shape[2] == 1:
+        return signed_to_rgb(img[:, :, 0], limit)
+    if limit == 0.0:
+        return np.full(img.shape, 128, dtype=np.uint8)
+    return quantize(0.5 + img / (2.0 * limit), 8)
+
+
 def basis_image_rgb(decomposition: Decomposition, index: int,
                     limit: float | None = None) -> tuple[np.ndarray, float]:
     """Return basis image ``index`` (0-based) as sRGB colours, and the limit used.
 
-    Gray: the diverging map of :mod:`modescope.core.output.colormap`, ``-limit`` .. 0 ..
-    ``+limit``. RGB: each channel shown as ``0.5 + value / (2 * limit)``, clipped to [0, 1] and
-    quantised ``rint(x * 255)`` (mid-gray 128 is zero). A limit of 0 (a basis image of zeros)
-    gives the middle colour everywhere.
+    The colours follow :func:`signed_image_rgb`: the diverging map for gray, ``0.5 + value /
+    (2 * limit)`` per channel for RGB.
 
     Parameters
     ----------
@@ -129,7 +169,7 @@ def basis_image_rgb(decomposition: Decomposition, index: int,
         Basis image, ``0 <= index < decomposition.rank``.
     limit : float, optional
         Value shown at both ends, >= 0. Default: the largest absolute value of this basis
-        image (over its three channels for RGB).
+        image (over its three channels for RGB); 0 for a basis image of zeros.
 
     Returns
     -------
@@ -148,15 +188,8 @@ def basis_image_rgb(decomposition: Decomposition, index: int,
     img = d.to_image(d.basis[:, j]).astype(np.float64)
     if limit is None:
         limit = float(np.max(np.abs(img))) if img.size else 0.0
-    else:
-        limit = check_float("limit", limit, low=0.0)
-        if math.isinf(limit):
-            raise ValueError(f"limit must be finite, got {limit}")
-    if img.shape[2] == 1:
-        return signed_to_rgb(img[:, :, 0], limit), limit
-    if limit == 0.0:
-        return np.full(img.shape, 128, dtype=np.uint8), 0.0
-    return quantize(0.5 + img / (2.0 * limit), 8), limit
+    rgb = signed_image_rgb(img, limit)
+    return rgb, float(limit)
 
 
 def mean_image(decomposition: Decomposition) -> np.ndarray:

@@ -5,7 +5,7 @@ Not collected by the test run (file name does not start with ``test_``). Run it 
 
     .venv/bin/python tests/benchmarks/bench_foundation.py [--quick] [--workdir DIR]
 
-It writes two generated collections (germination-tray frames from ``modescope.core.demo.tray``) once
+It writes two generated collections (germination-tray frames from ``modescope.core.demo``) once
 into the work folder (default: a ``modescope-bench`` folder in the system temp folder):
 5,000 gray 128x128 PNG and 2,000 RGB 256x256 JPEG (``--quick``: 1,000 and 400). Every
 measurement runs in its own child process and reports that process's own peak resident memory
@@ -39,7 +39,7 @@ K = 50
 def _write_one(args):
     folder, index, n, size, color, fmt = args
     from PIL import Image
-    from modescope.core.demo.tray import render_frame
+    from modescope.core.demo import render_frame
     rgb = render_frame(index, n_frames=n, size=size, seed=11)
     img = Image.fromarray(rgb)
     if color == "gray":

@@ -91,7 +91,7 @@ def first_partial(n_images: int, workdir: Path):
     from PySide6.QtWidgets import QApplication
     from modescope.app.desktop.main_window import MainWindow
     from modescope.app.desktop.settings import Settings
-    from modescope.core.demo.tray import write_collection
+    from modescope.core.demo import write_collection
     from PySide6.QtCore import QSettings
 
     folder = workdir / f"tray_{n_images}"

@@ -39,7 +39,7 @@ def ini_settings(tmp_path):
 @pytest.fixture(scope="session")
 def small_collection(tmp_path_factory):
     """40 demo frames of 48x64 pixels, PNG (lossless), written once per session."""
-    from modescope.core.demo import tray as demo
+    from modescope.core import demo
 
     folder = tmp_path_factory.mktemp("tray")
     demo.write_collection(folder, 40, size=(48, 64), seed=3, fmt="png")

@@ -527,7 +527,7 @@ def test_refit_without_excluded_runs_on_the_rest(qtbot, window, small_collection
 def test_refit_leaves_out_single_pages_of_a_multi_page_file(qtbot, window, tmp_path,
                                                             monkeypatch):
     from PIL import Image
-    from modescope.core.demo import tray as demo
+    from modescope.core import demo
     w = window
     folder = tmp_path / "mixed"
     demo.write_collection(folder, 12, size=(24, 32), seed=5, fmt="png")

@@ -22,7 +22,8 @@ from PySide6.QtCore import (QAbstractListModel, QItemSelectionModel, QModelIndex
 from PySide6.QtGui import QBrush, QColor, QFont, QIcon, QLinearGradient, QPainter, QPixmap
 from PySide6.QtWidgets import QLabel, QListView, QSizePolicy, QVBoxLayout, QWidget
 
-from modescope.core.output.colormap import DIVERGING_LUT, signed_to_rgb
+from modescope.core.output.colormap import DIVERGING_LUT
+from modescope.core.output.images import basis_image_rgb, signed_image_rgb
 from modescope.core.decomposition import Decomposition
 
 from modescope.app.words import counted
@@ -54,20 +55,14 @@ def basis_tile_rgb(decomposition: Decomposition, mode: int, limit: float | None 
                    longest: int = 10_000) -> np.ndarray:
     """Return basis image ``mode`` as uint8 RGB (rows, cols, 3) for display.
 
-    Gray: the diverging colour table, ``-limit`` .. 0 .. ``+limit``. RGB: per channel
-    ``0.5 + value / (2 limit)`` clipped to [0, 1] (mid-gray is zero). ``limit`` defaults to the
-    largest absolute value of the basis image.
+    The colours are core's (:func:`~modescope.core.output.images.basis_image_rgb`), so a tile
+    shows exactly the pixels of the exported basis PNG. ``limit`` defaults to the largest
+    absolute value of the basis image; large images keep every n-th pixel.
     """
-    column = decomposition.basis[:, mode]
     if limit is None:
-        limit = float(np.max(np.abs(column))) if column.size else 0.0
-    img = _subsample(decomposition.to_image(column), longest)
-    if img.shape[2] == 1:
-        return signed_to_rgb(img[:, :, 0], limit)
-    if limit <= 0:
-        return np.full(img.shape, 128, dtype=np.uint8)
-    a = np.clip(0.5 + img / (2.0 * limit), 0.0, 1.0)
-    return (a * 255.0 + 0.5).astype(np.uint8)
+        return _subsample(basis_image_rgb(decomposition, mode)[0], longest)
+    return signed_image_rgb(_subsample(decomposition.to_image(decomposition.basis[:, mode]),
+                                       longest), limit)
 
 
 def share_text(share: float) -> str:

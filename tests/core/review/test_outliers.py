@@ -293,7 +293,7 @@ def test_planted_anomalies_rank_first_in_synthetic_images():
 
 
 def test_planted_problems_of_demo_collection_rank_first(tmp_path):
-    from modescope.core.demo import tray as demo
+    from modescope.core import demo
     from modescope.core.engine import pipeline
     demo.write_collection(tmp_path, 120, size=(48, 64), fmt="png")
     planted = {p.index for p in demo.planted_problems(120)}

@@ -1,8 +1,10 @@
-"""Tests of the demo-collection generator (modescope.core.demo.tray) and its CLI subcommand."""
+"""Tests of the demo-collection generator (modescope.core.demo) and its CLI subcommand."""
 
 from __future__ import annotations
 
+import errno
 import re
+import stat
 from pathlib import Path
 
 import imageio.v3 as iio
@@ -14,7 +16,9 @@ from sklearn.decomposition import PCA
 
 from modescope.app.cli import demo as cli_demo
 
-from modescope.core.demo import tray as demo
+from modescope.core import demo
+from modescope.core.output import atomic
+from modescope.core.output.atomic import DestinationError
 
 SAMPLE_DIR = Path(__file__).resolve().parents[3] / "sample_images"
 SMALL = (32, 48)
@@ -272,6 +276,59 @@ def test_write_collection_failure_leaves_no_partial_files(tmp_path):
         demo.write_collection(tmp_path / "x", 24, size=SMALL, progress=stop)
     names = sorted(p.name for p in (tmp_path / "x").iterdir())
     assert names == [demo.frame_name(i, 24) for i in range(3)]
+
+
+@pytest.mark.parametrize("workers", [1, 2])
+def test_write_collection_disk_full_leaves_complete_frames_only(tmp_path, monkeypatch, workers):
+    real_open = atomic._open_temp
+    full_from = demo.frame_name(4, 24, fmt="png")
+
+    class FullDisk:
+        """Writes a little, then fails as a full disk does."""
+
+        def __init__(self, f):
+            self.f = f
+
+        def write(self, data):
+            self.f.write(bytes(data)[:10])
+            raise OSError(errno.ENOSPC, "No space left on device")
+
+        def __getattr__(self, name):
+            return getattr(self.f, name)
+
+    def open_temp(target, mode, encoding, newline):
+        f, tmp = real_open(target, mode, encoding, newline)
+        return (FullDisk(f) if target.name >= full_from else f), tmp
+
+    monkeypatch.setattr(atomic, "_open_temp", open_temp)
+    with pytest.raises(DestinationError, match="full") as info:
+        demo.write_collection(tmp_path / "x", 24, size=SMALL, fmt="png", workers=workers)
+    assert isinstance(info.value, ValueError) and info.value.path.parent == tmp_path / "x"
+    names = sorted(p.name for p in (tmp_path / "x").iterdir())     # no temporary file left
+    assert all(n < full_from for n in names) and len(names) <= 4
+    for n in names:                                                 # complete frames only
+        i = [demo.frame_name(j, 24, fmt="png") for j in range(24)].index(n)
+        np.testing.assert_array_equal(iio.imread(tmp_path / "x" / n),
+                                      demo.render_frame(i, n_frames=24, size=SMALL))
+
+
+@pytest.mark.skipif(not Path("/proc/self/status").exists(), reason="reads the umask in /proc")
+def test_written_frames_get_the_mode_of_a_plain_new_file(tmp_path):
+    status = Path("/proc/self/status").read_text(encoding="ascii")
+    umask = int(next(line.split()[1] for line in status.splitlines()
+                     if line.startswith("Umask:")), 8)
+    paths = demo.write_collection(tmp_path / "m", 3, size=SMALL)
+    assert {stat.S_IMODE(p.stat().st_mode) for p in paths} == {0o666 & ~umask}
+
+
+def test_package_exports_the_public_api():
+    import modescope.core.demo.render as render_module
+    assert sorted(demo.__all__) == sorted(
+        ["PlantedProblem", "PROBLEM_KINDS", "RUN_HOURS", "frame_hours", "frame_name",
+         "planted_problems", "render_frame", "write_collection"])
+    assert demo.render_frame is render_module.render_frame
+    assert demo.RUN_HOURS == 240 and demo.PROBLEM_KINDS == ("glove", "fog", "overexposed",
+                                                           "tray_out")
 
 
 @pytest.mark.parametrize("workers", [1, 2])
