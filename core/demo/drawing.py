@@ -35,7 +35,7 @@ def smooth_noise(rng: np.random.Generator, shape, radius: int) -> np.ndarray:
 
 
 def rounded_box_sdf(ly: np.ndarray, lx: np.ndarray, half_h: float, half_w: float,
-                     radius: float) -> np.ndarray:
+                    radius: float) -> np.ndarray:
     """Signed distance (pixels) to a rounded rectangle centred at the origin."""
     qy = np.abs(ly) - half_h + radius
     qx = np.abs(lx) - half_w + radius

@@ -111,8 +111,8 @@ def select_images(decomposition: Decomposition, images="all", *, rank: int | Non
     decomposition : Decomposition
     images : "all", "flagged", sequence of int, or bool array of shape (n_images,)
         "flagged" takes the images flagged by
-        :func:`modescope.core.review.outliers.score_table` at ``rank`` and ``level``. Integer indices
-        are 0-based columns; duplicates are dropped, order kept.
+        :func:`modescope.core.review.outliers.score_table` at ``rank`` and ``level``. Integer
+        indices are 0-based columns; duplicates are dropped, order kept.
     rank : int, optional
         Rank for "flagged" (default: the model's rank).
     level : float

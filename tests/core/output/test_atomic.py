@@ -72,25 +72,6 @@ def test_destination_error_messages(tmp_path):
     assert isinstance(full, ValueError)
 
 
-# ---------------------------------------------------------------------------------------------
-# end to end with the real pipeline, and the command line
-# ---------------------------------------------------------------------------------------------
-@pytest.fixture
-def analysed(tmp_path):
-    from modescope.core.output.model_file import save_model
-    from modescope.core.engine.pipeline import AnalysisOptions, analyze
-    X = make_data(rows=10, cols=12, m=12, seed=4)
-    src = tmp_path / "src"
-    src.mkdir()
-    for i in range(X.shape[1]):
-        Image.fromarray(np.rint(X[:, i].reshape(10, 12) * 255).astype(np.uint8)).save(
-            src / f"f{i:02d}.png")
-    result = analyze([src], AnalysisOptions(rank=4, workers=1, oversample=4))
-    model = tmp_path / "model.npz"
-    save_model(model, result.decomposition)
-    return result.decomposition, model, src
-
-
 @posix_only
 @pytest.mark.parametrize("mask", [0o022, 0o077, 0o002])
 def test_written_file_mode_follows_the_umask(tmp_path, mask):

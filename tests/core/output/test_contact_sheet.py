@@ -32,11 +32,3 @@ def test_sheet_file_written(tmp_path, gray):
     img = Image.open(rep.written[0])
     assert img.format == "PNG" and img.mode == "RGB"
     assert np.array_equal(np.asarray(img), np.asarray(contact_sheet(d, 4).image))
-
-
-# ---------------------------------------------------------------------------------------------
-# tables
-# ---------------------------------------------------------------------------------------------
-def read_csv(path):
-    with open(path, newline="", encoding="utf-8") as fh:
-        return list(csv.reader(fh))
