@@ -22,6 +22,7 @@ from pathlib import Path
 from typing import IO, Iterator
 
 from modescope.core.errors import ModescopeError
+from modescope.core.validation import check_path
 
 __all__ = ["DestinationError", "atomic_writer", "atomic_write_bytes", "check_destination",
            "check_folder_writable", "destination_error", "is_temp_name"]
@@ -49,16 +50,6 @@ class DestinationError(ModescopeError):
 def is_temp_name(name: str) -> bool:
     """Return True if ``name`` (a bare file name) looks like one of our temporary files."""
     return name.startswith(".") and name.endswith(_TEMP_SUFFIX)
-
-
-def _as_path(name: str, value) -> Path:
-    if isinstance(value, (str, os.PathLike)) and not isinstance(value, bytes):
-        text = os.fspath(value)
-        if isinstance(text, str) and text:
-            return Path(text)
-        if isinstance(text, str):
-            raise ValueError(f"{name} must be a non-empty path, got an empty string")
-    raise TypeError(f"{name} must be a str or os.PathLike path, got {type(value).__name__}")
 
 
 def destination_error(path, exc: OSError, action: str = "write") -> DestinationError:
@@ -118,7 +109,7 @@ def check_destination(path, *, overwrite: bool = False) -> Path:
         If the folder is missing or not a folder, ``path`` is a folder, or ``path`` exists and
         ``overwrite`` is False.
     """
-    target = _as_path("path", path)
+    target = check_path("path", path)
     folder = target.parent
     if not folder.exists():
         raise DestinationError(f"cannot write {target}: the folder {folder} does not exist",
@@ -179,7 +170,7 @@ def check_folder_writable(folder) -> Path:
     DestinationError
         If the folder is missing, not a folder, or a file cannot be created there.
     """
-    folder = _as_path("folder", folder)
+    folder = check_path("folder", folder)
     if not folder.is_dir():
         raise DestinationError(f"the folder {folder} does not exist or is not a folder",
                                path=folder)
