@@ -53,11 +53,12 @@ from typing import Callable, Iterator
 import numpy as np
 from PIL import Image, ImageOps
 
-from modescope.core.validation import check_int
+from modescope.core.validation import check_choice, check_int, check_path
 from modescope.core.errors import SourceError
-from modescope.core.sources.scan import ImageRef, Problem, SourceSet, _short_message
+from modescope.core.sources.scan import (ImageRef, Problem, SourceSet, _header_orientation,
+                                         _short_message)
 
-__all__ = ["analysis_shape", "load_image", "Block", "iter_blocks"]
+__all__ = ["analysis_shape", "load_image", "load_preview", "Block", "iter_blocks"]
 
 _ORIENTATION_TAG = 0x0112
 _LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
@@ -325,6 +326,116 @@ def load_image(ref: ImageRef, source_set: SourceSet, downscale: int = 1) -> np.n
         problem = Problem(ref.path, failure.reason, _page_label(ref, source_set))
         raise SourceError(str(problem)) from failure.__cause__
     return out
+
+
+def _fit(rows: int, cols: int, max_side: int) -> tuple[int, int]:
+    """Return (rows, cols) scaled so that the longer side is ``max_side`` (never enlarged)."""
+    if max(rows, cols) <= max_side:
+        return rows, cols
+    scale = max_side / max(rows, cols)
+    return (max(1, min(max_side, round(rows * scale))), max(1, min(max_side, round(cols * scale))))
+
+
+def _open_reduced(img: Image.Image, page: int, max_side: int) -> tuple[Image.Image, tuple]:
+    """Select the page, decode it (JPEG at 1/2, 1/4 or 1/8 when that is enough), orient it.
+
+    Returns the oriented image, reduced by whole blocks (8-bit L and RGB only, cropped like
+    :func:`_downscale`), and the preview size (rows, cols) of the full oriented image.
+    """
+    if page:
+        img.seek(page)
+    cols, rows = img.size
+    swapped = img.format != "TIFF" and _header_orientation(img) >= 5  # TIFF rotates itself
+    if swapped:
+        rows, cols = cols, rows
+    target = _fit(rows, cols, max_side)
+    if img.format == "JPEG" and target != (rows, cols):
+        img.draft(img.mode, target if swapped else target[::-1])  # (width, height) as stored
+    img.load()
+    orientation = img.getexif().get(_ORIENTATION_TAG, 1)
+    if orientation in (2, 3, 4, 5, 6, 7, 8):
+        img = ImageOps.exif_transpose(img)
+    f = max(1, min(img.height // target[0], img.width // target[1]))
+    if f > 1 and img.mode in ("L", "RGB"):
+        box = (0, 0, img.width // f * f, img.height // f * f)
+        img = img.reduce(f, box)
+    return img, target
+
+
+def load_preview(path, page: int = 0, *, max_side: int = 64,
+                 color: str | None = None) -> np.ndarray:
+    """Decode one image at reduced size by the analysis's rules, for thumbnails.
+
+    The EXIF orientation, the scaling of 8-bit, 16-bit, integer and float data and the colour
+    rules are those of the module docstring (steps 1-4); the image is then made smaller by an
+    area average over whole blocks (JPEG files are decoded at 1/2, 1/4 or 1/8 of their size by
+    Pillow when that is enough, and 8-bit gray and RGB images are block-averaged by Pillow in
+    8 bits) and resized with Pillow's LANCZOS filter to the exact preview size. No reference
+    size, resizing policy or downscale factor is involved.
+
+    Parameters
+    ----------
+    path : str or os.PathLike
+        Image file (never modified).
+    page : int, default 0
+        Page of a multi-page file.
+    max_side : int, default 64
+        Longest side of the result in pixels, at least 1. Smaller images keep their size.
+    color : {"gray", "rgb"} or None, default None
+        Channels as in the analysis; None keeps the file's kind: gray files give one channel,
+        colour files three.
+
+    Returns
+    -------
+    ndarray, shape (rows, cols, channels), float32
+        Values in [0, 1]. ``(rows, cols)`` is the oriented image's size scaled so that its
+        longer side is ``max_side`` (rounded to whole pixels).
+
+    Raises
+    ------
+    TypeError
+        If ``path`` is not a path or another argument has the wrong type.
+    ValueError
+        If ``page`` or ``max_side`` is out of range or ``color`` is not a choice above.
+    SourceError
+        If the file or page cannot be decoded (missing, damaged, unsupported mode).
+
+    Examples
+    --------
+    >>> load_preview("frames/frame_001.jpg", max_side=64).shape     # doctest: +SKIP
+    (48, 64, 3)
+    """
+    name = str(check_path("path", path))
+    page = check_int("page", page, minimum=0)
+    max_side = check_int("max_side", max_side, minimum=1)
+    if color is not None:
+        check_choice("color", color, ("gray", "rgb"))
+    where = f"{name} (page {page})" if page else name
+    try:
+        img = Image.open(name)
+    except MemoryError:
+        raise
+    except Exception as exc:  # noqa: BLE001 - Pillow raises many types on damaged files
+        raise SourceError(f"{where}: cannot be decoded ({_short_message(exc, name)})") from exc
+    with img:
+        try:
+            reduced, target = _open_reduced(img, page, max_side)
+        except MemoryError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - only Pillow's work is guarded here
+            raise SourceError(f"{where}: cannot be decoded "
+                              f"({_short_message(exc, name)})") from exc
+        try:
+            values, scale = _native(reduced)
+        except _DecodeFailure as failure:
+            raise SourceError(f"{where}: {failure.reason}") from None
+    image = _to_float(values, scale, color or ("gray" if values.ndim == 2 else "rgb"))
+    f = max(1, min(image.shape[0] // target[0], image.shape[1] // target[1]))
+    if f > 1:
+        image = _downscale(image, f)
+    if image.shape[:2] != target:
+        image = _resize(image, target)
+    return image
 
 
 def _decode_chunk(jobs, source_set: SourceSet, f: int, buffer: np.ndarray,

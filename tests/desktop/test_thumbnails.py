@@ -10,8 +10,10 @@ from PySide6.QtCore import QThread
 from PySide6.QtGui import QImage
 
 from modescope.app.desktop.workers import thumbnails
-from modescope.app.desktop.workers.thumbnails import (ThumbnailCache, ThumbnailMaker, array_to_qimage,
-                                      make_thumbnail)
+from modescope.app.desktop.workers.thumbnails import (ThumbnailCache, ThumbnailMaker,
+                                                      array_to_qimage, make_thumbnail)
+from modescope.core.sources.decode import load_image, load_preview
+from modescope.core.sources.scan import scan_sources
 
 
 def _pixels(image: QImage) -> np.ndarray:
@@ -47,17 +49,46 @@ def test_array_to_qimage_rejects():
 
 
 # ----- making one thumbnail --------------------------------------------------------------------
-def test_make_thumbnail_from_file_matches_pillow(tmp_path):
-    rng = np.random.default_rng(0)
-    a = rng.integers(0, 256, size=(90, 150, 3), dtype=np.uint8)
+def _smooth_rgb(rows: int, cols: int) -> np.ndarray:
+    r, c = np.mgrid[0:rows, 0:cols]
+    planes = [0.5 + 0.35 * np.sin(r / 17.0 + k) * np.cos(c / 23.0) for k in range(3)]
+    return np.rint(np.dstack(planes) * 255).astype(np.uint8)
+
+
+def test_make_thumbnail_from_file_is_the_core_preview(tmp_path):
+    a = _smooth_rgb(90, 150)
     p = tmp_path / "a.png"
     Image.fromarray(a).save(p)
     t = make_thumbnail(str(p), size=64)
     assert t.source == "file" and t.note == ""
+    # the core's reduced decode, rounded to 8 bits
+    preview = load_preview(p, max_side=64)
+    np.testing.assert_array_equal(_pixels(t.image),
+                                  np.rint(np.clip(preview, 0, 1) * 255).astype(np.uint8))
     ref = Image.fromarray(a)
-    ref.thumbnail((64, 64))  # reference: Pillow's own thumbnail of the same pixels
+    ref.thumbnail((64, 64))  # outside reference: Pillow's own thumbnail of the same pixels
     assert (t.image.width(), t.image.height()) == ref.size == (64, 38)
-    np.testing.assert_array_equal(_pixels(t.image), np.asarray(ref))
+    # a smooth picture: within 4 levels of Pillow's (another filter), rule of thumb
+    assert np.max(np.abs(_pixels(t.image).astype(int) - np.asarray(ref).astype(int))) <= 4
+
+
+def test_thumbnail_follows_exif_orientation(tmp_path):
+    # stored 40 rows x 80 columns, shown a quarter turn clockwise: analysed 80 x 40
+    stored = _smooth_rgb(40, 80)
+    exif = Image.Exif()
+    exif[0x0112] = 6
+    p = tmp_path / "turned.jpg"
+    Image.fromarray(stored).save(p, exif=exif, quality=95)
+    sset = scan_sources([p], color="rgb")
+    analysed = load_image(sset.images[0], sset)
+    assert analysed.shape[:2] == (80, 40)
+    t = make_thumbnail(str(p), size=64)
+    assert (t.image.height(), t.image.width()) == (64, 32)      # the analysis's aspect
+    # the left column of the shown image is the stored bottom row (numpy.rot90 reference)
+    shown = _pixels(t.image).astype(int)
+    turned = np.asarray(Image.fromarray(np.rot90(stored, -1)).resize((32, 64),
+                                                                      Image.BILINEAR))
+    assert np.max(np.abs(shown - turned.astype(int))) <= 6     # JPEG + filters, rule of thumb
 
 
 def test_make_thumbnail_16_bit_and_pages(tmp_path):
@@ -68,6 +99,16 @@ def test_make_thumbnail_16_bit_and_pages(tmp_path):
     got = _pixels(t.image)[:, :, 0].astype(int)
     expect = np.rint(a / 65535.0 * 255).astype(int)
     assert np.max(np.abs(got - expect)) <= 1
+    # reduced: the same values as the analysis's area-average downscale (load_image), to
+    # within the 8-bit rounding of the thumbnail (half a level, plus float32 rounding)
+    big = np.kron(a, np.ones((4, 4), np.uint16))                  # 120 x 160
+    Image.fromarray(big).save(p)
+    t = make_thumbnail(str(p), size=40)
+    sset = scan_sources([p])
+    analysed = load_image(sset.images[0], sset, downscale=4)[:, :, 0]
+    got = _pixels(t.image)[:, :, 0] / 255.0
+    assert got.shape == analysed.shape == (30, 40)
+    np.testing.assert_allclose(got, analysed, rtol=0, atol=0.5 / 255 + 1e-6)
     # second page of a two-page TIFF
     pages = [Image.fromarray(np.full((8, 8), v, dtype=np.uint8)) for v in (10, 200)]
     tif = tmp_path / "two.tif"

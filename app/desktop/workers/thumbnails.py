@@ -2,18 +2,22 @@
 
 :class:`ThumbnailMaker` takes requests from an item model's ``data()`` (only rows that are shown
 ask), keeps the newest requests first (a user scrolling fast through 10,000 rows wants the rows on
-screen now, not the ones scrolled past), decodes them with Pillow on a private
-:class:`~PySide6.QtCore.QThreadPool` and hands each finished :class:`~PySide6.QtGui.QImage` back
-on the GUI thread through :attr:`ThumbnailMaker.thumbnailReady`.
+screen now, not the ones scrolled past), makes them in background jobs (the program's one pattern,
+:mod:`~modescope.app.desktop.workers.background`; two pool threads drain the queue) and hands
+each finished :class:`~PySide6.QtGui.QImage` back on the GUI thread through
+:attr:`ThumbnailMaker.thumbnailReady`.
 
-A thumbnail is made from the source file (``Image.draft`` lets JPEG decode at a fraction of full
-size, then ``Image.thumbnail``); when the file is missing or unreadable a fallback callable (the
-rank-r reconstruction) is used instead, and the result says so.
+A thumbnail is the source file decoded by the analysis's own rules at reduced size
+(:func:`modescope.core.sources.decode.load_preview`: EXIF orientation, 8/16-bit scaling and colour
+exactly as analysed; JPEG decoded at a fraction of its size); when the file is missing or
+unreadable a fallback callable (the rank-r reconstruction) is used instead, and the result says
+so.
 """
 
 from __future__ import annotations
 
 import dataclasses
+import logging
 import threading
 from collections import OrderedDict, deque
 from dataclasses import dataclass
@@ -21,11 +25,19 @@ from typing import Any, Callable, Hashable
 
 import numpy as np
 from PIL import Image
-from PySide6.QtCore import QCoreApplication, QObject, QRunnable, QThreadPool, Signal, Slot
+from PySide6.QtCore import QCoreApplication, QObject, Signal, Slot
 from PySide6.QtGui import QIcon, QImage, QPixmap
+
+from modescope.core.errors import ModescopeError
+from modescope.core.sources.decode import load_preview
+
+from modescope.app.desktop.workers.background import (EXPECTED_ERRORS, BackgroundRunner,
+                                                      JobContext)
 
 __all__ = ["ThumbnailCache", "Thumbnail", "ThumbnailMaker", "make_thumbnail",
            "array_to_qimage"]
+
+_log = logging.getLogger(__name__)
 
 
 # ----- numpy -> QImage ---------------------------------------------------------------------------
@@ -64,19 +76,6 @@ def array_to_qimage(array: np.ndarray) -> QImage:
     rows, cols = array.shape[:2]
     image = QImage(array.data, cols, rows, array.strides[0], fmt)
     return image.copy()  # own the pixels: the numpy buffer goes away
-
-
-def _to_uint8(im: Image.Image) -> np.ndarray:
-    """Return a Pillow image as uint8 gray (rows, cols) or RGB (rows, cols, 3)."""
-    if im.mode in ("L", "RGB"):
-        return np.asarray(im)
-    if im.mode in ("I;16", "I;16B", "I;16L", "I", "F"):
-        a = np.asarray(im).astype(np.float64)
-        top = 65535.0 if im.mode.startswith("I;16") else max(float(a.max(initial=0)), 1e-12)
-        return np.clip(a / top * 255.0 + 0.5, 0, 255).astype(np.uint8)
-    if im.mode in ("1", "LA"):
-        return np.asarray(im.convert("L"))
-    return np.asarray(im.convert("RGB"))
 
 
 def _float_to_uint8(image: np.ndarray) -> np.ndarray:
@@ -125,22 +124,17 @@ def make_thumbnail(path: str, page: int = 0, size: int = 64,
         Returns a float image (rows, cols, channels) in [0, 1], e.g. the reconstruction; used when
         the file cannot be read.
 
+    The picture is :func:`~modescope.core.sources.decode.load_preview` of the file (oriented and
+    scaled as the analysis reads it, in the file's own colours) rounded to 8 bits.
+
     Returns
     -------
     Thumbnail
     """
     try:
-        with Image.open(path) as im:
-            if page:
-                im.seek(page)
-            if im.mode in ("L", "RGB"):
-                im.draft(im.mode, (size, size))  # JPEG: decode at 1/2, 1/4 or 1/8 size
-            if im.mode in ("I;16", "I;16B", "I;16L", "I", "F"):
-                im = Image.fromarray(_to_uint8(im))
-            im.thumbnail((size, size))
-            return Thumbnail(array_to_qimage(_to_uint8(im)), "file")
-    except (OSError, ValueError, EOFError, SyntaxError) as exc:
-        note = f"{path}: {exc}" if str(exc) else f"{path}: cannot be read"
+        image = load_preview(path, page, max_side=size)
+    except ModescopeError as exc:     # missing, damaged or unsupported: the message names it
+        note = str(exc) or f"{path}: cannot be read"
         if fallback is None:
             return Thumbnail(QImage(), "failed", note)
         try:
@@ -150,6 +144,7 @@ def make_thumbnail(path: str, page: int = 0, size: int = 64,
         im = Image.fromarray(a)
         im.thumbnail((size, size))
         return Thumbnail(array_to_qimage(np.asarray(im)), "reconstruction", note)
+    return Thumbnail(array_to_qimage(_float_to_uint8(image)), "file")
 
 
 # ----- bounded LRU cache -------------------------------------------------------------------------
@@ -203,36 +198,68 @@ class ThumbnailCache:
 
 
 # ----- the off-thread maker ----------------------------------------------------------------------
-class _Runner(QRunnable):
-    """Pulls requests (newest first) from the maker's queue until it is empty."""
+class _Requests:
+    """The queue of thumbnail requests, shared by the GUI thread and the draining jobs.
 
-    def __init__(self, maker: "ThumbnailMaker"):
-        super().__init__()
-        self.setAutoDelete(False)  # Python owns it (kept in maker._runners until done)
-        self._maker = maker
+    A plain object (not the maker) so that the jobs hold no reference to a QObject: a cycle
+    through the maker could be collected, and the maker deleted, in the middle of a slot.
+    """
 
-    def run(self) -> None:  # runs on a pool thread
-        maker = self._maker
+    def __init__(self, size: int, threads: int, max_pending: int):
+        self.size = size
+        self.threads = threads
+        self.max_pending = max_pending
+        self.lock = threading.Lock()
+        self.queue: deque = deque()
+        self.pending: set = set()    # keys queued or being made
+        self.drainers = 0            # jobs draining the queue
+        self.stopped = False
+
+    def add(self, key: Hashable, path: str, page: int, fallback) -> bool:
+        """Queue a request; return True when a new draining job must start (GUI thread)."""
+        with self.lock:
+            if self.stopped or key in self.pending:
+                return False
+            self.pending.add(key)
+            self.queue.append((key, path, page, fallback))
+            while len(self.queue) > self.max_pending:
+                old = self.queue.popleft()
+                self.pending.discard(old[0])
+            start = self.drainers < self.threads
+            if start:
+                self.drainers += 1
+            return start
+
+    def drain(self, context: JobContext) -> int:
+        """Make queued thumbnails, newest first, until the queue is empty (a job's work)."""
+        made = 0
+        counted = True
         try:
             while True:
-                job = maker._take()
-                if job is None:
-                    return
-                key, path, page, fallback = job
+                with self.lock:
+                    if self.stopped or context.cancelled() or not self.queue:
+                        # leave in the same locked step that saw the queue empty, so that a
+                        # request arriving now starts a new job
+                        self.drainers -= 1
+                        counted = False
+                        return made
+                    key, path, page, fallback = self.queue.pop()
                 try:
-                    thumb = make_thumbnail(path, page, maker.size, fallback)
-                except Exception as exc:  # noqa: BLE001 - a worker must never die silently
+                    thumb = make_thumbnail(path, page, self.size, fallback)
+                except Exception as exc:  # noqa: BLE001 - one bad file must not stop the rest
+                    if not isinstance(exc, EXPECTED_ERRORS):
+                        _log.error("thumbnail of %s failed", path, exc_info=exc)
                     thumb = Thumbnail(QImage(), "failed", f"{path}: {exc}")
-                try:
-                    maker._finished.emit(key, thumb)
-                except RuntimeError:  # the maker was deleted meanwhile
-                    return
+                context.partial((key, thumb))
+                made += 1
         finally:
-            maker._runner_done(self)
+            if counted:
+                with self.lock:
+                    self.drainers -= 1
 
 
 class ThumbnailMaker(QObject):
-    """Make thumbnails on a private thread pool; newest requests first; bounded LRU cache.
+    """Make thumbnails in background jobs; newest requests first; bounded LRU cache.
 
     Parameters
     ----------
@@ -241,7 +268,7 @@ class ThumbnailMaker(QObject):
     cache_size : int
         Most thumbnails kept in memory.
     threads : int
-        Pool threads decoding at once.
+        Pool threads decoding at once (each runs one job that drains the queue).
     max_pending : int
         Most requests waiting; the oldest are dropped (and may be asked for again when their rows
         come back into view).
@@ -254,7 +281,6 @@ class ThumbnailMaker(QObject):
     """
 
     thumbnailReady = Signal(object)
-    _finished = Signal(object, object)
 
     def __init__(self, size: int = 64, cache_size: int = 2000, threads: int = 2,
                  max_pending: int = 512, parent: QObject | None = None):
@@ -262,15 +288,10 @@ class ThumbnailMaker(QObject):
         self.size = int(size)
         self.cache = ThumbnailCache(cache_size)
         self.max_pending = int(max_pending)
-        self._pool = QThreadPool(self)
-        self._pool.setMaxThreadCount(max(1, int(threads)))
-        self._threads = max(1, int(threads))
-        self._lock = threading.Lock()
-        self._queue: deque = deque()
-        self._pending: set = set()   # keys queued or being made (guarded by _lock)
-        self._runners: set = set()   # live _Runner objects (guarded by _lock)
-        self._stopped = False
-        self._finished.connect(self._on_finished)
+        threads = max(1, int(threads))
+        self._requests = _Requests(self.size, threads, self.max_pending)
+        self._jobs = BackgroundRunner(self, threads=threads, task="Making thumbnails")
+        self._jobs.partial.connect(self._on_thumbnail)
         app = QCoreApplication.instance()
         if app is not None:
             app.aboutToQuit.connect(self.shutdown)
@@ -296,52 +317,44 @@ class ThumbnailMaker(QObject):
         thumb = self.cache.get(key)
         if thumb is not None:
             return thumb
-        with self._lock:
-            if self._stopped or key in self._pending:
-                return None
-            self._pending.add(key)
-            self._queue.append((key, str(path), int(page), fallback))
-            while len(self._queue) > self.max_pending:
-                old = self._queue.popleft()
-                self._pending.discard(old[0])
-            start = len(self._runners) < self._threads
-            if start:
-                runner = _Runner(self)
-                self._runners.add(runner)
-        if start:
-            self._pool.start(runner)
+        if self._requests.add(key, str(path), int(page), fallback):
+            self._jobs.start(self._requests.drain, replace=False)
         return None
 
     def pending(self) -> int:
         """Return the number of requests queued or being made."""
-        with self._lock:
-            return len(self._pending)
+        with self._requests.lock:
+            return len(self._requests.pending)
 
     def cancel_pending(self) -> None:
         """Forget every queued request (those being made still finish)."""
-        with self._lock:
-            for job in self._queue:
-                self._pending.discard(job[0])
-            self._queue.clear()
+        requests = self._requests
+        with requests.lock:
+            for job in requests.queue:
+                requests.pending.discard(job[0])
+            requests.queue.clear()
 
     def wait(self, msecs: int = 5000) -> bool:
-        """Wait until the pool is idle; return False on time-out."""
-        return self._pool.waitForDone(int(msecs))
+        """Wait until no thumbnail is being made; return False on time-out."""
+        return self._jobs.wait(int(msecs))
 
     @Slot()
     def shutdown(self, msecs: int = 3000) -> None:
         """Stop taking requests, drop the queue and wait for running jobs (with a time limit)."""
-        with self._lock:
-            self._stopped = True
-            self._queue.clear()
-            self._pending.clear()
-        self._pool.waitForDone(int(msecs))
+        requests = self._requests
+        with requests.lock:
+            requests.stopped = True
+            requests.queue.clear()
+            requests.pending.clear()
+        self._jobs.shutdown(int(msecs))
 
-    @Slot(object, object)
-    def _on_finished(self, key: Hashable, thumb: Thumbnail) -> None:
-        with self._lock:
-            self._pending.discard(key)
-            stopped = self._stopped
+    @Slot(object)
+    def _on_thumbnail(self, made: tuple) -> None:
+        key, thumb = made
+        requests = self._requests
+        with requests.lock:
+            requests.pending.discard(key)
+            stopped = requests.stopped
         if stopped:
             return
         if not thumb.image.isNull():
@@ -352,20 +365,3 @@ class ThumbnailMaker(QObject):
             thumb = dataclasses.replace(thumb, icon=icon)
         self.cache.put(key, thumb)
         self.thumbnailReady.emit(key)
-
-    # ----- pool-thread side ----------------------------------------------------------------------
-    def _take(self):
-        with self._lock:
-            if self._stopped or not self._queue:
-                return None
-            return self._queue.pop()  # newest first
-
-    def _runner_done(self, runner: _Runner) -> None:
-        with self._lock:
-            self._runners.discard(runner)
-            restart = bool(self._queue) and not self._stopped and not self._runners
-            if restart:  # a request slipped in between _take() and here
-                new = _Runner(self)
-                self._runners.add(new)
-        if restart:
-            self._pool.start(new)
