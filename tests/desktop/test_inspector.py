@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import threading
+
 import numpy as np
 import pytest
 from PySide6.QtCore import Qt
 
 from modescope.app.desktop.imaging import array_to_qimage, signed_to_qimage
-from modescope.app.desktop.views.inspector import Inspector, RANK_DEBOUNCE_MS
+from modescope.app.desktop.views.inspector import READING_NOTE, Inspector, RANK_DEBOUNCE_MS
 from modescope.app.desktop.state import AppState
 from modescope.core.engine import pipeline
 
@@ -26,6 +28,11 @@ def inspector(qtbot, state):
     return view
 
 
+def _settled(qtbot, view) -> None:
+    """Wait until the selected image's source has been read (in the background)."""
+    qtbot.waitUntil(lambda: not view.is_reading(), timeout=10000)
+
+
 def _qimage_array(img) -> np.ndarray:
     """The pixels of a Grayscale8 QImage as (rows, cols) uint8."""
     ptr = img.constBits()
@@ -40,12 +47,13 @@ def test_empty_state_shows_hint(inspector):
 
 
 @pytest.mark.parametrize("index, rank", [(0, 1), (3, 2), (7, 5)])
-def test_reconstruction_equals_core(inspector, state, gray_decomposition, gray_pngs,
+def test_reconstruction_equals_core(qtbot, inspector, state, gray_decomposition, gray_pngs,
                                     index, rank):
     d = gray_decomposition
     state.set_decomposition(d)
     state.set_selected(index)
     state.set_rank(rank)
+    _settled(qtbot, inspector)
     expected = d.reconstruct(index, rank).reshape(20, 24, 1)
     # the inspector updates incrementally (core.reconstruct): equal to float32 rounding
     np.testing.assert_allclose(inspector.reconstruction_array, expected, atol=1e-6)
@@ -132,10 +140,11 @@ def test_energy_and_residual_text(inspector, state, gray_decomposition):
     assert f"{res:.4g}" in inspector.residual_label.text()
 
 
-def test_residual_legend_shows_range(inspector, state, gray_decomposition):
+def test_residual_legend_shows_range(qtbot, inspector, state, gray_decomposition):
     state.set_decomposition(gray_decomposition)
     state.set_selected(1)
     state.set_rank(1)
+    _settled(qtbot, inspector)
     limit = float(np.max(np.abs(inspector.residual_array)))
     assert inspector.legend.limit() == pytest.approx(limit)
     left, mid, right = inspector.legend.labels()
@@ -145,13 +154,14 @@ def test_residual_legend_shows_range(inspector, state, gray_decomposition):
     assert shown == expected
 
 
-def test_missing_source_still_shows_reconstruction(inspector, state, gray_decomposition,
-                                                   tmp_path):
+def test_missing_source_still_shows_reconstruction(qtbot, inspector, state,
+                                                   gray_decomposition, tmp_path):
     d = gray_decomposition
     moved = list(d.paths)
     moved[0] = str(tmp_path / "gone" / "img_00.png")
     state.set_decomposition(d.replace(paths=tuple(moved)))
     state.set_selected(0)
+    _settled(qtbot, inspector)
     assert inspector.source_array is None
     assert "missing" in inspector.source_note and "img_00.png" in inspector.source_note
     assert "missing" in inspector.source_pane.note()
@@ -171,11 +181,14 @@ def test_source_cached_while_selected(qtbot, state, gray_decomposition):
     qtbot.addWidget(view)
     state.set_decomposition(gray_decomposition)
     state.set_selected(3)
+    _settled(qtbot, view)
     for r in (1, 2, 3, 4):
         state.set_rank(r)
     state.set_decomposition(gray_decomposition.replace())   # e.g. a new snapshot, same image
+    _settled(qtbot, view)
     assert calls.count(3) == 1
     state.set_selected(4)
+    _settled(qtbot, view)
     assert calls.count(4) == 1
 
 
@@ -212,6 +225,7 @@ def test_rgb_images_in_colour(qtbot, state, tmp_path, make_decomposition):
     qtbot.addWidget(view)
     state.set_decomposition(d)
     state.set_selected(5)
+    _settled(qtbot, view)
     assert view.source_pane.image() == array_to_qimage(imgs[5])
     assert "channel mean" in view.residual_pane.title()
 
@@ -243,3 +257,75 @@ def test_empty_inspector_tells_when_an_analysis_is_running(qtbot):
     assert ins.title_label.text() == "Analysis starting…"
     ins.set_running(False)
     assert ins.source_pane._note.startswith("Add images in the Sources pane")
+
+
+def test_source_is_read_off_the_gui_thread_and_shown_when_it_arrives(qtbot, state,
+                                                                     gray_decomposition):
+    gate = threading.Event()
+    where = []
+
+    def loader(decomposition, index):
+        where.append(threading.current_thread() is threading.main_thread())
+        gate.wait(5)
+        return pipeline.load_analysis_image(decomposition, index)
+
+    view = Inspector(state, load_image=loader)
+    qtbot.addWidget(view)
+    state.set_decomposition(gray_decomposition)
+    state.set_selected(2)
+    # the GUI thread did not wait: the reconstruction is shown, the image is being read
+    assert view.is_reading() and view.source_array is None
+    assert view.source_pane.note() == READING_NOTE
+    assert view.reconstruction_array is not None
+    with qtbot.waitSignal(view.sourceReady, timeout=10000) as blocker:
+        gate.set()
+    assert blocker.args == [2]
+    assert where and not any(where)
+    np.testing.assert_array_equal(view.source_array,
+                                  pipeline.load_analysis_image(gray_decomposition, 2))
+    assert view.source_pane.note() == "" and view.residual_array is not None
+    assert view.shutdown(5000)
+
+
+def test_read_of_a_superseded_selection_is_ignored(qtbot, state, gray_decomposition):
+    gates = {i: threading.Event() for i in range(8)}
+    started = {i: threading.Event() for i in range(8)}
+    gates[0].set()                         # the first image selected is read at once
+
+    def loader(decomposition, index):
+        started[index].set()
+        gates[index].wait(5)
+        return np.full(decomposition.image_shape, index / 10.0, dtype=np.float32)
+
+    view = Inspector(state, load_image=loader)
+    qtbot.addWidget(view)
+    ready = []
+    view.sourceReady.connect(ready.append)
+    state.set_decomposition(gray_decomposition)
+    state.set_selected(3)
+    assert started[3].wait(5)              # image 3 is being read ...
+    state.set_selected(4)                  # ... when the user moves on to image 4
+    gates[4].set()
+    qtbot.waitUntil(lambda: ready == [4], timeout=10000)
+    np.testing.assert_array_equal(view.source_array, np.full((20, 24, 1), 0.4, np.float32))
+    gates[3].set()                         # the late read of image 3 arrives: dropped
+    assert view.shutdown(5000)
+    qtbot.wait(30)
+    assert ready == [4]
+    np.testing.assert_array_equal(view.source_array, np.full((20, 24, 1), 0.4, np.float32))
+    assert "Image 5 of" in view.title_label.text()
+
+
+def test_read_failure_is_a_message(qtbot, state, gray_decomposition):
+    def loader(decomposition, index):
+        raise OSError(5, "Input/output error", "/mnt/lost/img.png")
+
+    view = Inspector(state, load_image=loader)
+    qtbot.addWidget(view)
+    state.set_decomposition(gray_decomposition)
+    state.set_selected(1)
+    _settled(qtbot, view)
+    assert view.source_note == ("Source image not available: A file could not be read "
+                                "(/mnt/lost/img.png): Input/output error")
+    assert view.source_pane.note() == view.source_note
+    assert view.residual_pane.note() == "No residual without the source image."

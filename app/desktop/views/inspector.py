@@ -1,7 +1,10 @@
 """The inspector: one image next to its rank-r reconstruction and the residual.
 
 The image shown is the state's selected image, re-read from its source file with the analysis
-options (``pipeline.load_analysis_image``) and cached while it stays selected. The reconstruction
+options (``pipeline.load_analysis_image``) in the background (the program's one pattern,
+:mod:`~modescope.app.desktop.workers.background`) and cached while it stays selected; the panes
+say it is being read until it arrives, and a read for an image no longer selected is dropped.
+The reconstruction
 comes from ``core.reconstruct.LiveReconstruction`` (mean plus the first r basis images times the
 image's weights: no SVD is computed here). The residual is ``image - reconstruction``, shown with
 the diverging colour map and a legend of its value range; colour images show the mean over their
@@ -18,7 +21,7 @@ import os
 from typing import Any, Callable
 
 import numpy as np
-from PySide6.QtCore import QRectF, QSize, Qt, QTimer, Slot
+from PySide6.QtCore import QRectF, QSize, Qt, QTimer, Signal, Slot
 from PySide6.QtGui import QColor, QImage, QPainter, QPalette
 from PySide6.QtWidgets import (
     QHBoxLayout,
@@ -35,17 +38,37 @@ from modescope.core.review.reconstruct import LiveReconstruction
 from modescope.app.desktop.imaging import (NO_VARIATION, array_to_qimage, colorbar_qimage, signed_to_qimage,
                       symmetric_limit)
 from modescope.app.desktop.state import AppState
+from modescope.app.desktop.workers.background import BackgroundRunner, plain_message
 
 __all__ = ["ImagePane", "ColorLegend", "Inspector", "RANK_DEBOUNCE_MS"]
 
 #: Delay between a slider move and the rank reaching the shared state.
 RANK_DEBOUNCE_MS = 15
 
+#: Shown in the image pane while the source image is being read.
+READING_NOTE = "Reading the image…"
+
 
 def _default_loader(decomposition, index: int) -> np.ndarray:
     from modescope.core.engine import pipeline
 
     return pipeline.load_analysis_image(decomposition, index)
+
+
+def _read_source(load: Callable[[Any, int], np.ndarray], decomposition, index: int,
+                 key: tuple) -> tuple[tuple, np.ndarray]:
+    """Read image ``index`` at analysis resolution and check its shape (a background job)."""
+    image = np.asarray(load(decomposition, index), dtype=np.float32)
+    if image.ndim == 2:
+        image = image[:, :, None]
+    if tuple(image.shape) != tuple(decomposition.image_shape):
+        raise ModescopeError(f"{key[0]}: read with shape {image.shape}, the analysis expects "
+                             f"{tuple(decomposition.image_shape)}")
+    return key, image
+
+
+def _describe_read_error(exc: BaseException) -> str:
+    return f"Source image not available: {plain_message(exc, 'Reading the image')}"
 
 
 class ImagePane(QWidget):
@@ -262,8 +285,14 @@ class Inspector(QWidget):
         The shared state (read: decomposition, selected, rank; written: rank).
     parent : QWidget, optional
     load_image : callable(decomposition, index) -> ndarray, optional
-        Reads an image at analysis resolution, shape (rows, cols, channels). Default:
-        ``pipeline.load_analysis_image``.
+        Reads an image at analysis resolution, shape (rows, cols, channels); called in a
+        background thread. Default: ``pipeline.load_analysis_image``.
+
+    Signals
+    -------
+    sourceReady(int)
+        The selected image's source image (or the reason it is not available) has arrived and
+        is shown; the image's index.
 
     Attributes
     ----------
@@ -274,6 +303,8 @@ class Inspector(QWidget):
     residual_array : ndarray or None, shape (rows, cols, channels)
         ``source_array - reconstruction_array``.
     """
+
+    sourceReady = Signal(int)
 
     def __init__(self, state: AppState, parent: QWidget | None = None, *,
                  load_image: Callable[[Any, int], np.ndarray] | None = None):
@@ -288,6 +319,13 @@ class Inspector(QWidget):
         self._source_qimage: tuple | None = None   # (source array, its QImage)
         self._running = False
         self._cache_error = ""
+        self._reading = False       # the cached key's image is being read
+        # two threads: a slow read of an image no longer selected does not hold up the next
+        # (reads not yet started when superseded are skipped)
+        self._reads = BackgroundRunner(self, threads=2, task="Reading the image",
+                                       describe_error=_describe_read_error)
+        self._reads.finished.connect(self._on_source_read)
+        self._reads.failed.connect(self._on_source_failed)
         self._syncing = False
         self.source_array: np.ndarray | None = None
         self.reconstruction_array: np.ndarray | None = None
@@ -398,34 +436,61 @@ class Inspector(QWidget):
                 self.refresh()
 
     def _source(self, decomposition, index: int) -> tuple[np.ndarray | None, str]:
-        """Return the cached source image of ``index`` (re-read when the selection changes)."""
+        """Return the cached source image of ``index``; start reading it when the selection
+        changed (``(None, READING_NOTE)`` until it arrives)."""
         path = decomposition.paths[index] if decomposition.paths else ""
         page = int(decomposition.pages[index]) if decomposition.pages is not None else 0
         key = (path, page, tuple(decomposition.image_shape))
         if key != self._cache_key:
+            self._reads.abandon()               # a read for another image is of no use now
             self._cache_key = key
             self._cache_value, self._cache_error = None, ""
+            self._reading = bool(path)
             if not path:
                 self._cache_error = "The analysis does not record the source file of this image."
             else:
-                try:
-                    image = np.asarray(self._load_image(decomposition, index), dtype=np.float32)
-                    if image.ndim == 2:
-                        image = image[:, :, None]
-                    if tuple(image.shape) != tuple(decomposition.image_shape):
-                        raise ModescopeError(
-                            f"{path}: read with shape {image.shape}, the analysis expects "
-                            f"{tuple(decomposition.image_shape)}")
-                    self._cache_value = image
-                except (ModescopeError, OSError) as exc:
-                    self._cache_error = f"Source image not available: {exc}"
-                except ImportError:
-                    self._cache_error = "Source images cannot be read in this installation."
+                load = self._load_image
+                self._reads.start(lambda ctx: _read_source(load, decomposition, index, key))
+        if self._reading:
+            return None, READING_NOTE
         return self._cache_value, self._cache_error
+
+    @Slot(object)
+    def _on_source_read(self, result: tuple) -> None:
+        key, image = result
+        if key != self._cache_key:              # the selection moved on meanwhile
+            return
+        self._reading = False
+        self._cache_value, self._cache_error = image, ""
+        self._source_arrived()
+
+    @Slot(str)
+    def _on_source_failed(self, message: str) -> None:
+        if not self._reading:
+            return
+        self._reading = False
+        self._cache_value, self._cache_error = None, message
+        self._source_arrived()
+
+    def _source_arrived(self) -> None:
+        self.refresh()
+        self.sourceReady.emit(int(self._state.selected))
+
+    def is_reading(self) -> bool:
+        """Return True while the selected image's source is being read."""
+        return self._reading
 
     def clear_cache(self) -> None:
         """Forget the cached source image (it is read again on the next refresh)."""
+        self._reads.abandon()
         self._cache_key, self._cache_value, self._cache_error = None, None, ""
+        self._reading = False
+
+    def shutdown(self, timeout_ms: int = 3000) -> bool:
+        """Drop a read in progress and wait for it at most ``timeout_ms``; True when done."""
+        self._reads.abandon()
+        self._reading = False
+        return self._reads.wait(timeout_ms)
 
     @Slot()
     def refresh(self) -> None:
@@ -495,7 +560,8 @@ class Inspector(QWidget):
         else:
             self.source_pane.set_image(None, error)
             self.residual_array = None
-            self.residual_pane.set_image(None, "No residual without the source image.")
+            self.residual_pane.set_image(None, "" if self._reading
+                                         else "No residual without the source image.")
             self.legend.set_limit(None)
 
         self.pane_area.rearrange()
