@@ -97,7 +97,8 @@ def unexpected_message(exc: BaseException, task: str = "The task") -> str:
         ``"<task> stopped on an unexpected error (<type>: <text>; details in the log)"``.
     """
     text = str(exc).strip() or "no details"
-    return f"{task} stopped on an unexpected error ({type(exc).__name__}: {text}; details in the log)"
+    return (f"{task} stopped on an unexpected error ({type(exc).__name__}: {text}; "
+            "details in the log)")
 
 
 def error_message(exc: BaseException, task: str = "The task",
