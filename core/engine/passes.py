@@ -159,11 +159,14 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
             rounding = rounding_error(mean.size, used.n_images,
                                       np.sqrt(float(np.sum(acc.energy))),
                                       float(np.linalg.norm(mean)))
-        previous, last = last, rayleigh_ritz_step(acc, rounding)
+        previous_error = None if last is None else last.error
+        last = None                       # free the previous pass's arrays before the next
+        last = rayleigh_ritz_step(acc, rounding)
+        del acc
         k = min(rank, last.singular_values.size)
         if np.all(last.error[:k] <= options.tolerance * last.singular_values[:k]):
             break
-        if previous is not None and _stalled(previous, last, k):
+        if previous_error is not None and _stalled(previous_error, last.error, k):
             break
         basis = last.next_basis
     if last is None:
@@ -172,22 +175,23 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
     return Refined(b, s, w, res, err, energy, passes, False)
 
 
-def _stalled(previous: RitzStep, last: RitzStep, k: int) -> bool:
+def _stalled(previous: np.ndarray, last: np.ndarray, k: int) -> bool:
     """True when a pass tightened no bound by a fifth: the bounds sit at the float32 rounding
     floor (or the spectrum has no gap), so more passes would cost time for nothing. The
     factor is our own choice, no published source."""
-    return bool(np.all(last.error[:k] > 0.8 * previous.error[:k]))
+    return bool(np.all(last[:k] > 0.8 * previous[:k]))
 
 
 def _plain(acc: PassAccumulator, rank: int, passes: int) -> Refined:
     """Keep the basis as it is: singular values are the norms of the weight rows, sorted."""
     from modescope.core.decomposition import fix_signs
 
-    norms = np.sqrt(np.sum(acc.weights ** 2, axis=1))
+    weights = acc.weights.astype(np.float64)
+    norms = np.sqrt(np.sum(weights ** 2, axis=1))
     order = np.argsort(norms)[::-1]
     k = min(rank, norms.size)
     basis = np.asarray(acc.basis, dtype=np.float32)[:, order]
-    weights = acc.weights[order]
+    weights = weights[order]
     residual = acc.residual + np.sum(weights[k:] ** 2, axis=0)
     b, w = fix_signs(basis[:, :k], weights[:k])
     return Refined(np.asfortranarray(b), norms[order][:k].copy(), w, residual, None,

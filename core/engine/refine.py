@@ -61,7 +61,7 @@ def project_block(basis: np.ndarray, mean: np.ndarray, block: np.ndarray):
     """
     w, res, energy, _ = _project_rows(np.asarray(basis, dtype=np.float32),
                                       np.asarray(mean, dtype=np.float32), block, want_y=False)
-    return w, res, energy
+    return w.astype(np.float64), res, energy
 
 
 def _project_rows(basis: np.ndarray, mean: np.ndarray, block: np.ndarray, want_y: bool):
@@ -73,7 +73,7 @@ def _project_rows(basis: np.ndarray, mean: np.ndarray, block: np.ndarray, want_y
     yt = (wt.T @ centred) if want_y else None                              # q x pixels
     centred -= wt @ basis.T                                                # now the remainder
     residual = np.einsum("ij,ij->i", centred, centred, dtype=np.float64)
-    return wt.T.astype(np.float64), residual, energy, yt
+    return wt.T, residual, energy, yt
 
 
 class PassAccumulator:
@@ -96,7 +96,8 @@ class PassAccumulator:
         self.basis = np.asfortranarray(basis, dtype=np.float32)
         self.mean = np.asarray(mean, dtype=np.float32)
         q, pixels = basis.shape[1], basis.shape[0]
-        self.weights = np.zeros((q, n_images))
+        # float32: the products that make them are float32 already (half the memory per image)
+        self.weights = np.zeros((q, n_images), dtype=np.float32)
         self.residual = np.zeros(n_images)
         self.energy = np.zeros(n_images)
         # per block in float32 (m terms), summed over blocks in float64
@@ -235,12 +236,11 @@ def rayleigh_ritz_step(acc: PassAccumulator, rounding: float = 0.0) -> RitzStep:
     RitzStep
     """
     u = acc.basis                                            # pixels x q, float32
-    gram = acc.weights @ acc.weights.T                        # V diag(theta) V^T, float64
-    lam, vec = np.linalg.eigh(gram)
+    lam, vec = np.linalg.eigh(_gram64(acc.weights))          # W W^T = V diag(theta) V^T
     order = np.argsort(lam)[::-1]
     theta, vec = np.maximum(lam[order], 0.0), vec[:, order]
     sv = np.sqrt(theta)
-    weights = vec.T @ acc.weights
+    weights = _rotated64(vec.T, acc.weights)
     ritz_rows = vec.T.astype(np.float32) @ u.T               # q x pixels: Ritz vectors as rows
     vt_yt = vec.T @ acc.yt                                    # rows of M U V, float64
     res_rows = vt_yt - theta[:, None] * ritz_rows
@@ -253,6 +253,27 @@ def rayleigh_ritz_step(acc: PassAccumulator, rounding: float = 0.0) -> RitzStep:
     return RitzStep(basis=np.asfortranarray(basis), singular_values=sv, weights=weights,
                     error=error, outside=acc.residual.copy(),
                     next_basis=np.asfortranarray(next_rows.T))
+
+
+_CHUNK = 8192   # images per float64 chunk when float32 weights are combined
+
+
+def _gram64(w32: np.ndarray) -> np.ndarray:
+    """Return ``W W^T`` accumulated in float64, converting ``_CHUNK`` columns at a time."""
+    gram = np.zeros((w32.shape[0], w32.shape[0]))
+    for start in range(0, w32.shape[1], _CHUNK):
+        part = w32[:, start:start + _CHUNK].astype(np.float64)
+        gram += part @ part.T
+    return gram
+
+
+def _rotated64(rot: np.ndarray, w32: np.ndarray) -> np.ndarray:
+    """Return ``rot @ W`` in float64 without a float64 copy of the whole of ``W``."""
+    out = np.empty((rot.shape[0], w32.shape[1]))
+    for start in range(0, w32.shape[1], _CHUNK):
+        sl = slice(start, start + _CHUNK)
+        out[:, sl] = rot @ w32[:, sl].astype(np.float64)
+    return out
 
 
 def _orthonormal_rows(rows: np.ndarray) -> np.ndarray:

@@ -35,6 +35,7 @@ from __future__ import annotations
 
 import os
 import re
+import sys
 from collections import Counter
 from dataclasses import dataclass
 from typing import Callable, Iterable
@@ -65,7 +66,7 @@ _ORIENTATION_TAG = 0x0112
 _MAX_PROBLEMS_IN_MESSAGE = 5
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True)
 class Problem:
     """A file, or one page of a file, that was skipped, and why.
 
@@ -89,7 +90,7 @@ class Problem:
         return f"{where}: {self.reason}"
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, slots=True)
 class ImageRef:
     """One image of a collection, as found by the scan (no pixels).
 
@@ -308,36 +309,51 @@ def _oriented_size(img: Image.Image) -> tuple[int, int]:
     return (rows, cols)
 
 
-def _probe(path: str, problems: list[Problem]) -> list[ImageRef]:
-    """Open ``path`` (header only) and return one ImageRef per usable page."""
-    refs: list[ImageRef] = []
+def _read_headers(path: str) -> list[tuple[int, str, int, int]]:
+    """Return ``(page, mode, rows, cols)`` of every page of ``path`` from its header.
+
+    Only Pillow's work happens here; a damaged or foreign file raises whatever Pillow raises.
+    """
+    pages = []
+    with Image.open(path) as img:
+        n_pages = int(getattr(img, "n_frames", 1)) if img.format == "TIFF" else 1
+        for page in range(n_pages):
+            if page:
+                img.seek(page)
+            rows, cols = _oriented_size(img) if img.mode in SUPPORTED_MODES else (0, 0)
+            pages.append((page, img.mode, rows, cols))
+    return pages
+
+
+def _probe(path: str, problems: list[Problem], sizes: dict | None = None) -> list[ImageRef]:
+    """Open ``path`` (header only) and return one ImageRef per usable page.
+
+    ``sizes`` shares one tuple per distinct size among the refs of a scan (a large collection
+    holds one size many times over: per-image bookkeeping is what grows with the collection).
+    """
     try:
-        with Image.open(path) as img:
-            n_pages = 1
-            if img.format == "TIFF":
-                n_pages = int(getattr(img, "n_frames", 1))
-            for page in range(n_pages):
-                if page:
-                    img.seek(page)
-                mode = img.mode
-                page_label = page if n_pages > 1 else None
-                if mode not in SUPPORTED_MODES:
-                    problems.append(Problem(
-                        path, f"image mode {mode!r} is not supported (supported: "
-                              f"{', '.join(SUPPORTED_MODES)})", page_label))
-                    continue
-                rows, cols = _oriented_size(img)
-                if rows < 1 or cols < 1:
-                    problems.append(Problem(path, f"image has no pixels (size {rows}x{cols})",
-                                            page_label))
-                    continue
-                refs.append(ImageRef(path=path, page=page, size=(rows, cols), mode=mode))
+        pages = _read_headers(path)
     except MemoryError:
         raise
     except Exception as exc:  # noqa: BLE001 - Pillow plugins raise many types on bad files
         problems.append(Problem(
             path, f"not an image Modescope can read ({_short_message(exc, path)})"))
         return []
+    sizes = {} if sizes is None else sizes
+    refs: list[ImageRef] = []
+    for page, mode, rows, cols in pages:
+        page_label = page if len(pages) > 1 else None
+        if mode not in SUPPORTED_MODES:
+            problems.append(Problem(
+                path, f"image mode {mode!r} is not supported (supported: "
+                      f"{', '.join(SUPPORTED_MODES)})", page_label))
+            continue
+        if rows < 1 or cols < 1:
+            problems.append(Problem(path, f"image has no pixels (size {rows}x{cols})",
+                                    page_label))
+            continue
+        size = sizes.setdefault((rows, cols), (rows, cols))
+        refs.append(ImageRef(path=path, page=page, size=size, mode=sys.intern(mode)))
     return refs
 
 
@@ -430,10 +446,11 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
 
     total = len(files)
     found: list[ImageRef] = []
+    sizes: dict = {}
     for done, path in enumerate(files, start=1):
         if cancel is not None and cancel():
             raise AnalysisCancelled("scan of the image sources was cancelled")
-        found.extend(_probe(path, problems))
+        found.extend(_probe(path, problems, sizes))
         if progress is not None:
             progress(done, total)
 
