@@ -85,7 +85,6 @@ class StreamingSVD:
         self._map_a = np.zeros((0, 0))
         self._map_b = np.zeros(0)
         self._chunks: list[list[np.ndarray]] = []   # [A, b, W] per chunk since the last flush
-        self._updates = 0
 
     # ---------------------------------------------------------------------------------------
     def update(self, block: np.ndarray) -> None:
@@ -129,7 +128,6 @@ class StreamingSVD:
         n_new = self.n_seen + m
         self.mean = self.mean + (m / n_new) * (block_mean - self.mean)
         self.n_seen = n_new
-        self._updates += 1
 
     def _centred_rows(self, block: np.ndarray):
         """Return the centred block as rows (plus the mean-shift row), its mean and energy.

@@ -100,11 +100,6 @@ class BasisModel(QAbstractListModel):
     def decomposition(self) -> Decomposition | None:
         return self._d
 
-    @property
-    def serial(self) -> int:
-        """Number of the installed decomposition (bumped on every new one)."""
-        return self._serial
-
     def set_decomposition(self, d: Decomposition | None) -> None:
         """Install a new decomposition, keeping rows (and the view's selection) where possible."""
         old_rows = self.rowCount()

@@ -124,11 +124,6 @@ class OutlierTableModel(QAbstractTableModel):
         return self._d
 
     @property
-    def row_images(self) -> np.ndarray:
-        """Image index of every row, in display order (a copy)."""
-        return self._rows.copy()
-
-    @property
     def marks(self) -> np.ndarray:
         return self._marks
 

@@ -111,7 +111,6 @@ class WeightsView(ThrottledRedraw, QWidget):
             raise TypeError(f"state must be an AppState, got {type(state).__name__}")
         self.state = state
         self._syncing = False
-        self._k = -1
         self._pending_selected: int | None = None
         self.colour_values = np.zeros(0)
         self.colour_meaning = "image number"
