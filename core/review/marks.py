@@ -23,7 +23,7 @@ from typing import Callable
 
 import numpy as np
 
-from modescope.core.validation import check_choice, check_int
+from modescope.core.validation import check_choice, check_instance, check_int
 from modescope.core.output.atomic import atomic_writer
 from modescope.core.decomposition import Decomposition
 from modescope.core.errors import NoUsableImagesError
@@ -44,10 +44,7 @@ _WHICH = ("flagged", "excluded", "all")
 
 
 def _check_decomposition(decomposition) -> Decomposition:
-    if not isinstance(decomposition, Decomposition):
-        raise TypeError("decomposition must be a Decomposition, got "
-                        f"{type(decomposition).__name__}")
-    return decomposition
+    return check_instance("decomposition", decomposition, Decomposition)
 
 
 def _check_indices(decomposition: Decomposition, indices) -> np.ndarray:

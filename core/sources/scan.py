@@ -42,7 +42,7 @@ from typing import Callable, Iterable
 
 from PIL import Image, UnidentifiedImageError
 
-from modescope.core.validation import check_choice
+from modescope.core.validation import check_bool, check_callable, check_choice
 from modescope.core.errors import AnalysisCancelled, NoUsableImagesError
 
 __all__ = [
@@ -357,17 +357,6 @@ def _probe(path: str, problems: list[Problem], sizes: dict | None = None) -> lis
     return refs
 
 
-def _check_callable(name: str, value) -> None:
-    if value is not None and not callable(value):
-        raise TypeError(f"{name} must be callable or None, got {type(value).__name__}")
-
-
-def _check_bool(name: str, value) -> bool:
-    if not isinstance(value, bool):
-        raise TypeError(f"{name} must be True or False, got {type(value).__name__} {value!r}")
-    return value
-
-
 def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
                  resize_mismatched: bool = False,
                  progress: Callable[[int, int], None] | None = None,
@@ -414,11 +403,11 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
     (240, (96, 128, 1))
     """
     source_list = _as_source_list(sources)
-    _check_bool("recursive", recursive)
+    check_bool("recursive", recursive)
     check_choice("color", color, _COLORS)
-    _check_bool("resize_mismatched", resize_mismatched)
-    _check_callable("progress", progress)
-    _check_callable("cancel", cancel)
+    check_bool("resize_mismatched", resize_mismatched)
+    check_callable("progress", progress)
+    check_callable("cancel", cancel)
 
     problems: list[Problem] = []
     files: list[str] = []
