@@ -44,13 +44,13 @@ def _write_one(args):
     img = Image.fromarray(rgb)
     if color == "gray":
         img = img.convert("L")
+    from modescope.core.output.atomic import atomic_writer
     name = Path(folder) / f"frame_{index:05d}.{fmt}"
-    tmp = name.with_suffix(".tmp")
-    if fmt == "jpg":
-        img.save(tmp, format="JPEG", quality=90)
-    else:
-        img.save(tmp, format="PNG")
-    os.replace(tmp, name)
+    with atomic_writer(name, "wb", overwrite=True) as fh:
+        if fmt == "jpg":
+            img.save(fh, format="JPEG", quality=90)
+        else:
+            img.save(fh, format="PNG")
 
 
 def make_collection(folder: Path, n: int, size, color: str, fmt: str) -> Path:
