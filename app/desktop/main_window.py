@@ -75,8 +75,8 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
     analyze : callable, optional
         Stand-in for ``pipeline.analyze`` (tests).
     confirm_dialogs : bool, default True
-        Show message boxes for errors; tests may turn them off (the text is still kept in
-        :attr:`last_message`).
+        Show message boxes for errors; tests may turn them off (the title and text then go to
+        the status bar).
     """
 
     def __init__(self, settings: Settings | None = None, *,
@@ -91,7 +91,6 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self.runner = AnalysisRunner(self, analyze=analyze)
         self._confirm_dialogs = confirm_dialogs
         self.message_box: QMessageBox | None = None
-        self.last_message = ""
         self.current_file: str | None = None
         self.export_dialog = None   # made on first use (modescope.app.desktop.dialogs.export)
         self._run_started = 0.0
@@ -140,7 +139,6 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self._update_export_action()
 
     def _show_error(self, title: str, text: str) -> None:
-        self.last_message = text
         if self._closing:
             return
         if not self._confirm_dialogs:

@@ -160,7 +160,7 @@ class Settings:
         Parameters
         ----------
         options : StoredOptions or any object with the same attributes
-            (e.g. ``modescope.core.engine.pipeline.AnalysisOptions``).
+            (e.g. ``modescope.core.engine.options.AnalysisOptions``).
         """
         for name in ("rank", "color", "downscale", "recursive", "resize_mismatched"):
             if not hasattr(options, name):

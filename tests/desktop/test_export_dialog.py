@@ -44,6 +44,20 @@ def _tick(dlg, parts):
         box.setChecked(name in parts)
 
 
+def _click(qtbot, button):
+    """Click a radio button as the user does; it must be enabled and end up checked."""
+    assert button.isEnabled(), button.text()
+    qtbot.mouseClick(button, Qt.MouseButton.LeftButton)
+    assert button.isChecked(), button.text()
+
+
+def _choose_format(dlg, key):
+    """Pick the preview format ``key`` in the format box."""
+    index = dlg.format_combo.findData(key)
+    assert index >= 0, key
+    dlg.format_combo.setCurrentIndex(index)
+
+
 def _export(qtbot, dlg):
     with qtbot.waitSignal(dlg.exportFinished, timeout=TIMEOUT) as blocker:
         qtbot.mouseClick(dlg.export_button, Qt.MouseButton.LeftButton)
@@ -103,7 +117,7 @@ def test_previews_weights_spectrum_write_the_planned_files(qtbot, dialog, gray_d
     assert len(planned) == d.n_images + 2
     assert report.written == planned
     assert dialog.report_view.toPlainText() == report.summary()
-    assert "Done: 10 files written" in dialog.message_text()
+    assert "Done: 10 files written" in dialog.message_label.text()
 
     # the weights table against an independent projection of the source files read with
     # Pillow: w = U_k^T (x - mean), U from numpy.linalg.svd (LAPACK, in the conftest fixture)
@@ -153,7 +167,7 @@ def test_selected_images_export_only_those(qtbot, dialog, gray_pngs, out):
     _tick(dialog, ("previews", "weights"))
     assert dialog.images_selected.isEnabled()
     assert dialog.images_selected.text() == "Selected images (2)"
-    dialog.set_images_choice("selected")
+    _click(qtbot, dialog.images_selected)
     dialog.set_folder(out)
     _export(qtbot, dialog)
     assert _listing(out) == ["img_01_r3.png", "img_04_r3.png", "weights_r3.csv"]
@@ -165,7 +179,7 @@ def test_selected_falls_back_to_the_current_image(qtbot, dialog, out):
     dialog.state.set_selection_set([])
     dialog.state.set_selected(6)
     _tick(dialog, ("previews",))
-    dialog.set_images_choice("selected")
+    _click(qtbot, dialog.images_selected)
     dialog.set_folder(out)
     _export(qtbot, dialog)
     assert _listing(out) == ["img_06_r3.png"]
@@ -199,7 +213,7 @@ def test_flagged_uses_the_score_table_flags(qtbot, make_decomposition, tmp_path,
     assert {7, 19} <= set(expected.tolist())
     assert dlg.images_flagged.isEnabled()
     assert f"({expected.size} at 95 %, rank 2)" in dlg.images_flagged.text()
-    dlg.set_images_choice("flagged")
+    _click(qtbot, dlg.images_flagged)
     dlg.set_folder(out)
     report = _export(qtbot, dlg)
     names = _listing(out)
@@ -227,7 +241,7 @@ def test_existing_file_without_overwrite_is_refused(qtbot, dialog, out):
     dialog.exportStarted.connect(started.append)
     with qtbot.waitSignal(dialog.exportFailed, timeout=TIMEOUT) as blocker:
         qtbot.mouseClick(dialog.export_button, Qt.MouseButton.LeftButton)
-    text = dialog.message_text()
+    text = dialog.message_label.text()
     assert text == blocker.args[0]
     assert "spectrum.csv" in text and "already exist" in text and "Traceback" not in text
     assert dialog.message_label.isVisible()
@@ -248,7 +262,7 @@ def test_source_folder_is_refused_unless_allowed(qtbot, dialog, gray_pngs):
     dialog.set_folder(source_folder)
     assert not dialog.source_folder_check.isChecked()
     assert not dialog.start_export()
-    text = dialog.message_text()
+    text = dialog.message_label.text()
     assert "source images" in text and "Allow writing into a folder" in text
     after = {p.name: p.read_bytes() for p in source_folder.iterdir() if p.is_file()}
     assert after == before
@@ -263,7 +277,7 @@ def test_missing_folder_is_created_and_no_folder_is_explained(qtbot, dialog, tmp
     dialog.set_folder("")
     assert not dialog.export_button.isEnabled()
     assert not dialog.start_export()
-    assert "destination folder" in dialog.message_text()
+    assert "destination folder" in dialog.message_label.text()
     target = tmp_path / "new" / "deeper"
     _tick(dialog, ("spectrum",))
     dialog.set_folder(target)
@@ -281,8 +295,8 @@ def test_failures_show_a_message_not_a_traceback(qtbot, dialog, out, monkeypatch
     with qtbot.waitSignal(dialog.exportFailed, timeout=TIMEOUT) as blocker:
         assert dialog.start_export()
     assert blocker.args[0].startswith("The export stopped on an unexpected error")
-    assert "the disk caught fire" in dialog.message_text()
-    assert "Traceback" not in dialog.message_text()
+    assert "the disk caught fire" in dialog.message_label.text()
+    assert "Traceback" not in dialog.message_label.text()
     assert not dialog.is_running() and dialog.export_button.isEnabled()
     assert dialog.message_label.isVisible() and not dialog.progress_bar.isVisible()
     assert dialog.last_report is None
@@ -294,9 +308,9 @@ def test_failures_show_a_message_not_a_traceback(qtbot, dialog, out, monkeypatch
     monkeypatch.setattr(export_job_module, "run_export", full)
     with qtbot.waitSignal(dialog.exportFailed, timeout=TIMEOUT):
         assert dialog.start_export()
-    assert "no space left on device" in dialog.message_text()
-    assert "spectrum.csv" in dialog.message_text()
-    assert not dialog.message_text().startswith("The export stopped on an unexpected error")
+    assert "no space left on device" in dialog.message_label.text()
+    assert "spectrum.csv" in dialog.message_label.text()
+    assert not dialog.message_label.text().startswith("The export stopped on an unexpected error")
     _assert_no_work_left(qtbot, dialog)
 
 
@@ -316,13 +330,13 @@ def test_cancel_after_the_first_file_keeps_it(qtbot, dialog, out):
 
     dialog.exportStarted.connect(on_started)
     report = _export(qtbot, dialog)
-    plan = dialog.last_plan
+    plan = dialog.worker.plan                    # the plan the export wrote from
     assert report.cancelled
     assert report.written == plan.files[:1]
     assert _listing(out) == [plan.files[0].name]
     assert report.skipped == plan.files[1:]
     assert [s[:2] for s in seen] == [(0, 10), (1, 10)]
-    assert "Stopped: 1 of 10 files" in dialog.message_text()
+    assert "Stopped: 1 of 10 files" in dialog.message_label.text()
     _assert_no_work_left(qtbot, dialog)
 
 
@@ -401,7 +415,7 @@ def test_stopped_before_it_began_writes_nothing(qtbot, dialog, out):
     dialog.exportFinished.connect(finished.append)
     assert dialog.start_export()
     qtbot.waitUntil(lambda: not dialog.is_running(), timeout=TIMEOUT)
-    assert dialog.message_text() == "Stopped: 0 of 9 files were written and are complete."
+    assert dialog.message_label.text() == "Stopped: 0 of 9 files were written and are complete."
     assert finished == [] and dialog.last_report is None
     assert _listing(out) == []
     assert dialog.export_button.isEnabled()
@@ -444,9 +458,9 @@ def test_resolution_and_compression_lines(qtbot, dialog, gray_decomposition):
 def test_quality_only_for_jpeg_and_webp(qtbot, dialog):
     _tick(dialog, ("previews",))
     for key, enabled in (("png", False), ("jpg", True), ("webp", True), ("tiff", False)):
-        dialog.set_image_format(key)
+        _choose_format(dialog, key)
         assert dialog.quality_spin.isEnabled() is enabled, key
-    dialog.set_image_format("jpg")
+    _choose_format(dialog, "jpg")
     _tick(dialog, ("weights",))
     assert not dialog.quality_spin.isEnabled()               # no previews, no format
     assert not dialog.float16_check.isEnabled()

@@ -182,7 +182,7 @@ def test_open_saved_analysis_and_bad_file(qtbot, window, gray_decomposition, tmp
     bad = tmp_path / "bad.npz"
     bad.write_bytes(b"not an npz")
     assert not window.open_analysis(str(bad))
-    assert "bad.npz" in window.last_message
+    assert window.message_box.isVisible() and "bad.npz" in window.message_box.text()
     assert window.state.decomposition is d            # the good analysis stays
     window.message_box.close()
 
@@ -399,7 +399,7 @@ def test_ingest_scan_summary(qtbot, window, small_collection):
     source_set = blocker.args[0]
     assert source_set.n_images == 40
     assert "40 images of 48 × 64 pixels" in pane.summary_label.text()
-    assert pane.problem_count() == 0
+    assert pane.problem_table.rowCount() == 0
     pane.downscale_spin.setValue(2)
     assert "at 24 × 32" in pane.summary_label.text()
 
@@ -413,7 +413,7 @@ def test_ingest_lists_skipped_files(qtbot, window, small_collection, tmp_path):
     with qtbot.waitSignal(window.ingest.scanFinished, timeout=TIMEOUT):
         window.ingest.set_sources([str(mixed)])
     pane = window.ingest
-    assert pane.problem_count() == 1
+    assert pane.problem_table.rowCount() == 1
     assert pane.problem_table.item(0, 0).text() == "zz_broken.png"
     assert pane.problem_table.item(0, 1).text()
     assert "5 images" in pane.summary_label.text() and "1 skipped" in pane.summary_label.text()
@@ -536,12 +536,13 @@ def test_pane_after_a_failed_or_scan_cancelled_run(qtbot, ini_settings, broken_f
 def test_nothing_to_analyse_and_bad_options_are_messages(qtbot, ini_settings):
     w = MainWindow(ini_settings, confirm_dialogs=False)
     qtbot.addWidget(w)
+    shown = w.statusBar().currentMessage      # the message boxes are off: the status bar
     assert w.start_analysis([], StoredOptions()) is False
-    assert w.last_message == "Add a folder or image files first."
+    assert shown() == "Nothing to analyse: Add a folder or image files first."
     assert w.refit_analysis([], StoredOptions()) is False
-    assert w.last_message == "Every image is marked excluded."
+    assert shown() == "Nothing to analyse: Every image is marked excluded."
     assert w.refit_analysis([("a.png", 0)], StoredOptions(rank=0)) is False
-    assert "rank" in w.last_message
+    assert shown().startswith("Options not valid: ") and "rank" in shown()
     assert not w.runner.is_running()
     w.close()
 

@@ -453,8 +453,8 @@ def test_export_error_names_the_file(qtbot, view, state, tmp_path, monkeypatch):
     bad = tmp_path / "no_such_folder" / "excluded.csv"
     _save_as(monkeypatch, bad)
     assert view.export_list("excluded", "csv") is None
-    assert str(bad) in view.last_message
     assert view.message_box is not None and view.message_box.isVisible()
+    assert str(bad) in view.message_box.text()
     view.message_box.close()
     assert not bad.exists()
     # nothing excluded: a message, no dialog
@@ -462,7 +462,7 @@ def test_export_error_names_the_file(qtbot, view, state, tmp_path, monkeypatch):
     monkeypatch.setattr(QFileDialog, "getSaveFileName",
                         staticmethod(lambda *a, **k: pytest.fail("no dialog expected")))
     assert view.export_list("excluded", "csv") is None
-    assert "No image is excluded" in view.last_message
+    assert "No image is excluded" in view.message_box.text()
     view.message_box.close()
 
 

@@ -8,6 +8,7 @@ import time
 import pytest
 
 from modescope.app.desktop.settings import StoredOptions
+import modescope.app.desktop.views.sources as sources_module
 from modescope.app.desktop.views.sources import IngestPane
 from modescope.core.sources import scan as scan_module
 
@@ -26,28 +27,42 @@ def pane(qtbot):
 
 @pytest.fixture
 def slow_folder(tmp_path, monkeypatch):
-    """A folder of N_FILES image files whose header reading is slowed down (and counted)."""
+    """A folder of N_FILES image files whose header reading is slowed down (and counted).
+
+    Returns the folder, the files probed and the list of times at which the pane's scans
+    (``scan_collection`` in the pane's background thread) returned or raised.
+    """
     for i in range(N_FILES):
         (tmp_path / f"frame_{i:05d}.png").touch()
     probed = []
     lock = threading.Lock()
 
-    def slow_probe(path, problems):
+    def slow_probe(path, problems, *rest):
         time.sleep(PROBE_SECONDS)
         with lock:
             probed.append(path)
         return []
 
     monkeypatch.setattr(scan_module, "_probe", slow_probe)
-    return tmp_path, probed
+    ended = []
+    real_scan = sources_module.scan_collection
+
+    def watched_scan(*args, **kwargs):
+        try:
+            return real_scan(*args, **kwargs)
+        finally:
+            ended.append(time.monotonic())
+
+    monkeypatch.setattr(sources_module, "scan_collection", watched_scan)
+    return tmp_path, probed, ended
 
 
-def _stops_promptly(qtbot, pane, probed, stop) -> float:
+def _stops_promptly(qtbot, probed, ended, stop) -> float:
     qtbot.waitUntil(lambda: len(probed) >= 5, timeout=TIMEOUT)
     t0 = time.monotonic()
     stop()
-    qtbot.waitUntil(lambda: not pane.is_scanning(), timeout=TIMEOUT)
-    return time.monotonic() - t0
+    qtbot.waitUntil(lambda: len(ended) == 1, timeout=TIMEOUT)
+    return ended[0] - t0
 
 
 def test_scan_result_reaches_the_pane(qtbot, pane, small_collection):
@@ -65,16 +80,16 @@ def test_scan_error_is_a_message(qtbot, pane, broken_folder):
         pane.add_sources([str(broken_folder)])
     assert blocker.args == [None]
     assert pane.summary_label.text().startswith("No usable image: no usable image in")
-    assert "frame_0.png" in pane.scan_message
+    assert "frame_0.png" in pane.summary_label.text()
 
 
 def test_stop_scan_stops_a_long_scan(qtbot, pane, slow_folder):
-    folder, probed = slow_folder
+    folder, probed, ended = slow_folder
     finished = []
     pane.scanFinished.connect(finished.append)
     pane.add_sources([str(folder)])
     pane.rescan()                                   # now, not after the debounce
-    seconds = _stops_promptly(qtbot, pane, probed, pane.stop_scan)
+    seconds = _stops_promptly(qtbot, probed, ended, pane.stop_scan)
     assert seconds < 1.0
     # it stopped long before the end: the cancel check reached the core scan
     assert len(probed) < N_FILES // 4
@@ -83,20 +98,20 @@ def test_stop_scan_stops_a_long_scan(qtbot, pane, slow_folder):
 
 
 def test_rescan_stops_the_older_scan(qtbot, pane, slow_folder):
-    folder, probed = slow_folder
+    folder, probed, ended = slow_folder
     pane.add_sources([str(folder)])
     pane.rescan()
     qtbot.waitUntil(lambda: len(probed) >= 5, timeout=TIMEOUT)
     pane.source_list.selectAll()
     pane.remove_selected()                          # no sources: the rescan only stops
     pane.rescan()
-    qtbot.waitUntil(lambda: not pane.is_scanning(), timeout=2000)
+    qtbot.waitUntil(lambda: len(ended) == 1, timeout=2000)
     assert len(probed) < N_FILES // 4
     assert pane.summary_label.text() == "Add a folder of aligned images, or drop one here."
 
 
 def test_shutdown_stops_a_long_scan(qtbot, pane, slow_folder):
-    folder, probed = slow_folder
+    folder, probed, ended = slow_folder
     pane.add_sources([str(folder)])
     pane.rescan()
     qtbot.waitUntil(lambda: len(probed) >= 5, timeout=TIMEOUT)

@@ -104,7 +104,6 @@ class ExportDialog(ExportFormMixin, ExportChoicesMixin, QDialog):
         self.state = state
         self.settings = settings
         self.worker: ExportJob | None = None     # the job of the current or last export
-        self.last_plan: ExportPlan | None = None
         self.last_report: ExportReport | None = None
         self.runner = BackgroundRunner(self, task=EXPORT_TASK,
                                        describe_error=export_error_message)
@@ -175,7 +174,7 @@ class ExportDialog(ExportFormMixin, ExportChoicesMixin, QDialog):
 
     # ----- planning ----------------------------------------------------------------------------
     def plan_options(self) -> dict[str, Any]:
-        """Return the keyword options of :class:`~modescope.core.output.export.ExportOptions`
+        """Return the keyword options of :class:`~modescope.core.output.options.ExportOptions`
         shown now."""
         parts = self.chosen_parts()
         choice = self.images_choice()
@@ -264,7 +263,6 @@ class ExportDialog(ExportFormMixin, ExportChoicesMixin, QDialog):
             self._show_message(text, "error")
             self.exportFailed.emit(text)
             return False
-        self.last_plan = plan
         self.last_report = None
         if self.settings is not None:
             self.settings.set_export_folder(os.fspath(plan.folder))

@@ -78,19 +78,6 @@ class ExportChoicesMixin:
         """Return the preview format key ("png", "jpg", "webp" or "tiff")."""
         return str(self.format_combo.currentData())
 
-    def set_image_format(self, key: str) -> None:
-        """Choose the preview format by key.
-
-        Raises
-        ------
-        ValueError
-            If ``key`` is not one of the preview formats.
-        """
-        i = self.format_combo.findData(key)
-        if i < 0:
-            raise ValueError(f"image format must be one of {', '.join(FORMATS)}, got {key!r}")
-        self.format_combo.setCurrentIndex(i)
-
     def images_choice(self) -> str:
         """Return "all", "selected" or "flagged"."""
         if self.images_selected.isChecked():
@@ -98,20 +85,6 @@ class ExportChoicesMixin:
         if self.images_flagged.isChecked():
             return "flagged"
         return "all"
-
-    def set_images_choice(self, choice: str) -> None:
-        """Choose "all", "selected" or "flagged".
-
-        Raises
-        ------
-        ValueError
-            If ``choice`` is none of the three.
-        """
-        buttons = {"all": self.images_all, "selected": self.images_selected,
-                   "flagged": self.images_flagged}
-        if choice not in buttons:
-            raise ValueError(f"images must be all, selected or flagged, got {choice!r}")
-        buttons[choice].setChecked(True)
 
     def folder(self) -> str:
         """Return the destination folder typed or chosen ("" when none)."""
@@ -264,10 +237,6 @@ class ExportChoicesMixin:
         self.close_button.setText("Stop and close" if running else "Close")
 
     # ----- the message line --------------------------------------------------------------------
-    def message_text(self) -> str:
-        """Return the message shown in the dialog ("" when none)."""
-        return self.message_label.text()
-
     def _show_message(self, text: str, kind: str = "error") -> None:
         self.message_label.setStyleSheet(MESSAGE_STYLE[kind])
         self.message_label.setText(text)

@@ -61,7 +61,7 @@ def export_error_message(exc: BaseException) -> str:
 
 
 class ExportJob(Job):
-    """Write the files of one :class:`~modescope.core.output.export.ExportPlan` in a pool thread.
+    """Write the files of one :class:`~modescope.core.output.plan.ExportPlan` in a pool thread.
 
     Create it in the GUI thread and hand it to a ``BackgroundRunner`` (``submit``).
 

@@ -98,7 +98,6 @@ class DuplicatesView(QWidget):
             raise TypeError(f"state must be an AppState, got {type(state).__name__}")
         self.state = state
         self.report: DuplicateReport | None = None
-        self.last_message = ""
         self.message_box: QMessageBox | None = None
         self._syncing = False
         self._search = BackgroundRunner(self, threads=1, task=_TASK,
@@ -234,7 +233,6 @@ class DuplicatesView(QWidget):
         self.select_group_action.setEnabled(has_groups and self.tree.currentItem() is not None)
 
     def _warn(self, title: str, text: str) -> None:
-        self.last_message = text
         if self.message_box is not None:
             self.message_box.close()
         box = QMessageBox(QMessageBox.Icon.Information, title, text,
@@ -260,10 +258,6 @@ class DuplicatesView(QWidget):
             item = item.parent()
             kind = item.data(0, KIND_ROLE) if item is not None else None
         return int(kind[1]) if kind else -1
-
-    def group_items(self) -> list[QTreeWidgetItem]:
-        """Return the top-level (group) items."""
-        return [self.tree.topLevelItem(i) for i in range(self.tree.topLevelItemCount())]
 
     # ----- search ----------------------------------------------------------------------------
     @Slot()

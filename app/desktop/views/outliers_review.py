@@ -29,7 +29,7 @@ def stored_options_of(decomposition: Decomposition) -> StoredOptions:
     """Return the sources pane's options of the analysis that made ``decomposition``.
 
     Reads ``decomposition.metadata["options"]`` (a dict of
-    :class:`~modescope.core.engine.pipeline.AnalysisOptions` fields, as the pipeline stores it); the
+    :class:`~modescope.core.engine.options.AnalysisOptions` fields, as the pipeline stores it); the
     defaults when it is absent.
 
     Raises
@@ -68,14 +68,11 @@ class ReviewActions:
     export_actions : dict
         ``(which, kind) -> QAction`` for which in {"excluded", "flagged"} and kind in
         {"csv", "paths"}.
-    last_message : str
-        The text of the last warning shown.
     message_box : QMessageBox or None
         The warning shown (non-blocking).
     """
 
     def _init_review(self) -> None:
-        self.last_message = ""
         self.message_box: QMessageBox | None = None
         self._export_dir = ""
 
@@ -187,8 +184,7 @@ class ReviewActions:
         return answer == QMessageBox.StandardButton.Yes
 
     def _warn(self, title: str, text: str) -> None:
-        """Show a message without blocking (the text is kept in :attr:`last_message`)."""
-        self.last_message = text
+        """Show a message without blocking (the box is kept in :attr:`message_box`)."""
         if self.message_box is not None:
             self.message_box.close()
         box = QMessageBox(QMessageBox.Icon.Warning, title, text, QMessageBox.StandardButton.Ok,

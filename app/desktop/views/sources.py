@@ -159,7 +159,6 @@ class IngestPane(QWidget):
         self.source_set = None
         self._scanned_key = None     # (sources, options) the current source_set was made for
         self._pending_key = None
-        self.scan_message = ""
         self._scan_timer = QTimer(self)
         self._scan_timer.setSingleShot(True)
         self._scan_timer.setInterval(120)
@@ -375,10 +374,6 @@ class IngestPane(QWidget):
     def _schedule_scan(self, *_args) -> None:
         self._scan_timer.start()
 
-    def is_scanning(self) -> bool:
-        """Return True while a scan is queued or running (a stopped one winding down included)."""
-        return self._scan_timer.isActive() or self._scans.is_busy()
-
     @Slot()
     def rescan(self) -> None:
         """Scan the sources now, in the background (an older scan is stopped, its result
@@ -388,7 +383,6 @@ class IngestPane(QWidget):
         sources = self.sources()
         if not sources:
             self.source_set = None
-            self.scan_message = ""
             self.summary_label.setText("Add a folder of aligned images, or drop one here.")
             self.set_problems(())
             self._update_buttons()
@@ -447,7 +441,6 @@ class IngestPane(QWidget):
             return
         self.source_set = source_set
         self._scanned_key = (tuple(os.path.abspath(os.fspath(s)) for s in sources), options)
-        self.scan_message = ""
         self._refresh_summary()
         self._update_buttons()
 
@@ -455,7 +448,6 @@ class IngestPane(QWidget):
     def _on_scan_done(self, source_set) -> None:
         self.source_set = source_set
         self._scanned_key = self._pending_key
-        self.scan_message = ""
         self._refresh_summary()
         self.set_problems(source_set.problems)
         self._update_buttons()
@@ -464,7 +456,6 @@ class IngestPane(QWidget):
     @Slot(str)
     def _on_scan_error(self, message: str) -> None:
         self.source_set = None
-        self.scan_message = message
         self.summary_label.setText(f"No usable image: {message}")
         self.set_problems(())
         self._update_buttons()
@@ -494,10 +485,6 @@ class IngestPane(QWidget):
             reason_item.setToolTip(reason)
             table.setItem(row, 0, file_item)
             table.setItem(row, 1, reason_item)
-
-    def problem_count(self) -> int:
-        """Return the number of skipped files listed."""
-        return self.problem_table.rowCount()
 
     def shutdown(self, timeout_ms: int = 3000) -> bool:
         """Stop any scan and wait for it at most ``timeout_ms``; return True when it stopped."""
