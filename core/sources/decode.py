@@ -66,15 +66,13 @@ from PIL import Image, ImageOps
 
 from modescope.core.validation import check_bool, check_choice, check_int, check_path
 from modescope.core.errors import SourceError
-from modescope.core.sources.pixels import (_DecodeFailure, _downscale, _jpeg_draft, _native,
-                                           _resize, _to_float)
+from modescope.core.sources.pixels import (_ORIENTATION_TAG, _DecodeFailure, _downscale,
+                                           _jpeg_draft, _native, _open_reduced, _resize,
+                                           _to_float)
 from modescope.core.sources.scan import (ImageRef, Problem, SourceSet, _header_orientation,
                                          _short_message)
 
 __all__ = ["analysis_shape", "load_image", "load_preview", "Block", "iter_blocks"]
-
-_ORIENTATION_TAG = 0x0112
-
 
 @dataclass(frozen=True, eq=False)
 class Block:
@@ -277,40 +275,6 @@ def load_image(ref: ImageRef, source_set: SourceSet, downscale: int = 1, *,
         problem = Problem(ref.path, failure.reason, _page_label(ref, source_set))
         raise SourceError(str(problem)) from failure.__cause__
     return out
-
-
-def _fit(rows: int, cols: int, max_side: int) -> tuple[int, int]:
-    """Return (rows, cols) scaled so that the longer side is ``max_side`` (never enlarged)."""
-    if max(rows, cols) <= max_side:
-        return rows, cols
-    scale = max_side / max(rows, cols)
-    return (max(1, min(max_side, round(rows * scale))), max(1, min(max_side, round(cols * scale))))
-
-
-def _open_reduced(img: Image.Image, page: int, max_side: int) -> tuple[Image.Image, tuple]:
-    """Select the page, decode it (JPEG at 1/2, 1/4 or 1/8 when that is enough), orient it.
-
-    Returns the oriented image, reduced by whole blocks (8-bit L and RGB only, cropped like
-    :func:`_downscale`), and the preview size (rows, cols) of the full oriented image.
-    """
-    if page:
-        img.seek(page)
-    cols, rows = img.size
-    swapped = img.format != "TIFF" and _header_orientation(img) >= 5  # TIFF rotates itself
-    if swapped:
-        rows, cols = cols, rows
-    target = _fit(rows, cols, max_side)
-    if img.format == "JPEG" and target != (rows, cols):
-        img.draft(img.mode, target if swapped else target[::-1])  # (width, height) as stored
-    img.load()
-    orientation = img.getexif().get(_ORIENTATION_TAG, 1)
-    if orientation in (2, 3, 4, 5, 6, 7, 8):
-        img = ImageOps.exif_transpose(img)
-    f = max(1, min(img.height // target[0], img.width // target[1]))
-    if f > 1 and img.mode in ("L", "RGB"):
-        box = (0, 0, img.width // f * f, img.height // f * f)
-        img = img.reduce(f, box)
-    return img, target
 
 
 def load_preview(path, page: int = 0, *, max_side: int = 64,

@@ -7,7 +7,8 @@ the decoder and the preview maker share one copy:
 * :func:`_native` and :func:`_to_float`: stored values, their scale and the colour rule;
 * :func:`_resize` (LANCZOS, for mismatched sizes) and :func:`_downscale` (area average);
 * :func:`_jpeg_draft`: ask libjpeg (through Pillow's ``Image.draft``) to decode a JPEG file
-  at 1/2, 1/4 or 1/8 of its size when the analysis downscales it anyway.
+  at 1/2, 1/4 or 1/8 of its size when the analysis downscales it anyway;
+* :func:`_fit` and :func:`_open_reduced`: the preview's size and reduced decode.
 
 Reduced-size JPEG decoding
 --------------------------
@@ -24,8 +25,11 @@ orientation reverses, the stored length must be a multiple of ``s``.
 from __future__ import annotations
 
 import numpy as np
-from PIL import Image
+from PIL import Image, ImageOps
 
+from modescope.core.sources.scan import _header_orientation
+
+_ORIENTATION_TAG = 0x0112
 _LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
 _INT32_MAX = float(np.iinfo(np.int32).max)
 _EIGHT_BIT_RGB = ("RGB", "RGBA", "RGBX")
@@ -152,3 +156,37 @@ def _jpeg_draft(img: Image.Image, orientation: int, oriented_size: tuple[int, in
             return 1
         return max(1, round(cols / drafted[1][2]))
     return 1
+
+
+def _fit(rows: int, cols: int, max_side: int) -> tuple[int, int]:
+    """Return (rows, cols) scaled so that the longer side is ``max_side`` (never enlarged)."""
+    if max(rows, cols) <= max_side:
+        return rows, cols
+    scale = max_side / max(rows, cols)
+    return (max(1, min(max_side, round(rows * scale))), max(1, min(max_side, round(cols * scale))))
+
+
+def _open_reduced(img: Image.Image, page: int, max_side: int) -> tuple[Image.Image, tuple]:
+    """Select the page, decode it (JPEG at 1/2, 1/4 or 1/8 when that is enough), orient it.
+
+    Returns the oriented image, reduced by whole blocks (8-bit L and RGB only, cropped like
+    :func:`_downscale`), and the preview size (rows, cols) of the full oriented image.
+    """
+    if page:
+        img.seek(page)
+    cols, rows = img.size
+    swapped = img.format != "TIFF" and _header_orientation(img) >= 5  # TIFF rotates itself
+    if swapped:
+        rows, cols = cols, rows
+    target = _fit(rows, cols, max_side)
+    if img.format == "JPEG" and target != (rows, cols):
+        img.draft(img.mode, target if swapped else target[::-1])  # (width, height) as stored
+    img.load()
+    orientation = img.getexif().get(_ORIENTATION_TAG, 1)
+    if orientation in (2, 3, 4, 5, 6, 7, 8):
+        img = ImageOps.exif_transpose(img)
+    f = max(1, min(img.height // target[0], img.width // target[1]))
+    if f > 1 and img.mode in ("L", "RGB"):
+        box = (0, 0, img.width // f * f, img.height // f * f)
+        img = img.reduce(f, box)
+    return img, target
