@@ -26,7 +26,8 @@ import numpy as np
 
 from modescope.core.decomposition import fix_signs
 
-__all__ = ["PassAccumulator", "RitzStep", "certify", "rayleigh_ritz_step", "project_block"]
+__all__ = ["PassAccumulator", "RitzStep", "angle_bounds", "certify", "rayleigh_ritz_step",
+           "project_block", "rounding_error"]
 
 # unit roundoff of float32 (2**-24): the pixel-sized products run in float32
 _U32 = float(np.finfo(np.float32).eps) / 2
@@ -124,22 +125,30 @@ def certify(singular_values: np.ndarray, residual_norms: np.ndarray,
             rounding: float = 0.0) -> np.ndarray:
     """Return an upper bound of ``|computed - true|`` for each singular value.
 
-    For the symmetric matrix ``M = A A^T``, a unit vector ``u`` and ``theta = u^T M u``, some
-    eigenvalue ``lambda`` of ``M`` satisfies ``|lambda - theta| <= ||M u - theta u||`` (the
-    residual bound for symmetric matrices; Parlett, "The Symmetric Eigenvalue Problem", Thm
-    4.5.1, also Golub and Van Loan, "Matrix Computations", 4th ed., Thm 8.1.13). With
-    ``sigma = sqrt(lambda)`` and ``s = sqrt(theta) > 0``:
-    ``|sigma - s| = |lambda - theta| / (sigma + s) <= ||r|| / s``. The Ritz values of a
-    Rayleigh-Ritz step never exceed the matching eigenvalues (Cauchy interlacing, Parlett Thm
-    10.1.1), so the computed ``s_i`` is a lower bound of ``sigma_i`` and the bound is matched to
-    mode ``i`` as long as no mode above it is missing from the subspace (the streaming pass
-    starts every mode it keeps; a mode outside the subspace would have to be larger than
-    ``s_i`` yet invisible in every block).
+    For the symmetric matrix ``M = A A^T``, a unit Ritz vector ``u_i`` and its Ritz value
+    ``theta_i = u_i^T M u_i`` with residual ``r_i = ||M u_i - theta_i u_i||``:
+
+    * some eigenvalue ``lambda`` lies within ``r_i`` of ``theta_i`` (the residual bound for
+      symmetric matrices; Parlett, "The Symmetric Eigenvalue Problem", Thm 4.5.1; Golub and
+      Van Loan, "Matrix Computations", 4th ed., Thm 8.1.13);
+    * when no other eigenvalue lies within ``delta_i`` of ``theta_i``, that eigenvalue is
+      within ``r_i**2 / delta_i`` (the Kato-Temple inequality; Parlett Thm 11.7.1). Here
+      ``delta_i`` is estimated from the other Ritz values: the distance to the nearest other
+      ``theta_j`` less its ``r_j`` (each such interval holds an eigenvalue), and to
+      ``theta_q + r_q`` for the eigenvalues beyond the subspace (an estimate: the subspace
+      iteration finds the largest ones first). The sharper bound is used only when
+      ``delta_i > r_i``.
+
+    With ``sigma = sqrt(lambda)`` and ``s = sqrt(theta) > 0``,
+    ``|sigma - s| = |lambda - theta| / (sigma + s) <= e_i / s``. Ritz values never exceed the
+    matching eigenvalues (Cauchy interlacing, Parlett Thm 10.1.1), so ``s_i`` is a lower bound
+    of ``sigma_i`` and the bound is matched to mode ``i`` while no mode above it is missing from
+    the subspace.
 
     Parameters
     ----------
     singular_values : ndarray, shape (q,)
-        Ritz singular values ``s_i = sqrt(theta_i)``, non-negative.
+        Ritz singular values ``s_i = sqrt(theta_i)``, non-negative, descending.
     residual_norms : ndarray, shape (q,)
         ``||M u_i - theta_i u_i||`` of each Ritz vector.
     rounding : float, optional
@@ -148,19 +157,70 @@ def certify(singular_values: np.ndarray, residual_norms: np.ndarray,
     Returns
     -------
     ndarray, shape (q,), float64
-        ``||r_i|| / s_i + rounding``; ``sqrt(||r_i||) + rounding`` where ``s_i`` is 0 (then
-        ``sigma = sqrt(lambda) <= sqrt(||r_i||)``).
+        ``e_i / s_i + rounding``; ``sqrt(e_i) + rounding`` where ``s_i`` is 0 (then
+        ``sigma = sqrt(lambda) <= sqrt(e_i)``).
 
     Examples
     --------
+    Two well separated values: the gap makes the bound quadratic in the residual.
+
     >>> certify(np.array([2.0, 1.0]), np.array([1e-4, 1e-3])).tolist()
-    [5e-05, 0.001]
+    [1.66...e-09, 0.001]
     """
     s = np.asarray(singular_values, dtype=np.float64)
     r = np.asarray(residual_norms, dtype=np.float64)
+    e = np.minimum(r, _gap_bound(s ** 2, r))
     with np.errstate(divide="ignore", invalid="ignore"):
-        bound = np.where(s > 0, r / np.where(s > 0, s, 1.0), np.sqrt(r))
+        bound = np.where(s > 0, e / np.where(s > 0, s, 1.0), np.sqrt(e))
     return bound + float(rounding)
+
+
+def _gaps(theta: np.ndarray, r: np.ndarray) -> np.ndarray:
+    """Estimated distance ``delta_i`` from each ``theta_i`` to every other eigenvalue.
+
+    The nearest other Ritz value less its residual, and the estimated top of the spectrum
+    beyond the subspace (``theta_q + r_q``); ``-inf`` for the last one (nothing known past it).
+    """
+    q = theta.size
+    out = np.full(q, -np.inf)
+    if q < 2:
+        return out
+    beyond = theta[-1] + r[-1]
+    for i in range(q - 1):
+        others = np.delete(np.arange(q), i)
+        out[i] = min(float(np.min(np.abs(theta[i] - theta[others]) - r[others])),
+                     float(theta[i] - beyond))
+    return out
+
+
+def _gap_bound(theta: np.ndarray, r: np.ndarray) -> np.ndarray:
+    """Kato-Temple bound ``r_i**2 / delta_i`` where ``delta_i > r_i``, else infinity."""
+    delta = _gaps(theta, r)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(delta > r, r ** 2 / np.where(delta > 0, delta, 1.0), np.inf)
+
+
+def angle_bounds(singular_values: np.ndarray, residual_norms: np.ndarray) -> np.ndarray:
+    """Return a bound of the sine of the angle between each Ritz vector and its true vector.
+
+    Davis-Kahan sin(theta) theorem (Davis and Kahan, SIAM J. Numer. Anal. 7, 1970; Parlett,
+    "The Symmetric Eigenvalue Problem", Thm 11.7.1's corollary): ``sin angle <= r_i /
+    delta_i`` with the gap ``delta_i`` estimated as in :func:`certify`. NaN where the vector is
+    not determined on its own: its Ritz value lies within a relative 1e-3 of another one (a
+    near-degenerate pair, where only the pair's plane is meaningful); infinity where the gap is
+    not yet known to exceed the residual.
+    """
+    s = np.asarray(singular_values, dtype=np.float64)
+    r = np.asarray(residual_norms, dtype=np.float64)
+    theta = s ** 2
+    delta = _gaps(theta, r)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        out = np.where(delta > r, r / np.where(delta > 0, delta, 1.0), np.inf)
+    for i in range(theta.size - 1):
+        near = np.abs(np.delete(theta, i) - theta[i]) < 1e-3 * theta[i]
+        if near.any():
+            out[i] = np.nan
+    return out
 
 
 def rounding_error(n_pixels: int, n_images: int, centred_norm: float, mean_norm: float) -> float:
@@ -197,9 +257,15 @@ class RitzStep:
     basis : ndarray, shape (pixels, q), float32
         Ritz vectors, descending singular value, signs fixed.
     singular_values : ndarray, shape (q,)
-    weights : ndarray, shape (q, n)
+    rotation : ndarray, shape (q, q)
+        Rows turn the pass's coordinates into Ritz coordinates (signs fixed): the weights are
+        ``rotation @ pass_weights``, formed only for the modes kept (:meth:`truncate`).
+    pass_weights : ndarray, shape (q, n), float32
+        Exact coordinates of every image in the pass's basis.
     error : ndarray, shape (q,)
         :func:`certify` bound of each singular value.
+    angle : ndarray, shape (q,)
+        :func:`angle_bounds` of each Ritz vector (NaN: not determined on its own).
     outside : ndarray, shape (n,)
         Squared norm of each centred image outside ``span(basis)``.
     next_basis : ndarray, shape (pixels, q), float32
@@ -208,17 +274,31 @@ class RitzStep:
 
     basis: np.ndarray
     singular_values: np.ndarray
-    weights: np.ndarray
+    rotation: np.ndarray
+    pass_weights: np.ndarray
     error: np.ndarray
+    angle: np.ndarray
     outside: np.ndarray
     next_basis: np.ndarray
 
     def truncate(self, rank: int):
-        """Return (basis, singular values, weights, residual, error) of the first ``rank``."""
+        """Return (basis, singular values, weights, residual, error) of the first ``rank``.
+
+        The residual of an image outside the first ``rank`` modes is its part outside the
+        subspace plus its squared Ritz coordinates beyond ``rank`` (formed chunk by chunk, never
+        for all images at once).
+        """
         k = min(rank, self.singular_values.size)
-        residual = self.outside + np.sum(self.weights[k:] ** 2, axis=0)
+        weights = _rotated64(self.rotation[:k], self.pass_weights)
+        beyond = np.zeros(weights.shape[1])
+        if k < self.rotation.shape[0]:
+            for start in range(0, weights.shape[1], _CHUNK):
+                sl = slice(start, start + _CHUNK)
+                rest = self.rotation[k:] @ self.pass_weights[:, sl].astype(np.float64)
+                beyond[sl] = np.sum(rest ** 2, axis=0)
+        residual = self.outside + beyond
         return (np.asfortranarray(self.basis[:, :k]), self.singular_values[:k].copy(),
-                self.weights[:k].copy(), residual, self.error[:k].copy())
+                weights, residual, self.error[:k].copy())
 
 
 def rayleigh_ritz_step(acc: PassAccumulator, rounding: float = 0.0) -> RitzStep:
@@ -240,18 +320,21 @@ def rayleigh_ritz_step(acc: PassAccumulator, rounding: float = 0.0) -> RitzStep:
     order = np.argsort(lam)[::-1]
     theta, vec = np.maximum(lam[order], 0.0), vec[:, order]
     sv = np.sqrt(theta)
-    weights = _rotated64(vec.T, acc.weights)
     ritz_rows = vec.T.astype(np.float32) @ u.T               # q x pixels: Ritz vectors as rows
     vt_yt = vec.T @ acc.yt                                    # rows of M U V, float64
     res_rows = vt_yt - theta[:, None] * ritz_rows
-    error = certify(sv, np.linalg.norm(res_rows, axis=1), rounding)
+    res_norms = np.linalg.norm(res_rows, axis=1)
+    error = certify(sv, res_norms, rounding)
+    angle = angle_bounds(sv, res_norms)
+    del res_rows
     next_rows = _orthonormal_rows(np.where(theta[:, None] > 0,
                                            vt_yt / np.where(theta > 0, theta, 1.0)[:, None],
                                            ritz_rows))
-    basis, weights = fix_signs(np.ascontiguousarray(ritz_rows.T), weights)
-    del res_rows, vt_yt
-    return RitzStep(basis=np.asfortranarray(basis), singular_values=sv, weights=weights,
-                    error=error, outside=acc.residual.copy(),
+    del vt_yt
+    basis, signed = fix_signs(np.ascontiguousarray(ritz_rows.T), vec.T)
+    return RitzStep(basis=np.asfortranarray(basis), singular_values=sv, rotation=signed,
+                    pass_weights=acc.weights, error=error, angle=angle,
+                    outside=acc.residual.copy(),
                     next_basis=np.asfortranarray(next_rows.T))
 
 

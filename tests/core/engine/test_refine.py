@@ -122,10 +122,11 @@ def test_slowly_decaying_spectrum_bound_holds_and_says_what_is_not_converged(tmp
 
 
 def test_certificate_formula_on_a_known_matrix():
-    # a diagonal matrix: the Ritz vector e1 + t e2 has a known residual; the true singular
-    # values are the diagonal (no outside reference needed: exact arithmetic by hand)
+    # the formulas by hand: theta = (9, 0), r = (0.3, 0.04). Mode 1 is separated from the other
+    # interval by delta = 9 - 0.04 = 8.96 > r, so Kato-Temple gives 0.3**2 / 8.96, divided by
+    # s = 3; mode 2 (nothing known beyond it) keeps the residual bound, sqrt(0.04) as s = 0
     sv = certify(np.array([3.0, 0.0]), np.array([0.3, 0.04]), rounding=0.01)
-    assert sv.tolist() == pytest.approx([0.1 + 0.01, 0.2 + 0.01])
+    assert sv.tolist() == pytest.approx([0.09 / 8.96 / 3 + 0.01, 0.2 + 0.01])
     rng = np.random.default_rng(0)
     X = rng.standard_normal((30, 12)).astype(np.float32)
     mean = X.mean(axis=1)
