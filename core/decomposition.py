@@ -212,19 +212,53 @@ class Decomposition:
         w = self.weights[:r, index].astype(np.float32)
         return self.mean + self.basis[:, :r] @ w
 
-    def residual_at_rank(self, rank: int | None = None) -> np.ndarray:
+    def residual_at_rank(self, rank: int | None = None,
+                         index: int | None = None) -> np.ndarray | float:
         """Return each image's squared residual norm at rank r (needs ``residual``).
 
         Because the basis is orthonormal, the residual at rank r is the residual at k plus the
-        squared weights of the modes r+1..k.
+        squared weights of the modes r+1..k. At rank 0 it is the image's whole centred energy
+        ``||x_i - mean||**2``.
+
+        Parameters
+        ----------
+        rank : int, optional
+            Number of modes kept, 0..k (default k).
+        index : int, optional
+            One image, 0 <= index < n_images: return its residual only (costs O(k), not
+            O(k n)). Default: every image.
 
         Returns
         -------
-        ndarray, shape (images,)
+        ndarray, shape (images,), float64; or float when ``index`` is given
+
+        Raises
+        ------
+        TypeError
+            If ``rank`` or ``index`` is not an integer.
+        ValueError
+            If ``rank`` or ``index`` is out of range, or the decomposition has no residuals
+            (a streaming snapshot).
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> d = Decomposition(mean=np.zeros(2, np.float32), basis=np.eye(2, dtype=np.float32),
+        ...                   singular_values=np.array([3.0, 1.0]),
+        ...                   weights=np.array([[3.0, 0.0], [0.0, 1.0]]), total_energy=10.0,
+        ...                   image_shape=(1, 2, 1), residual=np.array([0.5, 0.0]))
+        >>> d.residual_at_rank(1).tolist()
+        [0.5, 1.0]
+        >>> d.residual_at_rank(0, index=0)
+        9.5
         """
         if self.residual is None:
             raise ValueError("this decomposition has no residuals yet: run the scoring pass")
         r = self._check_rank(rank)
+        if index is not None:
+            i = check_int("index", index, minimum=0, maximum=self.n_images - 1)
+            tail = self.weights[r:, i].astype(np.float64)
+            return float(self.residual[i] + np.sum(tail ** 2))
         return self.residual + np.sum(self.weights[r:].astype(np.float64) ** 2, axis=0)
 
     def to_image(self, vector: np.ndarray) -> np.ndarray:

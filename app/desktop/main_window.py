@@ -155,7 +155,8 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
 
     # ----- closing -----------------------------------------------------------------------------
     def shutdown(self, timeout_ms: int = SHUTDOWN_TIMEOUT_MS) -> bool:
-        """Cancel any run and stop the worker and scan threads (waiting at most ``timeout_ms``).
+        """Cancel any run and stop the worker, scan and read threads (waiting at most
+        ``timeout_ms`` for each).
 
         Returns
         -------
@@ -165,7 +166,7 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self._memory_timer.stop()
         ok_run = self.runner.shutdown(timeout_ms)
         ok_scan = self.ingest.shutdown(timeout_ms)
-        ok_views = True
+        ok_views = self.inspector.shutdown(timeout_ms)     # a source image being read
         for view in self.views.values():
             stop = getattr(view, "shutdown", None)   # the views with threads of their own
             if callable(stop):

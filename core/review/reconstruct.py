@@ -80,3 +80,42 @@ class LiveReconstruction:
     def image_at(self, rank: int) -> np.ndarray:
         """Return the reconstruction at ``rank`` shaped ``(rows, cols, channels)``."""
         return self.at(rank).reshape(self.decomposition.image_shape)
+
+    def residual_image(self, image, rank: int) -> np.ndarray:
+        """Return the image minus its rank-``rank`` reconstruction, pixel by pixel.
+
+        Parameters
+        ----------
+        image : array_like, shape (rows, cols, channels) or (pixels,)
+            The image itself at analysis resolution (e.g.
+            :func:`modescope.core.engine.pipeline.load_analysis_image`), values in [0, 1].
+        rank : int
+            Modes used, 0..k.
+
+        Returns
+        -------
+        ndarray, shape (rows, cols, channels), float32
+            ``image - reconstruction``: positive where the image is brighter than its
+            reconstruction. A new array (not owned by this object). For the analysed image
+            of a final analysis, the sum of its squares is the image's residual at ``rank``
+            (:meth:`Decomposition.residual_at_rank
+            <modescope.core.decomposition.Decomposition.residual_at_rank>` with ``index``) up
+            to float32 rounding.
+
+        Raises
+        ------
+        TypeError
+            If ``image`` is not numeric or ``rank`` not an integer.
+        ValueError
+            If ``image`` has another number of pixel values than the analysis, or ``rank`` is
+            out of range.
+        """
+        arr = np.asarray(image)
+        if not (np.issubdtype(arr.dtype, np.number) or arr.dtype == np.bool_):
+            raise TypeError(f"image must be a numeric array, got dtype {arr.dtype}")
+        shape = tuple(self.decomposition.image_shape)
+        if arr.shape not in (shape, (self.decomposition.n_pixels,)):
+            raise ValueError(f"image must have shape {shape} or ({self.decomposition.n_pixels},) "
+                             f"as the analysis, got {arr.shape}")
+        vector = self.at(rank)
+        return np.subtract(arr.reshape(shape), vector.reshape(shape), dtype=np.float32)

@@ -8,10 +8,11 @@ import numpy as np
 import pytest
 from PySide6.QtCore import Qt
 
-from modescope.app.desktop.imaging import array_to_qimage, signed_to_qimage
+from modescope.app.desktop.imaging import array_to_qimage
 from modescope.app.desktop.views.inspector import READING_NOTE, Inspector, RANK_DEBOUNCE_MS
 from modescope.app.desktop.state import AppState
 from modescope.core.engine import pipeline
+from modescope.core.output.colormap import CENTRE_INDEX, DIVERGING_LUT
 
 
 @pytest.fixture
@@ -29,19 +30,43 @@ def inspector(qtbot, state):
 
 
 def _settled(qtbot, view) -> None:
-    """Wait until the selected image's source has been read (in the background)."""
-    qtbot.waitUntil(lambda: not view.is_reading(), timeout=10000)
+    """Wait until the image pane no longer says the selected image is being read."""
+    qtbot.waitUntil(lambda: view.source_pane.note() != READING_NOTE, timeout=10000)
 
 
 def _qimage_array(img) -> np.ndarray:
-    """The pixels of a Grayscale8 QImage as (rows, cols) uint8."""
+    """The pixels of a Grayscale8 QImage as (rows, cols) uint8, or of an RGB888 one as
+    (rows, cols, 3)."""
+    channels = 3 if img.format() == img.Format.Format_RGB888 else 1
     ptr = img.constBits()
     arr = np.frombuffer(ptr, dtype=np.uint8, count=img.sizeInBytes())
-    return arr.reshape(img.height(), img.bytesPerLine())[:, :img.width()].copy()
+    arr = arr.reshape(img.height(), img.bytesPerLine())[:, :img.width() * channels].copy()
+    return arr.reshape(img.height(), img.width(), channels) if channels == 3 else arr
+
+
+def _assert_shows_gray(image, expected, atol) -> None:
+    """``image`` (a pane's Grayscale8 QImage) shows ``expected`` (rows, cols) in [0, 1]:
+    each 8-bit level is the rounding of a value within ``atol`` of the expected one."""
+    shown = _qimage_array(image).astype(np.float64)
+    target = np.clip(np.asarray(expected, dtype=np.float64) * 255.0, 0.0, 255.0)
+    assert shown.shape == target.shape
+    np.testing.assert_array_less(np.abs(shown - target), 0.5 + 255.0 * atol + 1e-9)
+
+
+def _assert_shows_residual(image, residual, limit) -> None:
+    """``image`` (the residual pane's QImage) shows ``residual`` (rows, cols) in the diverging
+    colours with ``limit`` at both ends: each pixel is the table row of its value or a
+    neighbour (float32 rounding may move a value across half a row)."""
+    rows = (CENTRE_INDEX + np.rint(np.clip(residual / limit, -1, 1) * 127)).astype(int)
+    shown = _qimage_array(image).astype(int)
+    near = [np.abs(shown - DIVERGING_LUT[np.clip(rows + step, 0, 255)].astype(int)).max(axis=2)
+            == 0 for step in (-1, 0, 1)]
+    assert np.all(near[0] | near[1] | near[2])
+    assert np.mean(near[1]) > 0.9                   # and nearly always the row itself
 
 
 def test_empty_state_shows_hint(inspector):
-    assert inspector.reconstruction_array is None
+    assert inspector.reconstruction_pane.image().isNull()
     assert "start an analysis" in inspector.source_pane.note()
     assert not inspector.rank_slider.isEnabled()
 
@@ -54,24 +79,25 @@ def test_reconstruction_equals_core(qtbot, inspector, state, gray_decomposition,
     state.set_selected(index)
     state.set_rank(rank)
     _settled(qtbot, inspector)
-    expected = d.reconstruct(index, rank).reshape(20, 24, 1)
-    # the inspector updates incrementally (core.reconstruct): equal to float32 rounding
-    np.testing.assert_allclose(inspector.reconstruction_array, expected, atol=1e-6)
+    expected = d.reconstruct(index, rank).reshape(20, 24)
+    # the pane shows the reconstruction in gray, clipped to [0, 1] and rounded to 8 bits; the
+    # inspector updates incrementally (core.reconstruct): equal to float32 rounding
+    _assert_shows_gray(inspector.reconstruction_pane.image(), expected, atol=1e-6)
     # and the same through the reference of the test matrix: mean + U_r (S V^T)_r (LAPACK SVD)
     _, images = gray_pngs
     x = images.reshape(8, -1).T.astype(np.float64)
     mean = x.mean(axis=1)
     u, s, vt = np.linalg.svd(x - mean[:, None], full_matrices=False)
     ref = mean + u[:, :rank] @ (s[:rank] * vt[:rank, index])
-    np.testing.assert_allclose(inspector.reconstruction_array.ravel(), ref, atol=2e-5)
-    # the source is the PNG content read by Pillow (gray_pngs) and the residual their difference
-    np.testing.assert_allclose(inspector.source_array, images[index], atol=1e-6)
-    np.testing.assert_allclose(inspector.residual_array, images[index] - expected, atol=1e-6)
-    # the pane shows the reconstruction in gray, clipped to [0, 1] and rounded to 8 bits
-    shown = _qimage_array(inspector.reconstruction_pane.image())
-    # (at most one 8-bit level apart where float32 rounding lands on a half level)
-    np.testing.assert_allclose(
-        shown.astype(int), np.clip(np.rint(expected[:, :, 0] * 255), 0, 255), atol=1)
+    _assert_shows_gray(inspector.reconstruction_pane.image(), ref.reshape(20, 24), atol=2e-5)
+    # the source is the PNG content read by Pillow (gray_pngs): the very same 8-bit levels
+    np.testing.assert_array_equal(_qimage_array(inspector.source_pane.image()),
+                                  np.rint(images[index, :, :, 0] * 255))
+    # the residual is their difference, at both ends of the legend its largest magnitude
+    residual = images[index, :, :, 0] - expected
+    limit = inspector.legend.limit()
+    assert limit == pytest.approx(float(np.max(np.abs(residual))), abs=1e-6)
+    _assert_shows_residual(inspector.residual_pane.image(), residual, limit)
 
 
 def test_slider_repaints_without_new_svd(qtbot, inspector, state, gray_decomposition,
@@ -92,7 +118,6 @@ def test_slider_repaints_without_new_svd(qtbot, inspector, state, gray_decomposi
     import scipy.sparse.linalg
     monkeypatch.setattr(scipy.linalg, "svd", forbidden)
     monkeypatch.setattr(scipy.sparse.linalg, "svds", forbidden)
-    before = inspector.reconstruction_array.copy()
     before_image = inspector.reconstruction_pane.image().copy()
     paints = []
     monkeypatch.setattr(inspector, "refresh", lambda f=inspector.refresh: paints.append(1) or f())
@@ -101,10 +126,9 @@ def test_slider_repaints_without_new_svd(qtbot, inspector, state, gray_decomposi
     qtbot.waitUntil(lambda: state.rank == 2, timeout=2000)
     assert not calls
     assert paints                             # the view was redrawn
-    assert not np.array_equal(inspector.reconstruction_array, before)
     assert inspector.reconstruction_pane.image() != before_image
-    np.testing.assert_allclose(inspector.reconstruction_array,
-                               d.reconstruct(2, 2).reshape(20, 24, 1), atol=1e-6)
+    _assert_shows_gray(inspector.reconstruction_pane.image(), d.reconstruct(2, 2).reshape(20, 24),
+                       atol=1e-6)
     assert "rank 2" in inspector.reconstruction_pane.title()
 
 
@@ -145,13 +169,16 @@ def test_residual_legend_shows_range(qtbot, inspector, state, gray_decomposition
     state.set_selected(1)
     state.set_rank(1)
     _settled(qtbot, inspector)
-    limit = float(np.max(np.abs(inspector.residual_array)))
-    assert inspector.legend.limit() == pytest.approx(limit)
+    d = gray_decomposition
+    # reference: the file's pixels minus core's rank-1 reconstruction
+    residual = (pipeline.load_analysis_image(d, 1)[:, :, 0]
+                - d.reconstruct(1, 1).reshape(20, 24))
+    limit = float(np.max(np.abs(residual)))
+    assert inspector.legend.limit() == pytest.approx(limit, abs=1e-6)
+    limit = inspector.legend.limit()
     left, mid, right = inspector.legend.labels()
     assert right == f"+{limit:.3g}" and mid == "0" and left.endswith(f"{limit:.3g}")
-    shown = inspector.residual_pane.image()
-    expected = signed_to_qimage(inspector.residual_array, limit)
-    assert shown == expected
+    _assert_shows_residual(inspector.residual_pane.image(), residual, limit)
 
 
 def test_missing_source_still_shows_reconstruction(qtbot, inspector, state,
@@ -162,12 +189,13 @@ def test_missing_source_still_shows_reconstruction(qtbot, inspector, state,
     state.set_decomposition(d.replace(paths=tuple(moved)))
     state.set_selected(0)
     _settled(qtbot, inspector)
-    assert inspector.source_array is None
-    assert "missing" in inspector.source_note and "img_00.png" in inspector.source_note
-    assert "missing" in inspector.source_pane.note()
-    assert inspector.reconstruction_array is not None
+    assert inspector.source_pane.image().isNull()
+    note = inspector.source_pane.note()
+    assert "missing" in note and "img_00.png" in note
     assert not inspector.reconstruction_pane.image().isNull()
-    assert inspector.residual_array is None
+    assert inspector.residual_pane.image().isNull()
+    assert inspector.residual_pane.note() == "No residual without the source image."
+    assert inspector.legend.limit() is None
 
 
 def test_source_cached_while_selected(qtbot, state, gray_decomposition):
@@ -251,12 +279,12 @@ def test_empty_inspector_tells_when_an_analysis_is_running(qtbot):
     state = AppState()
     ins = Inspector(state)
     qtbot.addWidget(ins)
-    assert ins.source_pane._note.startswith("Add images in the Sources pane")
+    assert ins.source_pane.note().startswith("Add images in the Sources pane")
     ins.set_running(True)
-    assert ins.source_pane._note.startswith("Analysis running")
+    assert ins.source_pane.note().startswith("Analysis running")
     assert ins.title_label.text() == "Analysis starting…"
     ins.set_running(False)
-    assert ins.source_pane._note.startswith("Add images in the Sources pane")
+    assert ins.source_pane.note().startswith("Add images in the Sources pane")
 
 
 def test_source_is_read_off_the_gui_thread_and_shown_when_it_arrives(qtbot, state,
@@ -274,16 +302,16 @@ def test_source_is_read_off_the_gui_thread_and_shown_when_it_arrives(qtbot, stat
     state.set_decomposition(gray_decomposition)
     state.set_selected(2)
     # the GUI thread did not wait: the reconstruction is shown, the image is being read
-    assert view.is_reading() and view.source_array is None
+    assert view.source_pane.image().isNull()
     assert view.source_pane.note() == READING_NOTE
-    assert view.reconstruction_array is not None
+    assert not view.reconstruction_pane.image().isNull()
     with qtbot.waitSignal(view.sourceReady, timeout=10000) as blocker:
         gate.set()
     assert blocker.args == [2]
     assert where and not any(where)
-    np.testing.assert_array_equal(view.source_array,
-                                  pipeline.load_analysis_image(gray_decomposition, 2))
-    assert view.source_pane.note() == "" and view.residual_array is not None
+    assert view.source_pane.image() == array_to_qimage(
+        pipeline.load_analysis_image(gray_decomposition, 2))
+    assert view.source_pane.note() == "" and not view.residual_pane.image().isNull()
     assert view.shutdown(5000)
 
 
@@ -307,12 +335,14 @@ def test_read_of_a_superseded_selection_is_ignored(qtbot, state, gray_decomposit
     state.set_selected(4)                  # ... when the user moves on to image 4
     gates[4].set()
     qtbot.waitUntil(lambda: ready == [4], timeout=10000)
-    np.testing.assert_array_equal(view.source_array, np.full((20, 24, 1), 0.4, np.float32))
+    np.testing.assert_array_equal(_qimage_array(view.source_pane.image()),
+                                  np.full((20, 24), 102))          # 0.4 of 255: image 4's
     gates[3].set()                         # the late read of image 3 arrives: dropped
     assert view.shutdown(5000)
     qtbot.wait(30)
     assert ready == [4]
-    np.testing.assert_array_equal(view.source_array, np.full((20, 24, 1), 0.4, np.float32))
+    np.testing.assert_array_equal(_qimage_array(view.source_pane.image()),
+                                  np.full((20, 24), 102))          # 0.4 of 255: image 4's
     assert "Image 5 of" in view.title_label.text()
 
 
@@ -325,7 +355,7 @@ def test_read_failure_is_a_message(qtbot, state, gray_decomposition):
     state.set_decomposition(gray_decomposition)
     state.set_selected(1)
     _settled(qtbot, view)
-    assert view.source_note == ("Source image not available: A file could not be read "
-                                "(/mnt/lost/img.png): Input/output error")
-    assert view.source_pane.note() == view.source_note
+    assert view.source_pane.note() == ("Source image not available: A file could not be read "
+                                       "(/mnt/lost/img.png): Input/output error")
+    assert view.source_pane.image().isNull()
     assert view.residual_pane.note() == "No residual without the source image."

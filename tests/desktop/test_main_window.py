@@ -92,8 +92,10 @@ def test_analysis_reaches_every_view_and_grab_not_blank(qtbot, window, small_col
     assert window.state.decomposition is d and d.exact and d.n_images == 40
     assert any(partial_seen), "partial results did not reach the state during the run"
     assert window.state.selected == 0
-    assert window.inspector.reconstruction_array is not None
-    assert window.inspector.source_array is not None
+    inspector = window.inspector               # the image and its reconstruction are shown
+    qtbot.waitUntil(lambda: not inspector.source_pane.image().isNull(), timeout=TIMEOUT)
+    assert not inspector.reconstruction_pane.image().isNull()
+    assert not inspector.residual_pane.image().isNull()
     assert not window.ingest.is_running() and window.ingest.start_button.isEnabled()
     assert not window.progress_bar.isVisible()
     text = window.status_text()
@@ -297,6 +299,29 @@ def test_close_during_run_stops_thread(qtbot, ini_settings, small_collection):
     w.close()
     assert time.monotonic() - started < 5.0
     assert pool.activeThreadCount() == 0
+
+
+def test_shutdown_waits_for_the_inspectors_read(qtbot, ini_settings, gray_decomposition,
+                                                 tmp_path, monkeypatch):
+    import threading
+
+    gate, started = threading.Event(), threading.Event()
+    real_load = pipeline.load_analysis_image
+
+    def slow_load(decomposition, index):
+        started.set()
+        gate.wait(10)
+        return real_load(decomposition, index)
+
+    monkeypatch.setattr(pipeline, "load_analysis_image", slow_load)
+    w = MainWindow(ini_settings, confirm_dialogs=False)
+    qtbot.addWidget(w)
+    assert w.open_analysis(str(model_file.save_model(tmp_path / "m.npz", gray_decomposition)))
+    w.state.set_selected(1)
+    assert started.wait(10)                    # the inspector is reading an image file
+    assert w.shutdown(200) is False            # ... and the window waits for that read
+    gate.set()
+    assert w.shutdown(5000) is True
 
 
 def test_about_shows_version_and_cautions(qtbot, window):

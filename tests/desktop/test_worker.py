@@ -135,30 +135,35 @@ def test_new_run_replaces_old_one(qtbot, runner, small_collection):
 
 
 def _fake_analyze_factory(n_partials: int, *, raise_exc=None):
-    """A stand-in for pipeline.analyze that sends snapshots as fast as it can."""
+    """A stand-in for pipeline.analyze that sends snapshots as fast as it can.
+
+    ``fake.taken`` lists the snapshots whose ``on_partial`` call returned (the worker took them).
+    """
 
     def fake(sources, options, *, progress, cancel, on_partial):
         progress(SimpleNamespace(stage="learn", done=0, total=n_partials, elapsed=0.0,
                                  rate=0.0, seconds_left=None))
         for i in range(n_partials):
             on_partial(("snapshot", i))
+            fake.taken.append(i)
         if raise_exc is not None:
             raise raise_exc
         progress(SimpleNamespace(stage="score", done=0, total=n_partials, elapsed=0.0,
                                  rate=0.0, seconds_left=None))
         return SimpleNamespace(decomposition=None, cancelled=False, problems=())
 
+    fake.taken = []
     return fake
 
 
 def test_partials_throttled_and_last_one_sent(qtbot):
-    worker = AnalysisWorker(["x"], None, analyze=_fake_analyze_factory(200),
-                            partial_interval=10.0)
+    fake = _fake_analyze_factory(200)
+    worker = AnalysisWorker(["x"], None, analyze=fake, partial_interval=10.0)
     sent, done = [], []
     worker.partial.connect(sent.append)
     worker.finished.connect(done.append)
     worker.run()          # in this thread: direct connections
-    assert worker.partials_seen == 200
+    assert fake.taken == list(range(200))        # every snapshot was handed to the worker
     assert sent == [("snapshot", 0), ("snapshot", 199)]
     assert len(done) == 1
 

@@ -5,11 +5,12 @@ options (``pipeline.load_analysis_image``) in the background (the program's one 
 :mod:`~modescope.app.desktop.workers.background`) and cached while it stays selected; the panes
 say it is being read until it arrives, and a read for an image no longer selected is dropped.
 The reconstruction
-comes from ``core.reconstruct.LiveReconstruction`` (mean plus the first r basis images times the
-image's weights: no SVD is computed here). The residual is ``image - reconstruction``, shown with
-the diverging colour map and a legend of its value range; colour images show the mean over their
-channels. When the source file is missing or changed, a note says so and the reconstruction is
-still shown.
+and the pixel residual come from :class:`~modescope.core.review.reconstruct.LiveReconstruction`
+(mean plus the first r basis images times the image's weights: no SVD is computed here; the
+residual is ``image - reconstruction``), shown with the diverging colour map and a legend of its
+value range; colour images show the mean over their channels. The image's residual at rank r in
+words is :meth:`~modescope.core.decomposition.Decomposition.residual_at_rank`. When the source
+file is missing or changed, a note says so and the reconstruction is still shown.
 
 The rank slider writes ``state.set_rank`` through a short single-shot timer, so dragging it
 repaints the reconstruction live without flooding the other views.
@@ -91,12 +92,11 @@ class Inspector(QWidget):
 
     Attributes
     ----------
-    source_array : ndarray or None, shape (rows, cols, channels)
-        The image shown on the left (None when the source cannot be read).
-    reconstruction_array : ndarray or None, shape (rows, cols, channels)
-        ``decomposition.to_image(decomposition.reconstruct(index, rank))``, unclipped.
-    residual_array : ndarray or None, shape (rows, cols, channels)
-        ``source_array - reconstruction_array``.
+    source_pane, reconstruction_pane, residual_pane : ImagePane
+        The image, its reconstruction at the state's rank and the residual (image minus
+        reconstruction) in the diverging colours, or a note saying why there is none.
+    legend : ColorLegend
+        The residual's value range.
     """
 
     sourceReady = Signal(int)
@@ -122,10 +122,6 @@ class Inspector(QWidget):
         self._reads.finished.connect(self._on_source_read)
         self._reads.failed.connect(self._on_source_failed)
         self._syncing = False
-        self.source_array: np.ndarray | None = None
-        self.reconstruction_array: np.ndarray | None = None
-        self.residual_array: np.ndarray | None = None
-        self.source_note = ""
         self._build()
         self._rank_timer = QTimer(self)
         self._rank_timer.setSingleShot(True)
@@ -215,12 +211,6 @@ class Inspector(QWidget):
     def _push_rank(self) -> None:
         self._state.set_rank(self.rank_slider.value())
 
-    def flush_rank(self) -> None:
-        """Send a pending slider value to the state now."""
-        if self._rank_timer.isActive():
-            self._rank_timer.stop()
-            self._push_rank()
-
     # ----- drawing -----------------------------------------------------------------------------
     def set_running(self, running: bool) -> None:
         """Say whether an analysis is running (the empty view then tells it is coming)."""
@@ -271,16 +261,6 @@ class Inspector(QWidget):
         self.refresh()
         self.sourceReady.emit(int(self._state.selected))
 
-    def is_reading(self) -> bool:
-        """Return True while the selected image's source is being read."""
-        return self._reading
-
-    def clear_cache(self) -> None:
-        """Forget the cached source image (it is read again on the next refresh)."""
-        self._reads.abandon()
-        self._cache_key, self._cache_value, self._cache_error = None, None, ""
-        self._reading = False
-
     def shutdown(self, timeout_ms: int = 3000) -> bool:
         """Drop a read in progress and wait for it at most ``timeout_ms``; True when done."""
         self._reads.abandon()
@@ -294,30 +274,41 @@ class Inspector(QWidget):
         index = self._state.selected
         self._sync_slider(d)
         if d is None or index < 0 or index >= d.n_images or d.rank == 0:
-            self.source_array = self.reconstruction_array = self.residual_array = None
-            self.source_note = ""
-            if d is None:
-                title = "Analysis starting…" if self._running else "No analysis yet"
-            elif d.rank == 0 and d.n_images:
-                title = NO_VARIATION
-            else:
-                title = "No image selected"
-            self.title_label.setText(title)
-            if d is not None:
-                hint = ""
-            elif self._running:
-                hint = "Analysis running: the first results appear after the first block."
-            else:
-                hint = "Add images in the Sources pane and start an analysis."
-            self.source_pane.set_image(None, hint)
-            self.reconstruction_pane.set_image(None)
-            self.residual_pane.set_image(None)
-            self.reconstruction_pane.set_title("Reconstruction")
-            self.legend.set_limit(None)
-            self.energy_label.setText("")
-            self.residual_label.setText("")
+            self._show_nothing(d)
             return
         rank = max(1, min(self._state.rank or d.rank, d.rank))
+        self._show_title(d, index)
+        live = self._live
+        if live is None or live.decomposition is not d or live.index != index:
+            live = self._live = LiveReconstruction(d, index)
+        self._show_images(live, rank)
+        self.pane_area.rearrange()
+        self._show_texts(d, index, rank)
+
+    def _show_nothing(self, d) -> None:
+        """No image to show: say why (no analysis, no variation, nothing selected)."""
+        if d is None:
+            title = "Analysis starting…" if self._running else "No analysis yet"
+        elif d.rank == 0 and d.n_images:
+            title = NO_VARIATION
+        else:
+            title = "No image selected"
+        self.title_label.setText(title)
+        if d is not None:
+            hint = ""
+        elif self._running:
+            hint = "Analysis running: the first results appear after the first block."
+        else:
+            hint = "Add images in the Sources pane and start an analysis."
+        self.source_pane.set_image(None, hint)
+        self.reconstruction_pane.set_image(None)
+        self.residual_pane.set_image(None)
+        self.reconstruction_pane.set_title("Reconstruction")
+        self.legend.set_limit(None)
+        self.energy_label.setText("")
+        self.residual_label.setText("")
+
+    def _show_title(self, d, index: int) -> None:
         path = d.paths[index] if d.paths else ""
         name = os.path.basename(path) if path else f"image {index + 1}"
         page = int(d.pages[index])
@@ -327,58 +318,47 @@ class Inspector(QWidget):
         self.title_label.setText(f"Image {index + 1:,} of {d.n_images:,}: {name}{status}")
         self.title_label.setToolTip(path)
 
-        live = self._live
-        if live is None or live.decomposition is not d or live.index != index:
-            live = self._live = LiveReconstruction(d, index)
+    def _show_images(self, live: LiveReconstruction, rank: int) -> None:
+        """The reconstruction at ``rank``, the source image and the residual (core's)."""
         # incremental: a slider step adds or removes only the modes in between
-        recon = live.image_at(rank).copy()
-        self.reconstruction_array = recon
         self.reconstruction_pane.set_title(f"Reconstruction, rank {rank}")
-        self.reconstruction_pane.set_image(array_to_qimage(recon))
-
-        source, error = self._source(d, index)
-        self.source_array = source
-        self.source_note = error
-        if source is not None:
-            # the source does not change with the rank: convert it once per image
-            if self._source_qimage is None or self._source_qimage[0] is not source:
-                self._source_qimage = (source, array_to_qimage(source))
-            self.source_pane.set_image(self._source_qimage[1])
-            residual = source - recon
-            self.residual_array = residual
-            plane = residual.mean(axis=2) if residual.shape[2] > 1 else residual[:, :, 0]
-            limit = symmetric_limit(plane)
-            self.residual_pane.set_image(signed_to_qimage(plane, limit))
-            self.residual_pane.set_title("Residual" + (" (channel mean)"
-                                                       if residual.shape[2] > 1 else ""))
-            self.legend.set_limit(limit)
-        else:
+        self.reconstruction_pane.set_image(array_to_qimage(live.image_at(rank)))
+        source, error = self._source(live.decomposition, live.index)
+        if source is None:
             self.source_pane.set_image(None, error)
-            self.residual_array = None
             self.residual_pane.set_image(None, "" if self._reading
                                          else "No residual without the source image.")
             self.legend.set_limit(None)
+            return
+        # the source does not change with the rank: convert it once per image
+        if self._source_qimage is None or self._source_qimage[0] is not source:
+            self._source_qimage = (source, array_to_qimage(source))
+        self.source_pane.set_image(self._source_qimage[1])
+        residual = live.residual_image(source, rank)
+        plane = residual.mean(axis=2) if residual.shape[2] > 1 else residual[:, :, 0]
+        limit = symmetric_limit(plane)
+        self.residual_pane.set_image(signed_to_qimage(plane, limit))
+        self.residual_pane.set_title("Residual" + (" (channel mean)"
+                                                   if residual.shape[2] > 1 else ""))
+        self.legend.set_limit(limit)
 
-        self.pane_area.rearrange()
+    def _show_texts(self, d, index: int, rank: int) -> None:
+        """The energy the first ``rank`` modes capture and this image's residual."""
         shares = d.cumulative_energy()
         self.energy_label.setText(
             f"The first {rank} basis image{'s' if rank != 1 else ''} capture "
             f"{100.0 * float(shares[rank - 1]):.1f} % of the collection's variation "
             f"(all {d.rank}: {100.0 * float(shares[-1]):.1f} %).")
-        if d.residual is not None:
-            # this image only: residual at k plus the squared weights of modes rank+1..k
-            w2 = d.weights[:, index].astype(np.float64) ** 2
-            res_i = float(d.residual[index] + np.sum(w2[rank:]))
-            total_i = float(d.residual[index] + np.sum(w2))
-            res = {index: res_i}
-            share = res_i / total_i if total_i > 0 else 0.0
-            pct = 100.0 * share
-            pct_text = f"{pct:.1f}" if pct >= 0.1 or pct == 0 else f"{pct:.2g}"
-            self.residual_label.setText(
-                f"This image at rank {rank}: residual {float(res[index]):.4g} (squared norm), "
-                f"{pct_text} % of its own variation.")
-        else:
+        if d.residual is None:
             self.residual_label.setText("Residuals are computed when the analysis finishes.")
+            return
+        residual = d.residual_at_rank(rank, index=index)
+        whole = d.residual_at_rank(0, index=index)      # the image's own centred energy
+        pct = 100.0 * (residual / whole if whole > 0 else 0.0)
+        pct_text = f"{pct:.1f}" if pct >= 0.1 or pct == 0 else f"{pct:.2g}"
+        self.residual_label.setText(
+            f"This image at rank {rank}: residual {residual:.4g} (squared norm), "
+            f"{pct_text} % of its own variation.")
 
     def _sync_slider(self, d) -> None:
         self._syncing = True

@@ -126,8 +126,6 @@ class AnalysisWorker(Job):
         self._last_scan_progress = -float("inf")
         self._pending = None
         self._stage = ""
-        self.partials_seen = 0      # snapshots handed over by the pipeline
-        self.partials_sent = 0      # snapshots emitted
 
     # ----- callbacks from the pipeline (worker thread) ---------------------------------------
     def _on_progress(self, progress: Any) -> None:
@@ -146,7 +144,6 @@ class AnalysisWorker(Job):
         self.signals.progress.emit(progress)
 
     def _on_partial(self, decomposition: Any) -> None:
-        self.partials_seen += 1
         now = time.monotonic()
         if now - self._last_partial_time >= self._interval:
             self._pending = None
@@ -156,7 +153,6 @@ class AnalysisWorker(Job):
 
     def _send_partial(self, decomposition: Any, now: float | None = None) -> None:
         self._last_partial_time = time.monotonic() if now is None else now
-        self.partials_sent += 1
         self.signals.partial.emit(decomposition)
 
     def _flush_partial(self) -> None:

@@ -48,3 +48,33 @@ def test_validation(decomposition):
         live.at(31)
     with pytest.raises(TypeError, match="must be a Decomposition"):
         LiveReconstruction("model", 0)
+
+
+def test_residual_image_is_the_image_minus_the_reconstruction(decomposition):
+    # reference: the column of the data matrix the factors came from, x = mean + C[:, i]
+    d = decomposition
+    live = LiveReconstruction(d, 5)
+    x = (d.mean.astype(np.float64) + d.basis.astype(np.float64) @ d.weights[:, 5])
+    image = x.reshape(6, 7, 3).astype(np.float32)
+    for r in (0, 1, 12, 30, 3):
+        got = live.residual_image(image, r)
+        assert got.shape == (6, 7, 3) and got.dtype == np.float32
+        direct = image.astype(np.float64) - d.reconstruct(5, r).reshape(6, 7, 3)
+        np.testing.assert_allclose(got, direct, atol=2e-5)
+        # its squared norm is the energy of the weights of the modes left out (orthonormal basis)
+        np.testing.assert_allclose(np.sum(got.astype(np.float64) ** 2),
+                                   np.sum(d.weights[r:, 5] ** 2), rtol=1e-4, atol=1e-8)
+    # a raveled image gives the same; the returned array is a new one each time
+    np.testing.assert_array_equal(live.residual_image(image.ravel(), 3),
+                                  live.residual_image(image, 3))
+    assert not np.shares_memory(live.residual_image(image, 3), live.at(3))
+
+
+def test_residual_image_validation(decomposition):
+    live = LiveReconstruction(decomposition, 2)
+    with pytest.raises(ValueError, match=r"image must have shape \(6, 7, 3\) or \(126,\)"):
+        live.residual_image(np.zeros((7, 6, 3)), 1)
+    with pytest.raises(TypeError, match="numeric"):
+        live.residual_image(np.array([["a"] * 3] * 42), 1)
+    with pytest.raises(ValueError, match="rank must be at most 30"):
+        live.residual_image(np.zeros((6, 7, 3)), 31)
