@@ -1,8 +1,8 @@
 """Start the Modescope workbench.
 
-``python -m modescope.app.desktop.launch [PATH ...]`` (or ``modescope`` with no subcommand) opens the main
-window. With no path the bundled ``sample_images/`` folder is analysed; folders and image files
-given are analysed; a saved analysis (``.npz``) is opened.
+``python -m modescope.app.desktop.launch [PATH ...]`` (or ``modescope`` with no subcommand)
+opens the main window. With no path the bundled ``sample_images/`` folder is analysed; folders
+and image files given are analysed; a saved analysis (``.npz``) is opened.
 """
 
 from __future__ import annotations

@@ -9,8 +9,8 @@ Layout (fresh start)
   side in a window at least 1600 pixels wide, as tabs in a smaller one.
 
 Every dock can be moved, closed (View menu) and put back (View > Reset layout); the layout, the
-window geometry, the options, the last folders and the recent analysis files are remembered
-through :class:`~modescope.app.desktop.settings.Settings`.
+window geometry, the options, the folder file dialogs open in and the recent analysis files are
+remembered through :class:`~modescope.app.desktop.settings.Settings`.
 
 The window is assembled from its parts, one module each: the docks and their layout
 (:mod:`~modescope.app.desktop.window_docks`), actions and menus
@@ -70,8 +70,8 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
     Parameters
     ----------
     settings : Settings, optional
-        Where layout, options, folders and recent files are remembered (default: the user's
-        store for "Modescope").
+        Where layout, options, the dialog folder and recent files are remembered (default:
+        the user's store for "Modescope").
     analyze : callable, optional
         Stand-in for ``pipeline.analyze`` (tests).
     confirm_dialogs : bool, default True

@@ -10,8 +10,6 @@ Keys
 ``options/rank``, ``options/color``, ``options/downscale``, ``options/recursive``,
 ``options/resize_mismatched``
     The analysis options last used in the sources pane.
-``sources/last_folders``
-    The folders and files of the last analysis started.
 ``files/recent``
     Analysis files (``.npz``) opened or saved, most recent first.
 ``dialogs/last_dir``
@@ -126,11 +124,6 @@ class Settings:
                             f"got {type(qsettings).__name__}")
         self._store = qsettings if qsettings is not None else QSettings(ORGANIZATION, APPLICATION)
 
-    @property
-    def store(self) -> QSettings:
-        """The wrapped QSettings."""
-        return self._store
-
     def sync(self) -> None:
         """Write pending changes to permanent storage."""
         self._store.sync()
@@ -176,15 +169,7 @@ class Settings:
         s.setValue("options/recursive", bool(options.recursive))
         s.setValue("options/resize_mismatched", bool(options.resize_mismatched))
 
-    # ----- folders and files -------------------------------------------------------------------
-    def last_folders(self) -> list[str]:
-        """Return the sources of the last analysis started."""
-        return _to_str_list(self._store.value("sources/last_folders", []))
-
-    def set_last_folders(self, paths: Iterable[str]) -> None:
-        """Remember the sources of the analysis just started."""
-        self._store.setValue("sources/last_folders", [os.fspath(p) for p in paths])
-
+    # ----- files -------------------------------------------------------------------------------
     def recent_files(self) -> list[str]:
         """Return analysis files opened or saved, most recent first (at most MAX_RECENT)."""
         return _to_str_list(self._store.value("files/recent", []))[:MAX_RECENT]

@@ -57,7 +57,6 @@ class RunControlMixin:
             return False
         if [os.path.abspath(s) for s in sources] != self.ingest.sources():
             self.ingest.set_sources(sources)
-        self.settings.set_last_folders(sources)
         self.settings.set_options(options)
         # reuse the pane's finished scan of the same sources and options; otherwise stop the
         # pane's scan so the two do not compete, and let the run's scan fill the pane later
@@ -74,8 +73,8 @@ class RunControlMixin:
         """Analyse again only ``images`` ((path, page) pairs), for instance the images of
         the current analysis not marked excluded.
 
-        The Sources pane and the remembered folders are left as they are: a refit is a
-        variant of the current collection, not a new one. Pages of multi-page files that are
+        The Sources pane is left as it is: a refit is a variant of the current collection,
+        not a new one. Pages of multi-page files that are
         not listed are left out.
 
         Returns

@@ -30,10 +30,15 @@ def _deferred_deletes_done_first(qapp):
 
 
 @pytest.fixture
-def ini_settings(tmp_path):
+def ini_path(tmp_path):
+    """The temporary INI file of :func:`ini_settings`."""
+    return tmp_path / "modescope-test.ini"
+
+
+@pytest.fixture
+def ini_settings(ini_path):
     """Settings kept in a temporary INI file (never the user's own store)."""
-    store = QSettings(str(tmp_path / "modescope-test.ini"), QSettings.Format.IniFormat)
-    return Settings(store)
+    return Settings(QSettings(str(ini_path), QSettings.Format.IniFormat))
 
 
 @pytest.fixture(scope="session")

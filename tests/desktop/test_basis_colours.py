@@ -1,4 +1,4 @@
-"""The basis gallery shows the colours of the exported basis images, pixel for pixel.
+"""The basis gallery shows the colours of the exported basis and mean images, pixel for pixel.
 
 The exported PNGs are read back with imageio (an outside decoder); the tiles come from the
 gallery's model exactly as it draws them (its colour limit and icon size).
@@ -11,7 +11,7 @@ import numpy as np
 import pytest
 from PySide6.QtGui import QColor
 
-from modescope.app.desktop.views.gallery import BasisModel, basis_tile_rgb
+from modescope.app.desktop.views.gallery import BasisModel, basis_tile_rgb, mean_tile_rgb
 from modescope.app.desktop.workers.thumbnails import array_to_qimage
 from modescope.core.decomposition import Decomposition
 from modescope.core.output.export import export
@@ -82,3 +82,32 @@ def test_values_halfway_between_two_levels_round_as_in_the_file(tmp_path):
     for j in range(2):
         png = iio.imread(tmp_path / f"basis_{j + 1:03d}.png")
         np.testing.assert_array_equal(basis_tile_rgb(d, j, model.limit(j), model.icon_size), png)
+
+
+@pytest.mark.parametrize("channels", [1, 3])
+def test_mean_tile_equals_the_exported_mean_png(tmp_path, channels):
+    # a mean whose values sit on or a float32 step from the halfway points between two 8-bit
+    # levels, and beyond [0, 1]: a second rounding rule (e.g. adding 0.5) differs by one level
+    levels = (np.arange(255) + 0.5) / 255
+    values = np.concatenate([levels, [-0.2, 0.0, 1.0, 1.3]] * channels)
+    rows, cols = 7, 37                                          # 259 pixels per channel
+    mean = values.reshape(channels, rows * cols).T.ravel().astype(np.float32)
+    basis = np.zeros((mean.size, 1), np.float32)
+    basis[0, 0] = 1.0
+    d = Decomposition(mean=mean, basis=basis, singular_values=np.array([1.0]),
+                      weights=np.array([[1.0, -1.0]]), total_energy=2.0,
+                      image_shape=(rows, cols, channels),
+                      paths=("/nowhere/a.png", "/nowhere/b.png"))
+    export(d, tmp_path, rank=1, what="basis")
+    png = iio.imread(tmp_path / "mean.png")
+    # the outside reference of the file: round half to even of 255 x after clipping
+    file_levels = np.rint(np.clip(mean.astype(np.float64), 0, 1) * 255).reshape(png.shape)
+    np.testing.assert_array_equal(png, file_levels)
+    model = BasisModel(icon_size=112)
+    model.set_decomposition(d)
+    np.testing.assert_array_equal(mean_tile_rgb(d, model.icon_size), png)
+    np.testing.assert_array_equal(mean_tile_rgb(d), png)
+    image = array_to_qimage(mean_tile_rgb(d, model.icon_size))   # the picture handed to Qt
+    for row, col in ((0, 0), (3, 20), (6, 36)):
+        expected = png[row, col] if channels == 3 else [png[row, col]] * 3
+        assert image.pixelColor(col, row) == QColor(*(int(v) for v in expected))

@@ -125,6 +125,10 @@ def test_make_thumbnail_missing_file(tmp_path):
     assert t.source == "reconstruction" and "gone.png" in t.note
     assert (t.image.width(), t.image.height()) == (20, 10)
     assert _pixels(t.image)[3, 3, 0] == 128  # 0.5 * 255 rounded
+    # values halfway between two 8-bit levels round as the exported files do (half to even)
+    halves = ((np.arange(255) + 0.5) / 255).reshape(15, 17, 1)
+    t = make_thumbnail(gone, size=64, fallback=lambda: halves)
+    np.testing.assert_array_equal(_pixels(t.image)[:, :, 0], np.rint(halves[:, :, 0] * 255))
 
 
 # ----- cache -----------------------------------------------------------------------------------

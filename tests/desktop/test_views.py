@@ -21,7 +21,7 @@ from modescope.app.desktop.views.gallery import (LIMIT_ROLE, MODE_ROLE, BasisGal
 from modescope.app.desktop.views.image_list import COL_FILE, COL_RESIDUAL, ImageListView
 from modescope.app.desktop.views.spectrum import SpectrumView, log_ticks
 from modescope.app.desktop.state import AppState
-from modescope.app.desktop.views.weights import WeightsView
+from modescope.app.desktop.views.weights import POINT_COLOURS, WeightsView
 from modescope.core.output.colormap import DIVERGING_LUT
 from modescope.core.decomposition import Decomposition, fix_signs
 
@@ -212,7 +212,7 @@ def test_tile_colours_gray_and_rgb(gray, rgb):
     # rgb: 0.5 + v / (2 L) per channel, L the largest |value| over all channels
     w = rgb.basis[:, 1].reshape(ROWS, COLS, 3).astype(np.float64)
     lim = np.max(np.abs(w))
-    expect = (np.clip(0.5 + w / (2 * lim), 0, 1) * 255 + 0.5).astype(np.uint8)
+    expect = np.rint(np.clip(0.5 + w / (2 * lim), 0, 1) * 255).astype(np.uint8)
     got = basis_tile_rgb(rgb, 1)
     assert np.max(np.abs(got.astype(int) - expect.astype(int))) <= 1
     # zero maps to mid-gray
@@ -335,6 +335,20 @@ def test_weights_scatter_follows_modes(qtbot, state, gray):
     assert state.modes == (2, 5)
 
 
+def _assert_point_colours(w, values):
+    """The points of the weights plane are coloured by ``values`` along the colour bar: each
+    point has the bar's colour nearest to its value's place between the bar's two ends."""
+    lo, hi = w.colour_bar.levels()
+    table = w.colour_bar.colorMap().getLookupTable(0.0, 1.0, POINT_COLOURS, alpha=False,
+                                                   mode="byte").astype(int)
+    shown = np.array([p.brush().color().getRgb()[:3] for p in w.scatter.points()])
+    assert len(shown) == len(values)
+    # which colour of the bar each point has (the table's colours are all different)
+    steps = [int(np.flatnonzero((table == c).all(axis=1))[0]) for c in shown]
+    where = (np.asarray(values, dtype=np.float64) - lo) / (hi - lo) * (POINT_COLOURS - 1)
+    np.testing.assert_array_less(np.abs(np.array(steps) - where), 0.5 + 1e-3)
+
+
 def test_weights_colour_is_residual_or_number(qtbot, state, gray, files):
     w = WeightsView(state)
     qtbot.addWidget(w)
@@ -345,13 +359,15 @@ def test_weights_colour_is_residual_or_number(qtbot, state, gray, files):
     c = data - data.mean(axis=1, keepdims=True)
     b3 = gray.basis[:, :3].astype(np.float64)
     expect = np.sum((c - b3 @ (b3.T @ c)) ** 2, axis=0)
-    np.testing.assert_allclose(w.colour_values, expect, rtol=1e-4, atol=1e-6)
-    assert "residual at rank 3" in w.colour_meaning
     assert w.colour_bar.levels() == pytest.approx((expect.min(), expect.max()), rel=1e-4)
+    _assert_point_colours(w, expect)
+    assert "residual at rank 3" in w.colour_bar.getAxis("left").labelText
+    assert "Colour: residual at rank 3" in w.colour_bar.toolTip()
     state.set_decomposition(gray.replace(residual=None, exact=False))
     _flush(qtbot, w)
-    np.testing.assert_array_equal(w.colour_values, np.arange(1, N + 1))
-    assert w.colour_meaning.startswith("image number")
+    assert w.colour_bar.levels() == pytest.approx((1, N))
+    _assert_point_colours(w, np.arange(1, N + 1))
+    assert w.colour_bar.getAxis("left").labelText.startswith("image number")
 
 
 def test_weights_click_point_and_bars(qtbot, state, gray):

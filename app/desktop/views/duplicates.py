@@ -1,11 +1,11 @@
 """Near-duplicates: groups of images whose weights and residuals are nearly equal.
 
-The user sets a tolerance (a fraction of the RMS centred image norm, default 0.02) and presses
-Find; :func:`modescope.core.review.duplicates.find_duplicates` runs off the GUI thread and the groups
-are listed in a tree (group -> images; a group shows its size and its largest distance). Clicking
-an image selects it everywhere; clicking a group (or "Select group") picks all its images
-(``state.set_selection_set``). "Exclude all but first" marks every image of each group except
-the first as excluded (after a confirmation), to trim redundant data from the next analysis.
+The user sets a tolerance (a fraction of the RMS centred image norm, default 0.02) and presses Find;
+:func:`modescope.core.review.duplicates.find_duplicates` runs off the GUI thread and the groups are
+listed in a tree (group -> images; a group shows its size and its largest distance). Clicking an
+image selects it everywhere; clicking a group (or "Select group") picks all its images
+(``state.set_selection_set``). "Exclude all but first" marks every image of each group except the
+first as excluded (after a confirmation), to trim redundant data from the next analysis.
 
 The distance compares weights exactly but residuals by norm only, so a group is a list of
 candidates to look at, not a proof that the images are the same. Images are numbered from 1 for

@@ -1,7 +1,7 @@
 """Basis gallery: the mean image and the ranked basis images as tiles.
 
-Each tile shows one basis image with its number, singular value, energy share and cumulative
-share. Signed values are drawn with the diverging colour table of :mod:`modescope.core.output.colormap`
+Each tile shows one basis image with its number, singular value, energy share and cumulative share.
+Signed values are drawn with the diverging colour table of :mod:`modescope.core.output.colormap`
 centred on zero; the limit L (the value shown at both ends) is set **per tile** to the largest
 absolute value of that basis image and is stated in the tile's tooltip; a shared colour bar above
 the tiles says how to read the colours. RGB basis images are shown per channel as
@@ -23,7 +23,7 @@ from PySide6.QtGui import QBrush, QColor, QFont, QIcon, QLinearGradient, QPainte
 from PySide6.QtWidgets import QLabel, QListView, QSizePolicy, QVBoxLayout, QWidget
 
 from modescope.core.output.colormap import DIVERGING_LUT
-from modescope.core.output.images import basis_image_rgb, signed_image_rgb
+from modescope.core.output.images import basis_image_rgb, mean_image, signed_image_rgb
 from modescope.core.decomposition import Decomposition
 
 from modescope.app.words import counted
@@ -45,9 +45,13 @@ def _subsample(image: np.ndarray, longest: int) -> np.ndarray:
 
 
 def mean_tile_rgb(decomposition: Decomposition, longest: int = 10_000) -> np.ndarray:
-    """Return the mean image as uint8 gray (rows, cols) or RGB (rows, cols, 3), clipped to [0, 1]."""
-    img = _subsample(decomposition.to_image(decomposition.mean), longest)
-    a = (np.clip(img, 0.0, 1.0) * 255.0 + 0.5).astype(np.uint8)
+    """Return the mean image as uint8 gray (rows, cols) or RGB (rows, cols, 3) for display.
+
+    The levels are core's (:func:`~modescope.core.output.images.mean_image`: clipped to [0, 1],
+    rounded to 8 bits), so the tile shows exactly the pixels of the exported ``mean.png``;
+    large images keep every n-th pixel.
+    """
+    a = _subsample(mean_image(decomposition), longest)
     return a[:, :, 0] if a.shape[2] == 1 else a
 
 
@@ -407,7 +411,7 @@ class BasisGallery(ThrottledRedraw, QWidget):
 
     # ----- view -> state ---------------------------------------------------------------------
     @Slot(QModelIndex, QModelIndex)
-    def _on_current_changed(self, current: QModelIndex, previous: QModelIndex) -> None:
+    def _on_current_changed(self, current: QModelIndex, _previous: QModelIndex) -> None:
         if self._syncing or not current.isValid():
             return
         self.pick(current.row() - 1)

@@ -1,11 +1,12 @@
 """Image list: every image of the analysis with a thumbnail, its file name and its residual.
 
 A :class:`QTableView` over :class:`ImageTableModel` (one row per image, no per-row widgets, fixed
-row height) behind a :class:`QSortFilterProxyModel` driven by a filter box, so 10,000 images
-scroll smoothly. Thumbnails are asked for only by rows on screen and made off the GUI thread by
-:class:`~modescope.app.desktop.workers.thumbnails.ThumbnailMaker` from the source files (the reconstruction at the
-current rank when a file is missing). Selecting rows writes ``state.set_selected`` /
-``state.set_selection_set``; state changes select and scroll to the row without echo.
+row height) behind a :class:`QSortFilterProxyModel` driven by a filter box, so 10,000 images scroll
+smoothly. Thumbnails are asked for only by rows on screen and made off the GUI thread by
+:class:`~modescope.app.desktop.workers.thumbnails.ThumbnailMaker` from the source files (the
+reconstruction at the current rank when a file is missing). Selecting rows writes
+``state.set_selected`` / ``state.set_selection_set``; state changes select and scroll to the row
+without echo.
 
 Images are numbered from 1 for display; ``state.selected`` stays 0-based.
 """

@@ -30,9 +30,10 @@ from modescope.app.words import counted
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 
-__all__ = ["WeightsView"]
+__all__ = ["WeightsView", "POINT_COLOURS"]
 
-_N_COLOURS = 64
+#: Number of colours the points of the weights plane take (evenly spaced along the colour bar).
+POINT_COLOURS = 64
 _A_COLOUR = QColor(40, 120, 190)
 _B_COLOUR = QColor(220, 120, 30)
 _SEL_COLOUR = QColor(220, 30, 60)
@@ -112,8 +113,6 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.state = state
         self._syncing = False
         self._pending_selected: int | None = None
-        self.colour_values = np.zeros(0)
-        self.colour_meaning = "image number"
 
         self._build_brushes()
         top = self._build_controls()
@@ -133,8 +132,8 @@ class WeightsView(ThrottledRedraw, QWidget):
         """Point colours (a viridis table) and the bar colours (plain, mode a, mode b)."""
         cmap = pg.colormap.get("viridis")
         self._cmap = cmap
-        lut = cmap.getLookupTable(0.0, 1.0, _N_COLOURS, alpha=False, mode="byte")
-        self._brushes = np.empty(_N_COLOURS, dtype=object)
+        lut = cmap.getLookupTable(0.0, 1.0, POINT_COLOURS, alpha=False, mode="byte")
+        self._brushes = np.empty(POINT_COLOURS, dtype=object)
         for i, (r, g, b) in enumerate(lut):
             self._brushes[i] = pg.mkBrush(int(r), int(g), int(b), 230)
         self._bar_brushes = (pg.mkBrush(140, 140, 140), pg.mkBrush(_A_COLOUR),
@@ -296,10 +295,8 @@ class WeightsView(ThrottledRedraw, QWidget):
         lo, hi = float(np.min(values)), float(np.max(values))
         if not hi > lo:
             hi = lo + 1.0
-        idx = np.clip(np.rint((values - lo) / (hi - lo) * (_N_COLOURS - 1)), 0,
-                      _N_COLOURS - 1).astype(np.intp)
-        self.colour_values = values
-        self.colour_meaning = meaning
+        idx = np.clip(np.rint((values - lo) / (hi - lo) * (POINT_COLOURS - 1)), 0,
+                      POINT_COLOURS - 1).astype(np.intp)
         self.scatter.setData(x=x, y=y, brush=self._brushes[idx], data=np.arange(d.n_images))
         self.colour_bar.setLevels((lo, hi))
         self.colour_bar.getAxis("left").setLabel(meaning)

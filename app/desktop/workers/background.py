@@ -389,10 +389,6 @@ class BackgroundRunner(QObject):
         """The newest active job (None when none is active)."""
         return self._active[-1] if self._active else None
 
-    def active_jobs(self) -> list[Job]:
-        """Return the jobs whose signals are forwarded, oldest first."""
-        return list(self._active)
-
     def is_running(self) -> bool:
         """Return True while an active job has not ended."""
         return any(not job.is_done() for job in self._active)
@@ -400,10 +396,6 @@ class BackgroundRunner(QObject):
     def is_busy(self) -> bool:
         """Return True while any job of this runner (active or superseded) has not returned."""
         return any(not job.has_returned() for job in (*self._active, *self._retired))
-
-    def is_closed(self) -> bool:
-        """Return True after :meth:`shutdown`: no new job starts."""
-        return self._closed
 
     # ----- control (GUI thread) ---------------------------------------------------------------
     def start(self, work: Callable[[JobContext], Any], *, task: str | None = None,

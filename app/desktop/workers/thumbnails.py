@@ -29,6 +29,7 @@ from PySide6.QtCore import QCoreApplication, QObject, Signal, Slot
 from PySide6.QtGui import QIcon, QImage, QPixmap
 
 from modescope.core.errors import ModescopeError
+from modescope.core.output.metrics import quantize
 from modescope.core.sources.decode import load_preview
 
 from modescope.app.desktop.workers.background import (EXPECTED_ERRORS, BackgroundRunner,
@@ -79,10 +80,10 @@ def array_to_qimage(array: np.ndarray) -> QImage:
 
 
 def _float_to_uint8(image: np.ndarray) -> np.ndarray:
-    a = np.asarray(image, dtype=np.float32)
-    if a.ndim == 3 and a.shape[2] == 1:
-        a = a[:, :, 0]
-    return (np.clip(a, 0.0, 1.0) * 255.0 + 0.5).astype(np.uint8)
+    """Clip to [0, 1] and round to 8 bits by core's rule
+    (:func:`~modescope.core.output.metrics.quantize`)."""
+    a = quantize(image, 8)
+    return a[:, :, 0] if a.ndim == 3 and a.shape[2] == 1 else a
 
 
 @dataclass(frozen=True)
@@ -325,14 +326,6 @@ class ThumbnailMaker(QObject):
         """Return the number of requests queued or being made."""
         with self._requests.lock:
             return len(self._requests.pending)
-
-    def cancel_pending(self) -> None:
-        """Forget every queued request (those being made still finish)."""
-        requests = self._requests
-        with requests.lock:
-            for job in requests.queue:
-                requests.pending.discard(job[0])
-            requests.queue.clear()
 
     def wait(self, msecs: int = 5000) -> bool:
         """Wait until no thumbnail is being made; return False on time-out."""
