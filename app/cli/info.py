@@ -61,7 +61,7 @@ def run(args: argparse.Namespace) -> int:
         print(f"  {r + 1:4d}  {d.singular_values[r]:14.6g}  {bound:>15}  {100 * shares[r]:6.2f}%  "
               f"{100 * cum[r]:9.2f}%")
     if d.rank:
-        print(f"suggested rank: {energy_rank(d, 0.9)} for 90% of the energy", end="")
+        print(f"suggested rank: {energy_rank(d, 0.9).describe()}", end="")
         gd = gavish_donoho(d)
         print(f"; {gd.rank} by the Gavish-Donoho hard threshold" if gd.rank is not None
               else f"; Gavish-Donoho: not applicable ({gd.note})")

@@ -13,7 +13,7 @@ from modescope.app.cli.common import check_rank, error, fmt, label, level, non_n
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import load_model
 from modescope.core.review.marks import table_rows, write_csv
-from modescope.core.review.outliers import score_table
+from modescope.core.review.outliers import Q_METHOD_NAMES, score_table
 
 __all__ = ["register", "run", "CAUTION"]
 
@@ -62,12 +62,13 @@ def run(args: argparse.Namespace) -> int:
         return error("outliers", str(exc), 1)
 
     lim = table.limits
-    method_q = {"jackson-mudholkar": "Jackson-Mudholkar", "box": "Box chi-square"}[lim.q_method]
+    method_q = Q_METHOD_NAMES.get(lim.q_method, lim.q_method)
     method_t2 = {"beta": "Beta", "f": "F"}[lim.t2_method]
     print(f"Model {args.model}: {table.n_images} images, rank {table.rank} of "
           f"{decomposition.rank}, level {table.level:g}")
     print(f"Q limit {fmt(lim.q_limit)} ({method_q}); T2 limit {fmt(lim.t2_limit)} "
           f"({method_t2}, {lim.t2_rank} modes)")
+    print(f"Q limit method: {lim.q_reason}.")
     print(f"Flagged: {table.n_flagged} of {table.n_images} "
           "(score = max(Q/Q limit, T2/T2 limit) > 1)")
     if lim.note:

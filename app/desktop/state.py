@@ -17,15 +17,17 @@ from modescope.core.decomposition import Decomposition
 
 def initial_rank(decomposition: Decomposition) -> int:
     """Return the rank a fresh view starts at: the smallest rank capturing 95% of the energy
-    (a common-practice choice with no source), at least 1 and at most k."""
+    (a common-practice choice with no source), at least 1; k when the k kept modes capture
+    less (a default only: nothing claims that k reaches 95%)."""
     from modescope.core.review.rank import energy_rank
     k = decomposition.rank
     if k == 0:
         return 0
     try:
-        return max(1, min(k, energy_rank(decomposition, 0.95)))
+        found = energy_rank(decomposition, 0.95).rank
     except ValueError:
         return k
+    return k if found is None else max(1, min(k, found))
 
 
 class AppState(QObject):

@@ -15,15 +15,14 @@ For a decomposition of ``n`` images with singular values ``s_1 >= ... >= s_K`` (
 Control limits at confidence ``level`` (default 0.99, i.e. about 1 % of ordinary images exceed
 each limit):
 
-* Q, **Jackson and Mudholkar (1979)**, used when the discarded eigenvalues are *known*: the
-  decomposition's modes account for all the energy, ``total_energy - sum_{j<=K} s_j**2 <=
-  1e-6 * total_energy``. The discarded eigenvalues are then ``lambda_{k+1..K}``. The formula
-  needs ``h0 = 1 - 2 theta1 theta3 / (3 theta2**2) > 0``; when a long tail of small eigenvalues
-  makes ``h0 <= 0``, Box's chi-square with the exact moments of those eigenvalues (mean
-  ``theta1``, variance ``2 theta2``) is used and reported as ``"box"``.
-* Q, **Box (1954)** moment-matched chi-square ``g * chi2_level(h)`` with ``g = v / (2 m)`` and
-  ``h = 2 m**2 / v``, ``m`` and ``v`` the mean and (ddof=1) variance of the images' Q values, used
-  when the SVD is truncated (the rule above fails) and the discarded eigenvalues are unknown.
+* Q: a named choice made by :func:`core.review.qlimit.q_limit` and reported with its reason
+  (``ControlLimits.q_method`` and ``q_reason``): **Jackson and Mudholkar (1979)** from the
+  eigenvalues left out when they are known (the model holds every mode, or all the energy);
+  otherwise the known eigenvalues of modes k+1..K plus the modes beyond K estimated from the
+  images' exact residuals (their sum exactly, their spread by **Box's (1954)** chi-square from
+  the mean and variance of the residuals), so that the limit at rank k does not depend on the
+  rank the model was built with; **Box** alone when no mode beyond k is held, or when the
+  moments give ``h0 <= 0``. Details and formulas are in :mod:`core.review.qlimit`.
 * T^2 for images that built the model, **Tracy, Young and Mason (1992)** Beta form
   ``(n-1)**2 / n * Beta_level(k/2, (n-k-1)/2)``.
 * T^2 for new images scored against an existing model, the F form
@@ -60,24 +59,25 @@ from dataclasses import dataclass
 import numpy as np
 from scipy import stats
 
-from modescope.core.validation import check_float, check_int
 from modescope.core.decomposition import Decomposition
+from modescope.core.review.qlimit import (KNOWN_TAIL_TOLERANCE, Q_METHOD_NAMES, QLimit,
+                                          ZERO_MODE_SHARE as _ZERO_MODE_SHARE,
+                                          as_float_vector as _as_float_vector,
+                                          check_decomposition as _check_decomposition,
+                                          check_level as _check_level,
+                                          discarded_eigenvalues_known, eigenvalues, q_limit,
+                                          q_limit_box, q_limit_jackson_mudholkar)
+from modescope.core.validation import check_int
 
 __all__ = [
-    "ControlLimits", "OutlierTable", "KNOWN_TAIL_TOLERANCE", "eigenvalues",
-    "discarded_eigenvalues_known", "q_limit_jackson_mudholkar", "q_limit_box",
-    "t2_limit_beta", "t2_limit_f", "hotelling_t2", "score_table", "score_new",
+    "ControlLimits", "OutlierTable", "KNOWN_TAIL_TOLERANCE", "Q_METHOD_NAMES", "QLimit",
+    "eigenvalues", "discarded_eigenvalues_known", "q_limit", "q_limit_jackson_mudholkar",
+    "q_limit_box", "t2_limit_beta", "t2_limit_f", "hotelling_t2", "score_table", "score_new",
 ]
 
-#: Relative energy left outside the decomposition's modes below which the discarded
-#: eigenvalues count as known (the Jackson-Mudholkar limit applies).
-KNOWN_TAIL_TOLERANCE = 1e-6
-#: Share of total energy at or below which a mode counts as having no variance.
-_ZERO_MODE_SHARE = 1e-10
 #: Q noise level as a fraction of the mean squared centred image norm.
 _Q_NOISE_SHARE = 1e-6
 
-Q_METHODS = ("jackson-mudholkar", "box")
 T2_METHODS = ("beta", "f")
 
 
@@ -94,8 +94,10 @@ class ControlLimits:
     q_limit : float
         Limit of Q; 0 when the model leaves no residual variance.
     q_method : str
-        ``"jackson-mudholkar"`` (discarded eigenvalues known) or ``"box"`` (moment-matched
-        chi-square from the images' Q values, SVD truncated).
+        ``"jackson-mudholkar"`` (the eigenvalues left out are known),
+        ``"jackson-mudholkar-estimated-tail"`` (known eigenvalues plus the modes beyond the
+        model's rank estimated from the residuals) or ``"box"`` (chi-square from the moments);
+        display names in ``Q_METHOD_NAMES``.
     t2_limit : float
         Limit of T^2 (0 when no mode has variance, inf for new images when ``t2_rank >= n``).
     t2_method : str
@@ -109,6 +111,8 @@ class ControlLimits:
         image exactly).
     note : str
         Plain-language explanation of any edge case met; empty when none.
+    q_reason : str
+        Why the Q limit method was chosen, in plain words (one sentence, no final full stop).
     """
 
     level: float
@@ -121,6 +125,7 @@ class ControlLimits:
     q_informative: bool = True
     t2_informative: bool = True
     note: str = ""
+    q_reason: str = ""
 
 
 @dataclass(frozen=True, eq=False)
@@ -178,193 +183,7 @@ class OutlierTable:
         return self.order[self.flag[self.order]]
 
 
-# ----- validation helpers ------------------------------------------------------------------
-
-def _check_level(level) -> float:
-    return check_float("level", level, low=0.0, high=1.0, low_open=True, high_open=True)
-
-
-def _check_decomposition(decomposition) -> Decomposition:
-    if not isinstance(decomposition, Decomposition):
-        raise TypeError("decomposition must be a Decomposition, got "
-                        f"{type(decomposition).__name__}")
-    if decomposition.n_images < 2:
-        raise ValueError("outlier scores need a decomposition of at least 2 images, got "
-                         f"{decomposition.n_images}")
-    return decomposition
-
-
-def _as_float_vector(name: str, values, *, ndim: int = 1) -> np.ndarray:
-    if isinstance(values, (str, bytes)) or values is None:
-        raise TypeError(f"{name} must be an array of numbers, got {type(values).__name__}")
-    try:
-        arr = np.asarray(values, dtype=np.float64)
-    except (TypeError, ValueError) as exc:
-        raise TypeError(f"{name} must be an array of numbers, got "
-                        f"{type(values).__name__}") from exc
-    if arr.ndim != ndim:
-        raise ValueError(f"{name} must be {ndim}-dimensional, got shape {arr.shape}")
-    if not np.all(np.isfinite(arr)):
-        raise ValueError(f"{name} must hold finite numbers, found NaN or infinity")
-    return arr
-
-
-# ----- limits ------------------------------------------------------------------------------
-
-def eigenvalues(decomposition: Decomposition) -> np.ndarray:
-    """Return the covariance eigenvalues ``lambda_j = s_j**2 / (n - 1)`` of a decomposition.
-
-    Parameters
-    ----------
-    decomposition : Decomposition
-        With at least 2 images.
-
-    Returns
-    -------
-    ndarray, shape (K,), float64
-    """
-    d = _check_decomposition(decomposition)
-    s = np.asarray(d.singular_values, dtype=np.float64)
-    return s ** 2 / (d.n_images - 1)
-
-
-def discarded_eigenvalues_known(decomposition: Decomposition) -> bool:
-    """Return True when the decomposition's modes hold all the energy of the collection.
-
-    The rule is ``total_energy - sum_j s_j**2 <= 1e-6 * total_energy`` (summing over every mode
-    the decomposition holds). When it holds, the eigenvalues discarded at any rank k are
-    ``lambda_{k+1..K}`` and the Jackson-Mudholkar Q limit applies; otherwise the SVD is
-    truncated and the Box approximation is used.
-
-    Parameters
-    ----------
-    decomposition : Decomposition
-
-    Returns
-    -------
-    bool
-    """
-    if not isinstance(decomposition, Decomposition):
-        raise TypeError("decomposition must be a Decomposition, got "
-                        f"{type(decomposition).__name__}")
-    total = float(decomposition.total_energy)
-    kept = float(np.sum(np.asarray(decomposition.singular_values, dtype=np.float64) ** 2))
-    return total - kept <= KNOWN_TAIL_TOLERANCE * total
-
-
-def _jm_limit(lam: np.ndarray, level: float) -> tuple[float, str]:
-    """Jackson-Mudholkar limit with the moment-matched chi-square as a fallback."""
-    lam = lam[lam > 0]
-    if lam.size == 0:
-        return 0.0, "jackson-mudholkar"
-    theta1 = float(np.sum(lam))
-    theta2 = float(np.sum(lam ** 2))
-    theta3 = float(np.sum(lam ** 3))
-    h0 = 1.0 - 2.0 * theta1 * theta3 / (3.0 * theta2 ** 2)
-    if h0 > 0:
-        c = float(stats.norm.ppf(level))
-        base = (c * math.sqrt(2.0 * theta2 * h0 * h0) / theta1 + 1.0
-                + theta2 * h0 * (h0 - 1.0) / theta1 ** 2)
-        if base > 0:
-            value = theta1 * base ** (1.0 / h0)
-            if math.isfinite(value) and value > 0:
-                return value, "jackson-mudholkar"
-    # Box (1954) with the exact moments of sum lambda_j z_j**2: mean theta1, variance 2 theta2.
-    g = theta2 / theta1
-    h = theta1 ** 2 / theta2
-    return float(g * stats.chi2.ppf(level, h)), "box"
-
-
-def q_limit_jackson_mudholkar(discarded_eigenvalues, level: float = 0.99) -> float:
-    """Return the Jackson and Mudholkar (1979) control limit of Q.
-
-    With ``theta_i = sum_j lambda_j**i`` over the discarded eigenvalues,
-    ``h0 = 1 - 2 theta1 theta3 / (3 theta2**2)`` and ``c`` the standard normal quantile at
-    ``level``::
-
-        Q_limit = theta1 * (c sqrt(2 theta2 h0**2) / theta1 + 1
-                            + theta2 h0 (h0 - 1) / theta1**2) ** (1 / h0)
-
-    The formula needs ``h0 > 0``. A long tail of small eigenvalues can make ``h0 <= 0``; the
-    limit is then Box's (1954) chi-square with the exact moments of Q (mean ``theta1``,
-    variance ``2 theta2``, so ``g = theta2/theta1``, ``h = theta1**2/theta2``), which
-    :func:`score_table` reports as method ``"box"``.
-
-    Parameters
-    ----------
-    discarded_eigenvalues : array_like, shape (m,)
-        Non-negative eigenvalues of the modes left out of the model.
-    level : float
-        Confidence level in (0, 1), default 0.99.
-
-    Returns
-    -------
-    float
-        The limit; 0.0 when every discarded eigenvalue is 0 (or none is given).
-
-    Raises
-    ------
-    TypeError
-        If the inputs are not numbers.
-    ValueError
-        If the eigenvalues are negative or not finite, or ``level`` is outside (0, 1).
-
-    Examples
-    --------
-    Ten equal eigenvalues make Q a chi-square with 10 degrees of freedom (95 % point 18.307):
-
-    >>> round(q_limit_jackson_mudholkar([1.0] * 10, 0.95), 2)
-    18.29
-    """
-    level = _check_level(level)
-    lam = _as_float_vector("discarded_eigenvalues", discarded_eigenvalues)
-    if np.any(lam < 0):
-        raise ValueError("discarded_eigenvalues must be non-negative, got minimum "
-                         f"{float(lam.min())!r}")
-    return _jm_limit(lam, level)[0]
-
-
-def q_limit_box(q_values, level: float = 0.99) -> float:
-    """Return Box's (1954) moment-matched chi-square control limit of Q.
-
-    Q is approximated by ``g * chi2(h)`` with ``g = v / (2 m)`` and ``h = 2 m**2 / v``, where
-    ``m`` and ``v`` are the mean and (ddof=1) variance of the observed Q values; the limit is
-    ``g * chi2.ppf(level, h)``.
-
-    Parameters
-    ----------
-    q_values : array_like, shape (n,)
-        Q of the images that built the model, n >= 2. Tiny negative values from rounding are
-        treated as 0.
-    level : float
-        Confidence level in (0, 1), default 0.99.
-
-    Returns
-    -------
-    float
-        The limit; ``m`` when every Q is the same (no spread), 0.0 when every Q is 0.
-
-    Raises
-    ------
-    TypeError
-        If the inputs are not numbers.
-    ValueError
-        If fewer than 2 values are given, a value is not finite, or ``level`` is outside (0, 1).
-    """
-    level = _check_level(level)
-    q = _as_float_vector("q_values", q_values)
-    if q.size < 2:
-        raise ValueError(f"q_values must hold at least 2 values, got {q.size}")
-    q = np.maximum(q, 0.0)
-    m = float(np.mean(q))
-    if m <= 0:
-        return 0.0
-    v = float(np.var(q, ddof=1))
-    if v <= 0 or v <= (1e-12 * m) ** 2:
-        return m
-    g = v / (2.0 * m)
-    h = 2.0 * m * m / v
-    return float(g * stats.chi2.ppf(level, h))
+# ----- T^2 limits ---------------------------------------------------------------------------
 
 
 def t2_limit_beta(n: int, k: int, level: float = 0.99) -> float:
@@ -494,30 +313,13 @@ def _q_noise(decomposition: Decomposition) -> float:
     return 1e-12 * float(mean @ mean)
 
 
-def _q_limit(decomposition: Decomposition, k: int, level: float) -> tuple[float, str]:
-    if discarded_eigenvalues_known(decomposition):
-        lam = eigenvalues(decomposition)[k:]
-        total = float(decomposition.total_energy)
-        s2 = np.asarray(decomposition.singular_values[k:], dtype=np.float64) ** 2
-        lam = np.where(s2 > _ZERO_MODE_SHARE * total, lam, 0.0)
-        return _jm_limit(lam, level)
-    if decomposition.residual is None:
-        raise ValueError("this decomposition is truncated and has no residuals yet, so the Q "
-                         "limit (Box 1954) cannot be computed: run the scoring pass first")
-    q_model = np.maximum(decomposition.residual_at_rank(k), 0.0)
-    return q_limit_box(q_model, level), "box"
-
-
 def _limits(decomposition: Decomposition, k: int, level: float, new: bool
             ) -> tuple[ControlLimits, int]:
     n = decomposition.n_images
     notes = []
-    q_limit, q_method = _q_limit(decomposition, k, level)
-    if q_method == "box" and discarded_eigenvalues_known(decomposition):
-        notes.append("Q limit: the discarded eigenvalues give h0 <= 0, where the "
-                     "Jackson-Mudholkar form does not apply; Box's chi-square with their exact "
-                     "moments is used")
-    q_informative = q_limit > _q_noise(decomposition)
+    q = q_limit(decomposition, k, level)
+    q_limit_value = q.value
+    q_informative = q_limit_value > _q_noise(decomposition)
     if not q_informative:
         notes.append("Q: the model leaves no residual variance at this rank, so Q cannot "
                      "separate the model's images")
@@ -543,10 +345,11 @@ def _limits(decomposition: Decomposition, k: int, level: float, new: bool
             notes.append(f"T2: at rank {k_eff} >= n = {n} the F limit does not exist")
         else:
             t2_limit = t2_limit_f(n, k_eff, level)
-    limits = ControlLimits(level=level, rank=k, q_limit=float(q_limit), q_method=q_method,
+    limits = ControlLimits(level=level, rank=k, q_limit=float(q_limit_value), q_method=q.method,
                            t2_limit=float(t2_limit), t2_method="f" if new else "beta",
                            t2_rank=k_eff, q_informative=bool(q_informative),
-                           t2_informative=bool(t2_informative), note="; ".join(notes))
+                           t2_informative=bool(t2_informative), note="; ".join(notes),
+                           q_reason=q.reason)
     return limits, k_eff
 
 
@@ -583,8 +386,8 @@ def score_table(decomposition: Decomposition, rank: int | None = None,
                 level: float = 0.99) -> OutlierTable:
     """Score every image of a decomposition at rank k.
 
-    Q is ``decomposition.residual_at_rank(k)``; its limit is Jackson-Mudholkar when the
-    discarded eigenvalues are known and Box otherwise (see the module docstring). T^2 uses the
+    Q is ``decomposition.residual_at_rank(k)``; its limit is the named choice of
+    :func:`core.review.qlimit.q_limit` (see the module docstring). T^2 uses the
     Beta limit for images that built the model. ``score = max(Q/Q_limit, T2/T2_limit)``,
     ``flag = score > 1``.
 
@@ -631,8 +434,8 @@ def score_new(decomposition: Decomposition, weights, residual, rank: int | None 
     Parameters
     ----------
     decomposition : Decomposition
-        The model, with at least 2 images (and residuals when it is truncated, for the Box
-        limit).
+        The model, with at least 2 images (and residuals when it is truncated: the Q limit
+        estimates the modes beyond its rank from them).
     weights : array_like, shape (K, m)
         Coordinates of m new images along all K basis images of the model.
     residual : array_like, shape (m,)

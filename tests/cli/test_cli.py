@@ -160,3 +160,40 @@ def test_ctrl_c_writes_the_partial_analysis_and_update_completes_it(folder, tmp_
     assert main(["update", str(out), str(folder), "-o", str(out), "--quiet"]) == 0
     full = load_model(out)
     assert full.n_images == 30 and full.exact
+
+
+def test_info_says_more_than_k_and_what_rank_gavish_donoho_needs(tmp_path, capsys):
+    from modescope.core.decomposition import Decomposition, fix_signs
+    from modescope.core.output.model_file import save_model
+    from modescope.core.review.rank import gavish_donoho
+    rng = np.random.default_rng(7)
+    x = rng.normal(size=(48, 80)) * np.linspace(3, 1, 48)[:, None]   # 6x8 pixels, 80 images
+    c = x - x.mean(axis=1, keepdims=True)
+    u, s, vt = np.linalg.svd(c, full_matrices=False)                 # LAPACK reference
+
+    def model(k):
+        basis, weights = fix_signs(u[:, :k], s[:k, None] * vt[:k])
+        return Decomposition(mean=x.mean(axis=1).astype(np.float32),
+                             basis=basis.astype(np.float32), singular_values=s[:k].copy(),
+                             weights=weights, total_energy=float(np.sum(c ** 2)),
+                             image_shape=(6, 8, 1),
+                             residual=np.sum((c - basis @ weights) ** 2, axis=0), exact=True)
+
+    cum = np.cumsum(s ** 2) / np.sum(s ** 2)
+    assert cum[9] < 0.9                        # 10 modes hold far less than 90 %
+    save_model(tmp_path / "r10.npz", model(10))
+    assert main(["info", str(tmp_path / "r10.npz")]) == 0
+    out = capsys.readouterr().out
+    assert ("suggested rank: more than 10 for 90% of the energy; Gavish-Donoho: not applicable "
+            "(the median singular value is unknown: the model keeps 10 of the 48 modes the data "
+            "can have, and the median is mode 24; analyse with rank 25 or more (or 48, every "
+            "mode))") in out
+    # a model holding every mode: the real energy rank and the threshold's rank
+    full = model(48)
+    save_model(tmp_path / "full.npz", full)
+    assert main(["info", str(tmp_path / "full.npz")]) == 0
+    out = capsys.readouterr().out
+    expect = int(np.searchsorted(cum, 0.9) + 1)
+    assert expect > 10
+    assert (f"suggested rank: {expect} for 90% of the energy; {gavish_donoho(full).rank} by the "
+            "Gavish-Donoho hard threshold") in out

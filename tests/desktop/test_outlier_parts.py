@@ -48,9 +48,12 @@ def plot(qtbot):
 def test_describe_limits_text_and_explanation(table):
     lim = table.limits
     text, tip = describe_limits(lim)
-    assert lim.q_method == "box" and lim.t2_method == "beta"
-    assert text == f"Q limit {lim.q_limit:.4g} (Box) · T² limit {lim.t2_limit:.4g} (Beta)"
-    assert tip.startswith("Q limit: Box (1954): a chi-square matched")
+    assert lim.q_method == "jackson-mudholkar-estimated-tail" and lim.t2_method == "beta"
+    assert text == (f"Q limit {lim.q_limit:.4g} (Jackson-Mudholkar, tail estimated) · "
+                    f"T² limit {lim.t2_limit:.4g} (Beta)")
+    assert tip.startswith(f"Q limit: {lim.q_reason}.\n")
+    assert lim.q_reason.startswith("Jackson-Mudholkar (1979) from the eigenvalues of modes 4-5, "
+                                   "which the model holds, and the modes beyond 5")
     assert f"over {lim.t2_rank} mode(s).\nConfidence level 99 %." in tip
     assert "Note:" not in tip
     none, tip = describe_limits(dataclasses.replace(lim, q_informative=False,

@@ -2,8 +2,8 @@
 
 Reference values: the table is compared with ``core.outliers.score_table`` and, independently of
 the project, with Q, T² and the limits recomputed here from numpy.linalg.svd (LAPACK) of the
-images and scipy.stats (Hotelling's T² Beta limit of Tracy, Young and Mason 1992; Box's 1954
-chi-square for Q).
+images and scipy.stats (Hotelling's T² Beta limit of Tracy, Young and Mason 1992; Jackson and
+Mudholkar's 1979 Q limit from the LAPACK eigenvalues).
 """
 
 from __future__ import annotations
@@ -109,9 +109,12 @@ def _reference(images: np.ndarray, r: int, level: float):
     t2 = np.sum(w ** 2 / lam[:, None], axis=0)
     # Tracy, Young and Mason (1992): (n-1)^2/n * Beta_level(r/2, (n-r-1)/2)
     t2_limit = (N - 1) ** 2 / N * stats.beta.ppf(level, r / 2, (N - r - 1) / 2)
-    # Box (1954): g * chi2_level(h), g = v / 2m, h = 2 m^2 / v from the Q values
-    m, var = q.mean(), q.var(ddof=1)
-    q_limit = var / (2 * m) * stats.chi2.ppf(level, 2 * m * m / var)
+    # Jackson and Mudholkar (1979) from every LAPACK eigenvalue left out at rank r
+    lam = s[r:] ** 2 / (N - 1)
+    theta1, theta2, theta3 = (float(np.sum(lam ** i)) for i in (1, 2, 3))
+    h0 = 1 - 2 * theta1 * theta3 / (3 * theta2 ** 2)
+    q_limit = theta1 * (stats.norm.ppf(level) * np.sqrt(2 * theta2 * h0 ** 2) / theta1 + 1
+                        + theta2 * h0 * (h0 - 1) / theta1 ** 2) ** (1 / h0)
     return q, t2, q_limit, t2_limit
 
 
@@ -127,8 +130,10 @@ def test_table_rows_and_values_equal_score_table(view, state, dec, images):
     q, t2, q_limit, t2_limit = _reference(images, state.rank, state.level)
     np.testing.assert_allclose(_column(view, COL_Q), q[t.order], rtol=1e-6, atol=1e-9)
     np.testing.assert_allclose(_column(view, COL_T2), t2[t.order], rtol=1e-6)
-    assert t.limits.q_method == "box"       # the SVD is truncated at K < N - 1
-    assert view.scores.limits.q_limit == pytest.approx(q_limit, rel=1e-6)
+    # the SVD is truncated at K < N - 1: eigenvalues r+1..K known, the modes beyond K estimated
+    # from the residuals; 1 % covers that estimate (0.1 % here)
+    assert t.limits.q_method == "jackson-mudholkar-estimated-tail"
+    assert view.scores.limits.q_limit == pytest.approx(q_limit, rel=0.01)
     assert view.scores.limits.t2_limit == pytest.approx(t2_limit, rel=1e-9)
     # the planted bad frames are the top of the table and flagged
     assert set(view.shown_images()[:3]) == set(BAD)
@@ -142,9 +147,11 @@ def test_table_rows_and_values_equal_score_table(view, state, dec, images):
     header = view.proxy.headerData(COL_Q, Qt.Orientation.Horizontal)
     assert header == f"Q\nlimit {t.limits.q_limit:.4g}"
     assert f"{t.limits.t2_limit:.4g}" in view.proxy.headerData(COL_T2, Qt.Orientation.Horizontal)
-    assert "Q limit" in view.limits_label.text() and "(Box)" in view.limits_label.text()
+    assert "Q limit" in view.limits_label.text()
+    assert "(Jackson-Mudholkar, tail estimated)" in view.limits_label.text()
     assert "(Beta)" in view.limits_label.text()
-    assert "Box (1954)" in view.limits_label.toolTip()
+    assert t.limits.q_reason in view.limits_label.toolTip()
+    assert "beyond 6, which the model does not hold" in view.limits_label.toolTip()
     assert view.caution.text() == CAUTION_TEXT and view.caution.isVisible()
     assert "not a verdict" in CAUTION_TEXT
     assert f"{t.n_flagged} flagged at rank {state.rank}" in view.summary.text()
@@ -194,7 +201,8 @@ def test_plot_points_and_limit_lines(view, dec, state):
     assert view.q_line.angle == 0 and view.t2_line.angle == 90
     assert view.q_line.label.toPlainText() == f"Q limit {t.limits.q_limit:.4g}"
     assert view.t2_line.label.toPlainText() == f"T² limit {t.limits.t2_limit:.4g}"
-    assert "Box" in view.q_line.label.toolTip() and "99 %" in view.q_line.label.toolTip()
+    assert "Jackson-Mudholkar, tail estimated" in view.q_line.label.toolTip()
+    assert "99 %" in view.q_line.label.toolTip()
     assert "Beta" in view.t2_line.label.toolTip()
     # linear axes: the raw values
     view.log_axes.setChecked(False)

@@ -16,7 +16,7 @@ from PySide6.QtGui import QColor
 
 from modescope.core.decomposition import Decomposition
 from modescope.core.review import marks as review
-from modescope.core.review.outliers import ControlLimits, OutlierTable
+from modescope.core.review.outliers import Q_METHOD_NAMES, ControlLimits, OutlierTable
 
 __all__ = ["OutlierTableModel", "OutlierFilterProxy", "FILTERS", "SORT_ROLE", "N_COLUMNS",
            "COL_NUMBER", "COL_FILE", "COL_SCORE", "COL_Q", "COL_T2", "COL_BEYOND", "COL_MARK",
@@ -31,7 +31,7 @@ FILTERS = (("all", "all images"), ("flagged", "flagged"), ("excluded", "excluded
            ("not reviewed", "not reviewed"))
 
 #: Display names of the methods behind the Q and T² limits.
-Q_METHODS = {"jackson-mudholkar": "Jackson-Mudholkar", "box": "Box"}
+Q_METHODS = dict(Q_METHOD_NAMES)
 T2_METHODS = {"beta": "Beta", "f": "F"}
 _MARK_TEXT = {review.NOT_REVIEWED: "", review.KEEP: "keep", review.EXCLUDE: "exclude"}
 
@@ -39,13 +39,6 @@ _FLAG_BG = QColor(255, 232, 226)
 _KEEP_FG = QColor(30, 120, 60)
 _EXCLUDE_FG = QColor(190, 40, 40)
 _DIM_FG = QColor(125, 125, 125)
-
-
-_LIMIT_WHY = {
-    "jackson-mudholkar": "Jackson-Mudholkar (1979): from the eigenvalues of the modes left out, "
-                         "which are known because the decomposition holds all the variation",
-    "box": "Box (1954): a chi-square matched to the mean and spread of the images' Q values "
-           "(the decomposition is truncated, so the eigenvalues left out are not known)"}
 
 
 def describe_limits(limits: ControlLimits) -> tuple[str, str]:
@@ -62,7 +55,8 @@ def describe_limits(limits: ControlLimits) -> tuple[str, str]:
         "Q limit <value> (<method>) · T² limit <value> (<method>)"; "none" for a limit that
         does not apply.
     explanation : str
-        Where each limit comes from, the confidence level and the limits' note, if any.
+        Where each limit comes from (for Q the method chosen and why, ``limits.q_reason``), the
+        confidence level and the limits' note, if any.
 
     Raises
     ------
@@ -76,7 +70,8 @@ def describe_limits(limits: ControlLimits) -> tuple[str, str]:
               if lim.q_informative else "Q limit: none")
     t2_part = (f"T² limit {lim.t2_limit:.4g} ({T2_METHODS.get(lim.t2_method, lim.t2_method)})"
                if lim.t2_informative else "T² limit: none")
-    tip = (f"Q limit: {_LIMIT_WHY.get(lim.q_method, lim.q_method)}.\nT² limit: Beta form for "
+    q_why = lim.q_reason or Q_METHODS.get(lim.q_method, lim.q_method)
+    tip = (f"Q limit: {q_why}.\nT² limit: Beta form for "
            f"the images that built the model (Tracy, Young and Mason 1992), over "
            f"{lim.t2_rank} mode(s).\nConfidence level {100 * lim.level:g} %.")
     if lim.note:

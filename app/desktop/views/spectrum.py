@@ -282,9 +282,10 @@ class SpectrumView(ThrottledRedraw, QWidget):
             return
         k = d.rank
         frac = self.threshold.value() / 100.0
-        r_e = energy_rank(d, frac)
+        found = energy_rank(d, frac)
+        r_e = found.rank
         cum = d.cumulative_energy()
-        reached = bool(cum[-1] >= frac - 1e-12)
+        reached = found.reached and r_e >= 1
         self.energy_suggestion = r_e if reached else None
         self.threshold_line.setValue(100.0 * frac)
         self.threshold_line.setVisible(True)
@@ -297,10 +298,11 @@ class SpectrumView(ThrottledRedraw, QWidget):
                                          f"{100 * cum[r_e - 1]:.1f} % of the energy.")
         else:
             self.energy_line.setVisible(False)
-            self.energy_label.setText(f"energy rank: > {k}")
-            self.energy_label.setToolTip(f"All {k} kept modes capture only {100 * cum[-1]:.1f} % "
-                                         f"of the energy; analyse with a larger rank to reach "
-                                         f"{self.threshold.value():.1f} %.")
+            self.energy_label.setText(f"energy rank: more than {k}")
+            self.energy_label.setToolTip(f"All {k} kept modes capture only "
+                                         f"{100 * found.captured:.1f} % of the energy, so "
+                                         f"{self.threshold.value():g} % needs more than {k} "
+                                         "modes; analyse with a larger rank to find how many.")
         self.use_energy.setEnabled(reached)
 
         g = gavish_donoho(d)
@@ -309,7 +311,9 @@ class SpectrumView(ThrottledRedraw, QWidget):
                "whose singular value is above the threshold are kept.")
         if g.rank is None:
             self.gd_line.setVisible(False)
-            self.gd_label.setText("optimal hard threshold: not applicable")
+            self.gd_label.setText("optimal hard threshold: not applicable"
+                                  + ("" if g.needed_rank is None else
+                                     f" below rank {g.needed_rank}"))
             self.gd_label.setToolTip(f"{why}\nNot applicable here: {g.note}.")
             self.use_gd.setEnabled(False)
         else:

@@ -204,10 +204,10 @@ def test_false_alarm_rate_near_one_percent_on_gaussian_data(seed):
     assert table.limits.t2_method == "beta"
     assert low <= table.q_flag.mean() <= high
     assert low <= table.t2_flag.mean() <= high
-    truncated = make_decomposition(X, 8)    # SVD truncated: Box from the residuals
+    truncated = make_decomposition(X, 8)    # SVD truncated: modes 9..30 from the residuals
     assert not discarded_eigenvalues_known(truncated)
     table_t = score_table(truncated, rank=3, level=0.99)
-    assert table_t.limits.q_method == "box"
+    assert table_t.limits.q_method == "jackson-mudholkar-estimated-tail"
     assert low <= table_t.q_flag.mean() <= high
     np.testing.assert_allclose(table_t.t2, table.t2, rtol=1e-9)
     np.testing.assert_allclose(table_t.q, table.q, rtol=1e-9)
@@ -285,7 +285,7 @@ def _synthetic_collection(n=200, rows=16, cols=16, seed=0):
 
 def test_planted_anomalies_rank_first_in_synthetic_images():
     X, planted = _synthetic_collection()
-    for K in (10, 200):   # truncated (Box from residuals) and complete (known eigenvalues)
+    for K in (10, 200):   # truncated (tail from residuals) and complete (known eigenvalues)
         d = make_decomposition(X, K, image_shape=(16, 16, 1))
         table = score_table(d, rank=3)
         assert set(table.order[:4].tolist()) == set(planted)
@@ -315,7 +315,8 @@ def test_digit_ones_rank_first_among_zeros(K):
     X = np.vstack([zeros, ones]).T / 16.0
     d = make_decomposition(X, K, image_shape=(8, 8, 1))
     table = score_table(d, rank=3)
-    assert table.limits.q_method == ("jackson-mudholkar" if K == 64 else "box")
+    assert table.limits.q_method == ("jackson-mudholkar" if K == 64 else
+                                     "jackson-mudholkar-estimated-tail")
     assert set(table.order[:6].tolist()) == set(range(170, 176))
     assert table.flag[170:].all()
 
@@ -427,6 +428,14 @@ def test_cli_outliers_prints_sorted_table_and_caution(digits_model, capsys):
     assert {r[1] for r in rows[:3]} == {f"/data/img_{i:03d}.png" for i in (60, 61, 62)}
     assert lines[-1] == cli_outliers.CAUTION
     assert "5 of 63 images shown" in out
+    # the header names the Q limit method and says why it was chosen
+    # (here the moments of modes 4..63 give h0 just below 0: Box, and the reason says so)
+    lim = table.limits
+    assert lim.q_method == "box"
+    assert lines[1].startswith(f"Q limit {lim.q_limit:.4g} (Box); ")
+    assert lines[2] == f"Q limit method: {lim.q_reason}."
+    assert "because they give h0 = -0.0202 <= 0" in lines[2]
+    assert "the eigenvalues of modes 4-20 are known exactly, the modes beyond 20" in lines[2]
 
 
 def test_cli_outliers_writes_csv_matching_table(digits_model, tmp_path, capsys):
