@@ -417,7 +417,9 @@ def _estimated_limit(d: Decomposition, r: int, level: float) -> QLimit:
         held = (f"the model holds no mode beyond rank {r}" if r == K else
                 f"the model's modes beyond rank {r} have no variance")
         return QLimit(_box_value(tail[0], tail[1], level), "box",
-                      f"Box (1954) chi-square, because {held}: {tail_words}", theta)
+                      f"Box (1954) chi-square, because {held}: the modes left out are estimated "
+                      f"from the images' residuals at rank {K}, their sum exactly and their "
+                      "spread from the residuals' mean and variance", theta)
     theta = tuple(a + b for a, b in zip(known, tail))
     value, h0 = _jm_value(*theta, level)
     if value is not None:

@@ -48,8 +48,10 @@ def test_every_method_is_named_and_explained():
                                "does not hold, estimated from the images' residuals at rank 8")
     c = q_limit(truncated, 8)
     assert c.method == "box"
-    assert c.reason.startswith("Box (1954) chi-square, because the model holds no mode beyond "
-                               "rank 8: the modes beyond 8")
+    assert c.reason == ("Box (1954) chi-square, because the model holds no mode beyond rank 8: "
+                        "the modes left out are estimated from the images' residuals at rank 8, "
+                        "their sum exactly and their spread from the residuals' mean and "
+                        "variance")
     assert set(Q_METHOD_NAMES) == {a.method, b.method, c.method}
     # the table carries the same choice
     lim = score_table(truncated, 3).limits
