@@ -14,6 +14,7 @@ import numpy as np
 from PySide6.QtGui import QImage
 
 from modescope.core.output.colormap import DIVERGING_LUT, signed_to_rgb
+from modescope.core.output.metrics import quantize
 
 __all__ = [
     "NO_VARIATION",
@@ -55,6 +56,10 @@ def symmetric_limit(values: np.ndarray) -> float:
 def to_uint8(image: np.ndarray) -> np.ndarray:
     """Scale an image in [0, 1] (float) or uint8 to uint8, clipping values outside the range.
 
+    The levels are core's (:func:`~modescope.core.output.metrics.quantize`: ``rint(255 x)``
+    after clipping), so the screen shows the levels of the exported files. NaN shows as 0,
+    +inf as 255 and -inf as 0.
+
     Parameters
     ----------
     image : ndarray, shape (rows, cols) or (rows, cols, channels)
@@ -75,14 +80,10 @@ def to_uint8(image: np.ndarray) -> np.ndarray:
         return np.ascontiguousarray(image)
     if not np.issubdtype(image.dtype, np.number) and image.dtype != np.bool_:
         raise TypeError(f"image must hold numbers, got dtype {image.dtype}")
-    scaled = np.multiply(image, np.float32(255.0), dtype=np.float32)
-    if not np.isfinite(scaled).all():
-        # NaN shows as 0, +inf as 255, -inf as 0 (rare: only then the extra passes)
-        scaled = np.nan_to_num(image.astype(np.float32), nan=0.0, posinf=1.0, neginf=0.0)
-        scaled *= np.float32(255.0)
-    np.rint(scaled, out=scaled)
-    np.clip(scaled, 0, 255, out=scaled)
-    return scaled.astype(np.uint8)          # a new C-contiguous array
+    if not np.isfinite(image).all():
+        # rare: only then the extra pass
+        image = np.nan_to_num(image.astype(np.float64), nan=0.0, posinf=1.0, neginf=0.0)
+    return np.ascontiguousarray(quantize(image, 8))      # a new array
 
 
 def _check_image_shape(image: np.ndarray) -> np.ndarray:

@@ -85,8 +85,7 @@ def _listing(folder):
 
 def _assert_no_work_left(qtbot, dialog):
     """The export's pool thread has left the job and no job of the dialog is still running."""
-    qtbot.waitUntil(lambda: not dialog.runner.is_busy()
-                    and dialog.runner.pool.activeThreadCount() == 0, timeout=5000)
+    qtbot.waitUntil(lambda: dialog.runner.pool.activeThreadCount() == 0, timeout=5000)
     assert not dialog.is_running()
 
 

@@ -13,6 +13,7 @@ from modescope.app.desktop.views.inspector import READING_NOTE, Inspector, RANK_
 from modescope.app.desktop.state import AppState
 from modescope.core.engine import pipeline
 from modescope.core.output.colormap import CENTRE_INDEX, DIVERGING_LUT
+from modescope.core.output.metrics import quantize
 
 
 @pytest.fixture
@@ -262,8 +263,11 @@ def test_to_uint8_rounds_clips_and_handles_non_finite_values():
     from modescope.app.desktop.imaging import to_uint8
     rng = np.random.default_rng(2)
     x = rng.random((7, 9, 3)) * 1.4 - 0.2                      # float64, some out of [0, 1]
-    # reference: round-half-even of 255 x in float32, clipped (written out independently)
-    expected = np.clip(np.round(x.astype(np.float32) * np.float32(255)), 0, 255).astype(np.uint8)
+    x[0, :5, 0] = (np.arange(5) + 0.5) / 255                  # halfway between two levels
+    # reference: round-half-even of 255 x, clipped (written out independently) ...
+    expected = np.clip(np.round(x * 255), 0, 255).astype(np.uint8)
+    # ... which is core's rule for the exported files
+    np.testing.assert_array_equal(quantize(x, 8), expected)
     out = to_uint8(x)
     assert out.dtype == np.uint8 and out.flags.c_contiguous
     np.testing.assert_array_equal(out, expected)

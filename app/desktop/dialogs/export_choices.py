@@ -16,6 +16,7 @@ from PySide6.QtCore import QSignalBlocker
 from modescope.core.decomposition import Decomposition
 from modescope.core.errors import ModescopeError
 from modescope.core.output.encode import FORMATS
+from modescope.core.output.images import source_size
 from modescope.core.output.metrics import compression_numbers
 from modescope.core.output.naming import select_images
 
@@ -94,17 +95,21 @@ class ExportChoicesMixin:
         """Set the destination folder (kept for the rest of the session)."""
         self.folder_edit.setText(os.fspath(path) if path else "")
 
-    def _upsample_possible(self) -> bool:
+    def _upsample_size(self) -> tuple[int, int] | None:
+        """The source size previews can be enlarged to: the analysis was downscaled and records
+        the size (core's :func:`~modescope.core.output.images.source_size`); None otherwise."""
         d = self.decomposition
         if d is None:
-            return False
+            return None
         try:
-            downscale = int(d.metadata.get("downscale", 1))
+            if int(d.metadata.get("downscale", 1)) <= 1:
+                return None
+            return source_size(d)
         except (TypeError, ValueError):
-            return False
-        size = d.metadata.get("source_size")
-        return (downscale > 1 and isinstance(size, (list, tuple)) and len(size) == 2
-                and all(isinstance(v, int) and v > 0 for v in size))
+            return None
+
+    def _upsample_possible(self) -> bool:
+        return self._upsample_size() is not None
 
     # ----- the live lines ----------------------------------------------------------------------
     def resolution_text(self) -> str:
@@ -116,12 +121,12 @@ class ExportChoicesMixin:
         if "previews" not in self.chosen_parts():
             return f"No previews are written (the analysis resolution is {rows} × {cols} pixels)."
         if self.upsample_check.isEnabled() and self.upsample_check.isChecked():
-            src = d.metadata["source_size"]
+            src = self._upsample_size()
             return (f"Previews are written at the source size, {int(src[0])} × {int(src[1])} "
                     f"pixels (enlarged from the analysis resolution, {rows} × {cols}).")
         text = f"Previews are written at the analysis resolution, {rows} × {cols} pixels"
-        if self._upsample_possible():
-            src = d.metadata["source_size"]
+        src = self._upsample_size()
+        if src is not None:
             text += f" (the sources are {int(src[0])} × {int(src[1])})"
         return text + "."
 

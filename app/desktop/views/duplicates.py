@@ -39,7 +39,8 @@ DEFAULT_TOLERANCE = 0.02
 SEARCH_RANK = 10
 
 KIND_ROLE = Qt.ItemDataRole.UserRole + 1    # ("group", g) or ("image", i)
-_MARK_TEXT = {review.NOT_REVIEWED: "", review.KEEP: "keep", review.EXCLUDE: "exclude"}
+#: The mark column's words: core's names of the marks, blank for an image not reviewed.
+_MARK_TEXT = {**review.MARK_NAMES, review.NOT_REVIEWED: ""}
 _KEEP_FG = QColor(30, 120, 60)
 _EXCLUDE_FG = QColor(190, 40, 40)
 

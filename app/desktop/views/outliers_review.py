@@ -126,7 +126,7 @@ class ReviewActions:
         for a in (self.keep_action, self.exclude_action, self.clear_action):
             a.setEnabled(ready)
         d = self.state.decomposition
-        has_excluded = ready and bool(np.any(np.asarray(d.marks) == review.EXCLUDE))
+        has_excluded = ready and review.excluded_indices(d).size > 0
         self.refit_action.setEnabled(has_excluded and bool(d.paths))
         for (which, kind), a in self.export_actions.items():
             a.setEnabled(ready and (kind == "csv" or bool(d.paths)))
@@ -264,8 +264,7 @@ class ReviewActions:
         d, t = self.state.decomposition, self.scores
         if d is None or not self._ready():
             return None
-        count = (int(np.count_nonzero(np.asarray(d.marks) == review.EXCLUDE))
-                 if which == "excluded" else t.n_flagged)
+        count = review.excluded_indices(d).size if which == "excluded" else t.n_flagged
         if count == 0:
             self._warn("Nothing to export", f"No image is {which} at present.")
             return None

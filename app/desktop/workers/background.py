@@ -393,10 +393,6 @@ class BackgroundRunner(QObject):
         """Return True while an active job has not ended."""
         return any(not job.is_done() for job in self._active)
 
-    def is_busy(self) -> bool:
-        """Return True while any job of this runner (active or superseded) has not returned."""
-        return any(not job.has_returned() for job in (*self._active, *self._retired))
-
     # ----- control (GUI thread) ---------------------------------------------------------------
     def start(self, work: Callable[[JobContext], Any], *, task: str | None = None,
               describe_error: Callable[[BaseException], str] | None = None,
