@@ -86,6 +86,14 @@ def run(args: argparse.Namespace) -> int:
     except ModescopeError as exc:
         print(f"modescope analyze: {exc}", file=sys.stderr)
         return EXIT_UNUSABLE
+    if result.cancelled and d.exact:
+        passes = d.metadata.get("refinement", {}).get("passes", 0)
+        print(f"modescope analyze: interrupted during the refinement passes; wrote the result "
+              f"of the last complete pass ({passes} of at most "
+              f"{d.metadata.get('refinement', {}).get('max_passes', passes)}) to {written}; "
+              f"singular values: {describe_accuracy(d)}", file=sys.stderr)
+        print_problems(result.problems)
+        return EXIT_INTERRUPTED
     if result.cancelled:
         print(f"modescope analyze: interrupted; wrote the streaming result of the first "
               f"{counted(d.n_images, 'image')} to {written} (not exact: run `modescope update "

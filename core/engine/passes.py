@@ -37,6 +37,8 @@ class Refined:
         Complete passes over the data.
     stopped : bool
         True when cancelled before the first pass completed (then the arrays are None).
+    interrupted : bool
+        True when cancelled after at least one complete pass (the arrays are that pass's).
     """
 
     basis: np.ndarray | None
@@ -47,6 +49,7 @@ class Refined:
     energy: np.ndarray | None
     passes: int
     stopped: bool
+    interrupted: bool = False
 
 
 def _blocks(used: SourceSet, options: AnalysisOptions, workers: int, cancel,
@@ -105,7 +108,8 @@ def _source_note(cache: BlockCache | None, n_images: int) -> str:
 def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: AnalysisOptions, *,
            workers: int, cache: BlockCache | None = None, cache_start: int = 0,
            progress: Callable | None = None,
-           cancel: Callable[[], bool] = lambda: False) -> Refined:
+           cancel: Callable[[], bool] = lambda: False,
+           after_first_pass: Callable[[], None] | None = None) -> Refined:
     """Score every image exactly and refine the basis until it is certified.
 
     Pass 1 is the scoring pass: exact weights and residuals of every image in ``span(basis)``
@@ -133,6 +137,10 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
     cache_start : int, optional
     progress, cancel : callable, optional
         Progress (stage "score", with the pass in ``detail``) and the stop request.
+    after_first_pass : callable, optional
+        Called once the first pass is complete: from then on a stopped run returns the last
+        complete pass, so the caller may free what it kept for an earlier stop (the streaming
+        weights).
 
     Returns
     -------
@@ -144,6 +152,7 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
     energy = None
     passes = 0
     rounding = 0.0
+    interrupted = False
     while passes < (options.max_passes if options.refine else 1):
         detail = (f"pass {passes + 1} of at most {options.max_passes}, {note}"
                   if options.refine else note)
@@ -151,8 +160,11 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
         acc = _one_pass(basis, mean, used, options, workers, cancel, cache, cache_start, clock,
                         want_y=options.refine)
         if acc is None:
+            interrupted = last is not None
             break
         passes += 1
+        if passes == 1 and after_first_pass is not None:
+            after_first_pass()
         energy = acc.energy
         if not options.refine:
             return _plain(acc, rank, passes)
@@ -174,7 +186,7 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
     if last is None:
         return Refined(None, None, None, None, None, None, passes, True)
     b, s, w, res, err = last.truncate(rank)
-    return Refined(b, s, w, res, err, energy, passes, False)
+    return Refined(b, s, w, res, err, energy, passes, False, interrupted)
 
 
 def _excess(step: RitzStep, rank: int, tolerance: float) -> np.ndarray:

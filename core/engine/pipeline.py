@@ -133,10 +133,12 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
         used = dataclasses.replace(source_set, problems=(),
                                    images=tuple(source_set.images[i] for i in learned.kept))
         refined = refine(engine.basis, engine.mean, used, options, workers=run.workers,
-                         cache=cache, progress=progress, cancel=cancel)
+                         cache=cache, progress=progress, cancel=cancel,
+                         after_first_pass=engine.release_weights)
     if refined.stopped:
         return run.result(run.snapshot(learned, "cancelled"), True)
-    return run.result(run.final(refined, used.images, run.metadata("exact")), False)
+    return run.result(run.final(refined, used.images, run.metadata("exact")),
+                      refined.interrupted)
 
 
 class _Run:
@@ -192,7 +194,8 @@ class _Run:
 def _refinement_summary(refined: Refined, options: AnalysisOptions) -> dict:
     """Return the JSON summary of the refinement passes stored in the model's metadata."""
     summary = {"passes": refined.passes, "tolerance": options.tolerance,
-               "max_passes": options.max_passes, "certified": refined.error is not None}
+               "max_passes": options.max_passes, "certified": refined.error is not None,
+               "interrupted": refined.interrupted}
     if refined.error is not None:
         ok = refined.error <= options.tolerance * refined.singular_values
         summary["converged_modes"] = int(np.sum(ok))
@@ -363,12 +366,13 @@ def update_analysis(decomposition: Decomposition, sources, options: AnalysisOpti
         # the old images are read from their files, the new ones back from the cache
         refined = refine(engine.padded_basis(), engine.mean, all_set, options,
                          workers=run.workers, cache=cache, cache_start=d.n_images,
-                         progress=progress, cancel=cancel)
+                         progress=progress, cancel=cancel,
+                         after_first_pass=engine.release_weights)
     if refined.stopped:
         return run.result(run.snapshot(learned, "cancelled"), True)
     meta = run.metadata("exact")
     meta["updated_from"] = {"images": d.n_images, "created": d.metadata.get("created")}
-    return run.result(run.final(refined, all_set.images, meta), False)
+    return run.result(run.final(refined, all_set.images, meta), refined.interrupted)
 
 
 def _update_options(d: Decomposition, options: AnalysisOptions | None) -> AnalysisOptions:

@@ -81,10 +81,13 @@ class StreamingSVD:
         self.basis = np.zeros((self.n_pixels, 0), dtype=np.float32, order="F")
         self.singular_values = np.zeros(0, dtype=np.float64)
         # weights: flushed part (coordinates in an older basis) + pending affine map, and chunks
-        self._flushed = np.zeros((0, 0), dtype=np.float64)
+        # weights: flushed pieces (float32, all in one older coordinate system) with one pending
+        # affine map for all of them, plus [A, b, W] per block since the last flush
+        self._pieces: list[np.ndarray] = []
         self._map_a = np.zeros((0, 0))
         self._map_b = np.zeros(0)
-        self._chunks: list[list[np.ndarray]] = []   # [A, b, W] per chunk since the last flush
+        self._chunks: list[list[np.ndarray]] = []
+        self._released = False
 
     # ---------------------------------------------------------------------------------------
     def update(self, block: np.ndarray) -> None:
@@ -260,7 +263,7 @@ class StreamingSVD:
         return new_rows, sig, fix @ a_blk, fix @ b_blk, fix @ new_w
 
     def _compose(self, a_blk: np.ndarray, b_blk: np.ndarray) -> None:
-        if self._flushed.shape[1] > 0:
+        if self._pieces:
             self._map_a = a_blk @ self._map_a
             self._map_b = a_blk @ self._map_b + b_blk
         for chunk in self._chunks:
@@ -268,15 +271,19 @@ class StreamingSVD:
             chunk[1] = a_blk @ chunk[1] + b_blk
 
     def _flush(self) -> None:
-        parts = []
-        if self._flushed.shape[1] > 0:
-            parts.append(self._map_a @ self._flushed + self._map_b[:, None])
+        """Apply the pending maps, one piece at a time (never a second copy of all weights).
+
+        Pieces are kept in float32: they are streaming estimates (the passes after learning
+        compute the exact weights), and this halves the memory per image.
+        """
+        for i, piece in enumerate(self._pieces):
+            self._pieces[i] = (self._map_a @ piece.astype(np.float64)
+                               + self._map_b[:, None]).astype(np.float32)
         for a, b, w in self._chunks:
-            parts.append(a @ w + b[:, None])
-        q = self.basis.shape[1] if not self._chunks else self._chunks[-1][0].shape[0]
-        self._flushed = np.concatenate(parts, axis=1) if parts else np.zeros((q, 0))
-        self._map_a = np.eye(self._flushed.shape[0])
-        self._map_b = np.zeros(self._flushed.shape[0])
+            self._pieces.append((a @ w + b[:, None]).astype(np.float32))
+        q = self._pieces[0].shape[0] if self._pieces else self.basis.shape[1]
+        self._map_a = np.eye(q)
+        self._map_b = np.zeros(q)
         self._chunks = []
 
     def _reorthonormalise_if_needed(self) -> None:
@@ -314,7 +321,7 @@ class StreamingSVD:
         engine.total_energy = float(d.total_energy)
         engine.basis = np.asfortranarray(d.basis, dtype=np.float32)
         engine.singular_values = np.asarray(d.singular_values, dtype=np.float64).copy()
-        engine._flushed = np.asarray(d.weights, dtype=np.float64).copy()
+        engine._pieces = [np.asarray(d.weights, dtype=np.float32).copy()] if d.n_images else []
         engine._map_a = np.eye(d.rank)
         engine._map_b = np.zeros(d.rank)
         return engine
@@ -344,7 +351,26 @@ class StreamingSVD:
     def internal_weights(self) -> np.ndarray:
         """Return the weights of every image seen, shape (internal directions, n_seen)."""
         self._flush()
-        return self._flushed.copy()
+        if not self._pieces:
+            return np.zeros((self.basis.shape[1], 0))
+        return np.concatenate(self._pieces, axis=1).astype(np.float64)
+
+    def release_weights(self) -> None:
+        """Forget the streaming weights of every image (when exact ones have replaced them).
+
+        The engine's basis, singular values, mean and energy stay; :meth:`snapshot` can no
+        longer be asked for afterwards.
+        """
+        self._pieces, self._chunks = [], []
+        self._map_a, self._map_b = np.zeros((0, 0)), np.zeros(0)
+        self._released = True
+
+    def internal_weights_rows(self, rows: int) -> np.ndarray:
+        """Return the first ``rows`` internal weights of every image, float64 (a snapshot)."""
+        self._flush()
+        if not self._pieces:
+            return np.zeros((min(rows, self.basis.shape[1]), 0))
+        return np.concatenate([p[:rows] for p in self._pieces], axis=1).astype(np.float64)
 
     def snapshot(self, image_shape: tuple | None = None, **fields) -> Decomposition:
         """Return a consistent Decomposition of everything seen so far (streaming, not exact).
@@ -363,9 +389,11 @@ class StreamingSVD:
         """
         if self.n_seen == 0:
             raise ValueError("no images have been added yet")
+        if self._released:
+            raise ValueError("the streaming weights were released after an exact pass")
         self._reorthonormalise_if_needed()
         k = min(self.rank, self.basis.shape[1])
-        weights = self.internal_weights()[:k]
+        weights = self.internal_weights_rows(k)
         basis, weights = fix_signs(self.basis[:, :k], weights)
         shape = tuple(image_shape) if image_shape is not None else (self.n_pixels, 1, 1)
         return Decomposition(mean=self.mean.astype(np.float32), basis=np.asfortranarray(basis),

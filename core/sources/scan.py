@@ -33,6 +33,7 @@ Rules
 
 from __future__ import annotations
 
+import gc
 import os
 import re
 import sys
@@ -226,9 +227,16 @@ def _has_supported_suffix(name: str) -> bool:
     return os.path.splitext(name)[1].lower() in SUPPORTED_SUFFIXES
 
 
-def _list_folder(folder: str, recursive: bool, problems: list[Problem]) -> list[str]:
-    """Return the supported files of ``folder`` in natural order (absolute paths)."""
-    found: list[tuple[tuple, str]] = []
+def _list_folder(folder: str, recursive: bool,
+                 problems: list[Problem]) -> list[tuple[str, bool]]:
+    """Return ``(path, is_link)`` of the supported files of ``folder`` in natural order.
+
+    ``folder`` is absolute and normalised, so the paths are too (no copy per file: per-file
+    bookkeeping is what grows with a collection).
+    """
+    # the sort keys are made only when sorting, after every kept path exists: they are freed
+    # together then, instead of leaving memory in pieces between the paths that stay
+    found: list[tuple[str, bool]] = []
     if recursive:
         def on_error(err: OSError) -> None:
             problems.append(Problem(err.filename or folder,
@@ -242,25 +250,26 @@ def _list_folder(folder: str, recursive: bool, problems: list[Problem]) -> list[
                 full = os.path.join(dirpath, fname)
                 if not os.path.isfile(full):
                     continue
-                found.append((_path_key(os.path.relpath(full, folder)), full))
+                found.append((full, os.path.islink(full)))
     else:
         try:
             with os.scandir(folder) as it:
-                entries = list(it)
+                for entry in it:
+                    if _is_hidden(entry.name) or not _has_supported_suffix(entry.name):
+                        continue
+                    try:
+                        if not entry.is_file():
+                            continue
+                        is_link = entry.is_symlink()
+                    except OSError:
+                        continue
+                    found.append((entry.path, is_link))
         except OSError as err:
             problems.append(Problem(folder, f"folder cannot be read ({err.strerror or err})"))
             return []
-        for entry in entries:
-            if _is_hidden(entry.name) or not _has_supported_suffix(entry.name):
-                continue
-            try:
-                if not entry.is_file():
-                    continue
-            except OSError:
-                continue
-            found.append((_path_key(entry.name), entry.path))
-    found.sort(key=lambda item: item[0])
-    return [os.path.abspath(full) for _, full in found]
+    start = len(folder.rstrip("/\\")) + 1
+    found.sort(key=lambda item: _path_key(item[0][start:]))
+    return found
 
 
 def _short_message(exc: BaseException, path: str) -> str:
@@ -413,26 +422,43 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
     files: list[str] = []
     seen: set[str] = set()
 
-    def add(path: str) -> None:
-        key = os.path.normcase(os.path.realpath(path))
+    def add(path: str, key: str) -> None:
+        # one file reached twice (overlapping folders, links, a file also named on its own)
+        # is analysed once
         if key not in seen:
             seen.add(key)
             files.append(path)
+
+    def real(path: str) -> str:
+        return os.path.normcase(os.path.realpath(path))
 
     for source in source_list:
         if cancel is not None and cancel():
             raise AnalysisCancelled("scan of the image sources was cancelled")
         full = os.path.abspath(source)
         if os.path.isdir(full):
-            for path in _list_folder(full, recursive, problems):
-                add(path)
+            real_folder = real(full)
+            as_is = real_folder == full        # no link on the way: a path is its own key
+            for path, is_link in _list_folder(full, recursive, problems):
+                if is_link:
+                    add(path, real(path))
+                elif as_is:
+                    add(path, path)
+                else:
+                    add(path, os.path.join(real_folder, os.path.relpath(path, full)))
         elif os.path.isfile(full):
-            add(full)
+            add(full, real(full))
         elif os.path.exists(full):
             problems.append(Problem(full, "is neither a file nor a folder"))
         else:
             problems.append(Problem(full, "does not exist"))
 
+    # the natural-sort keys of a large folder (about 0.5 KB a file) are freed by now, but the
+    # interpreter keeps their memory until a full collection: 10 MB per 20,000 files measured
+    # here, which would otherwise stay for the whole analysis (a full collection costs tens of
+    # milliseconds, so only after large listings)
+    if len(files) > 5000:
+        gc.collect()
     total = len(files)
     found: list[ImageRef] = []
     sizes: dict = {}

@@ -144,3 +144,23 @@ def test_certificate_formula_on_a_known_matrix():
         theta = step.singular_values[i] ** 2
         nearest = np.min(np.abs(lam - theta))
         assert nearest <= step.error[i] * step.singular_values[i] * (1 + 1e-6)
+
+
+def test_a_stop_during_a_later_pass_keeps_the_last_complete_pass(digits):
+    # cancel once the second pass has started: the result is the first pass's exact
+    # projections (final, certified as far as one pass goes), marked as interrupted
+    folder, X, A, u, s = digits
+    seen = []
+
+    def progress(p):
+        seen.append((p.stage, p.detail))
+
+    def cancel():
+        return any(stage == "score" and detail.startswith("pass 2") for stage, detail in seen)
+
+    result = analyze([folder], AnalysisOptions(rank=40, max_passes=6, tolerance=1e-9),
+                     progress=progress, cancel=cancel)
+    d = result.decomposition
+    assert result.cancelled and d.exact
+    assert d.metadata["refinement"]["passes"] == 1 and d.metadata["refinement"]["interrupted"]
+    assert np.all(np.abs(d.singular_values - s[:40]) <= d.singular_value_error)   # LAPACK
