@@ -333,3 +333,25 @@ def test_progress_and_cancel(tmp_path):
 def test_imageref_defaults():
     ref = ImageRef("/a.png")
     assert (ref.page, ref.size, ref.mode) == (0, (0, 0), "")
+
+
+def test_links_and_linked_folders_are_found_once(tmp_path):
+    real = tmp_path / "real"
+    real.mkdir()
+    gray(real / "a.png")
+    gray(real / "b.png")
+    (real / "c.png").symlink_to(real / "a.png")         # a link to a file of the same folder
+    (tmp_path / "via").symlink_to(real, target_is_directory=True)
+    # the same files through the real folder, a linked folder, and one file named on its own
+    sset = scan_sources([real, tmp_path / "via", tmp_path / "via" / "b.png"])
+    assert names(sset) == ["a.png", "b.png"]
+    # through the linked folder first: its paths are kept as given
+    sset = scan_sources([tmp_path / "via", real])
+    assert [r.path for r in sset.images] == [str(tmp_path / "via" / "a.png"),
+                                            str(tmp_path / "via" / "b.png")]
+    # recursive listing of a folder holding a link to a sibling folder
+    (tmp_path / "tree").mkdir()
+    (tmp_path / "tree" / "inner").symlink_to(real, target_is_directory=True)
+    gray(tmp_path / "tree" / "d.png")
+    sset = scan_sources([tmp_path / "tree", real], recursive=True)
+    assert sorted(names(sset)) == ["a.png", "b.png", "d.png"]
