@@ -95,8 +95,7 @@ def test_table_view_selects_rows_by_image(qtbot, dec, table):
 
 # ===== plot =====================================================================================
 def test_plot_draws_scores_in_log_and_linear_units(plot, table):
-    assert plot.log
-    plot.show_scores(table, np.zeros(N, dtype=np.int8))
+    plot.show_scores(table, np.zeros(N, dtype=np.int8))      # log axes at first:
     x, y = plot.scatter.getData()
     np.testing.assert_allclose(x, np.log10(table.t2), rtol=1e-12)
     np.testing.assert_allclose(y, np.log10(table.q), rtol=1e-12)

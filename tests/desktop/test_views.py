@@ -18,7 +18,8 @@ from PySide6.QtWidgets import QApplication
 import modescope.app.desktop.views.gallery as gallery_module
 from modescope.app.desktop.views.gallery import (LIMIT_ROLE, MODE_ROLE, BasisGallery, BasisModel,
                                                 basis_tile_rgb)
-from modescope.app.desktop.views.image_list import COL_FILE, COL_RESIDUAL, ImageListView
+from modescope.app.desktop.views.image_list import (COL_FILE, COL_NUMBER, COL_RESIDUAL,
+                                                    SORT_ROLE, ImageListView)
 from modescope.app.desktop.views.spectrum import SpectrumView, log_ticks
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.views.weights import POINT_COLOURS, WeightsView
@@ -477,6 +478,11 @@ def test_weights_sequence_click_and_line(qtbot, state):
 
 
 # ===== image list ==============================================================================
+def _image_in_row(view, row: int) -> int:
+    """The image (0-based) whose number the list shows in its row ``row``."""
+    return int(view.proxy.index(row, COL_NUMBER).data()) - 1
+
+
 def test_image_list_rows_filter_and_residual(qtbot, state, gray, files):
     v = ImageListView(state)
     qtbot.addWidget(v)
@@ -485,7 +491,7 @@ def test_image_list_rows_filter_and_residual(qtbot, state, gray, files):
     names = [Path(p).name for p in files[1]]
     expect = sorted(i for i, name in enumerate(names) if "other" in name.lower())
     assert v.proxy.rowCount() == len(expect) > 0
-    assert sorted(v.source_row(r) for r in range(v.proxy.rowCount())) == expect
+    assert sorted(_image_in_row(v, r) for r in range(v.proxy.rowCount())) == expect
     assert v.count.text() == f"{len(expect)} of {N} images, residual at rank {state.rank}"
     v.filter.clear()
     assert v.proxy.rowCount() == N
@@ -494,7 +500,7 @@ def test_image_list_rows_filter_and_residual(qtbot, state, gray, files):
     assert v.model.data(v.model.index(5, COL_RESIDUAL)) == f"{res[5]:.4g}"
     # sorting by residual gives numpy's argsort order
     v.table.sortByColumn(COL_RESIDUAL, Qt.SortOrder.AscendingOrder)
-    order = [v.source_row(r) for r in range(N)]
+    order = [_image_in_row(v, r) for r in range(N)]
     np.testing.assert_array_equal(order, np.argsort(res, kind="stable"))
 
 
@@ -510,15 +516,15 @@ def test_image_list_selection_both_ways(qtbot, state):
     assert state.selected == 9
     assert sel.n == 1
     state.set_selected(17)
-    assert v.source_row(v.table.currentIndex().row()) == 17
-    assert [v.source_row(i.row()) for i in v.table.selectionModel().selectedRows()] == [17]
+    assert _image_in_row(v, v.table.currentIndex().row()) == 17
+    assert [_image_in_row(v, i.row()) for i in v.table.selectionModel().selectedRows()] == [17]
     assert sel.n == 2 and sets.n == 0  # no echo back into the state
     # a filtered list still maps rows correctly
     v.filter.setText("frame_02")
     assert v.proxy_row(17) == -1  # filtered out: nothing is shown selected
     assert v.table.selectionModel().selectedRows() == []
     state.set_selected(22)
-    assert v.source_row(v.table.currentIndex().row()) == 22
+    assert _image_in_row(v, v.table.currentIndex().row()) == 22
     # several rows picked in the table become the selection set
     v.filter.clear()
     sm = v.table.selectionModel()
@@ -527,7 +533,7 @@ def test_image_list_selection_both_ways(qtbot, state):
     assert state.selection_set == (3, 22)
     # a selection set from another view selects those rows
     state.set_selection_set((1, 2, 5))
-    got = sorted(v.source_row(i.row()) for i in sm.selectedRows())
+    got = sorted(_image_in_row(v, i.row()) for i in sm.selectedRows())
     assert got == [1, 2, 5]
 
 
@@ -621,7 +627,10 @@ def test_views_follow_rank_changes_and_clear(qtbot, state, gray):
     np.testing.assert_allclose(w.bars.opts["height"], gray.weights[:5, state.selected])
     # the residual at rank r <= 5 of the truncated copy equals the original's at rank r
     assert 1 <= state.rank <= 5
-    np.testing.assert_allclose(lv.model.residual(3), gray.residual_at_rank(state.rank)[3])
+    expected = gray.residual_at_rank(state.rank)[3]
+    cell = lv.model.index(3, COL_RESIDUAL)
+    assert lv.model.data(cell) == f"{expected:.4g}"                 # the text shown
+    np.testing.assert_allclose(lv.model.data(cell, SORT_ROLE), expected)   # the value sorted by
     state.set_decomposition(None)
     for v in views:
         _flush(qtbot, v)

@@ -126,14 +126,6 @@ class ImageTableModel(QAbstractTableModel):
             self.dataChanged.emit(self.index(0, COL_RESIDUAL),
                                   self.index(len(self._names) - 1, COL_RESIDUAL))
 
-    def name(self, row: int) -> str:
-        """Return the file name shown in row ``row``."""
-        return self._names[row]
-
-    def residual(self, row: int) -> float | None:
-        """Return the residual at the current rank of row ``row`` (None when unknown)."""
-        return None if self._residual is None else float(self._residual[row])
-
     @Slot(object)
     def _on_thumbnail(self, key) -> None:
         for row in self._rows_of.get(key, ()):
@@ -325,10 +317,6 @@ class ImageListView(ThrottledRedraw, QWidget):
         if not 0 <= source_row < self.model.rowCount():
             return -1
         return self.proxy.mapFromSource(self.model.index(source_row, 0)).row()
-
-    def source_row(self, proxy_row: int) -> int:
-        """Return the image index shown in row ``proxy_row``."""
-        return self.proxy.mapToSource(self.proxy.index(proxy_row, 0)).row()
 
     def _update_count(self) -> None:
         n, shown = self.model.rowCount(), self.proxy.rowCount()

@@ -131,11 +131,6 @@ class OutlierPlot(pg.PlotWidget):
         self.plot_item.getViewBox().sigRangeChanged.connect(self._update_ticks)
 
     # ----- contents ----------------------------------------------------------------------------
-    @property
-    def log(self) -> bool:
-        """True when both axes are logarithmic."""
-        return self._log
-
     def set_log(self, log: bool) -> None:
         """Draw on logarithmic (True) or linear (False) axes."""
         self._log = bool(log)

@@ -384,11 +384,6 @@ class BackgroundRunner(QObject):
         """The runner's own thread pool."""
         return self._pool
 
-    @property
-    def current(self) -> Job | None:
-        """The newest active job (None when none is active)."""
-        return self._active[-1] if self._active else None
-
     def is_running(self) -> bool:
         """Return True while an active job has not ended."""
         return any(not job.is_done() for job in self._active)

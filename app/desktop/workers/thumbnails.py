@@ -174,10 +174,6 @@ class ThumbnailCache:
     def __contains__(self, key: Hashable) -> bool:
         return key in self._data
 
-    def keys(self) -> list:
-        """Return the keys, least recently used first."""
-        return list(self._data)
-
     def get(self, key: Hashable, default: Any = None) -> Any:
         """Return the entry for ``key`` (marking it as recently used) or ``default``."""
         try:
