@@ -179,8 +179,8 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
         excess = _excess(last, rank, options.tolerance)
         if np.all(excess <= 1.0):
             break
-        if previous is not None and _out_of_reach(previous, excess,
-                                                  options.max_passes - passes):
+        if _out_of_reach(previous, excess, _predicted_rate(last, rank),
+                         options.max_passes - passes):
             break
         basis = last.next_basis
     if last is None:
@@ -207,22 +207,41 @@ def _excess(step: RitzStep, rank: int, tolerance: float) -> np.ndarray:
     return np.maximum(by_value, by_angle)
 
 
-def _out_of_reach(previous: np.ndarray, last: np.ndarray, passes_left: int) -> bool:
+def _predicted_rate(step: RitzStep, rank: int) -> np.ndarray:
+    """Per-pass shrink factor subspace iteration should give each reported mode.
+
+    The error of mode i shrinks by about ``lambda_(q+1) / lambda_i`` per pass (Golub and Van
+    Loan, "Matrix Computations", 4th ed., Thm 8.2.2); the last Ritz value stands in for the
+    unknown ``lambda_(q+1)``.
+    """
+    k = min(rank, step.singular_values.size)
+    theta = step.singular_values ** 2
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(theta[:k] > 0, theta[-1] / theta[:k], 1.0)
+
+
+def _out_of_reach(previous: np.ndarray | None, last: np.ndarray, predicted: np.ndarray,
+                  passes_left: int) -> bool:
     """True when no mode still open (excess above 1) can close in the passes left.
 
-    Each mode's excess shrank by ``last / previous`` in the last pass; it reaches 1 in about
-    ``log(1 / last) / log(last / previous)`` more passes at that rate (subspace iteration
-    converges linearly). A mode whose excess shrank by less than a fifth is stalled (the
+    A mode's excess shrinks by a rate per pass: the one measured between the last two passes
+    when there are two, else the one predicted by :func:`_predicted_rate`. At that rate it
+    reaches 1 in about ``log(1 / excess) / log(rate)`` more passes (subspace iteration
+    converges linearly). A mode whose excess shrinks by less than a fifth is stalled (the
     float32 rounding budget, or a spectrum without a gap). The rule and the factor are our own
     choice, no published source: they stop passes that would cost time for nothing.
     """
-    n = min(previous.size, last.size)      # a rank-deficient pass may drop a direction
-    previous, last = previous[:n], last[:n]
-    open_modes = last > 1.0
+    n = min(last.size, predicted.size) if previous is None else min(previous.size, last.size,
+                                                                       predicted.size)
+    last = last[:n]
     with np.errstate(divide="ignore", invalid="ignore"):
-        rate = np.where((previous > 0) & np.isfinite(previous), last / previous, 1.0)
+        if previous is None:
+            rate = predicted[:n]
+        else:
+            previous = previous[:n]
+            rate = np.where((previous > 0) & np.isfinite(previous), last / previous, 1.0)
         needed = np.where(rate < 0.8, np.log(1.0 / last) / np.log(rate), np.inf)
-    return bool(np.all(needed[open_modes] > passes_left))
+    return bool(np.all(needed[last > 1.0] > passes_left))
 
 
 def _plain(acc: PassAccumulator, rank: int, passes: int) -> Refined:
