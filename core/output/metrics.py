@@ -40,12 +40,17 @@ def quantize(values, bits: int = 8) -> np.ndarray:
     """
     if bits not in (8, 16):
         raise ValueError(f"bits must be 8 or 16, got {bits!r}")
-    arr = np.asarray(values, dtype=np.float64)
-    if np.isnan(arr).any():
+    arr = np.asarray(values)
+    # float64 work array (one copy; float32 input is widened exactly), then in place: the
+    # rank slider calls this on every step
+    work = np.array(arr, dtype=np.float64, copy=True)
+    if np.isnan(work).any():
         raise ValueError("values must not hold NaN")
     top = 255.0 if bits == 8 else 65535.0
-    out = np.rint(np.clip(arr, 0.0, 1.0) * top)
-    return out.astype(np.uint8 if bits == 8 else np.uint16)
+    np.clip(work, 0.0, 1.0, out=work)
+    np.multiply(work, top, out=work)
+    np.rint(work, out=work)
+    return work.astype(np.uint8 if bits == 8 else np.uint16)
 
 
 def _same_shape(reference, estimate) -> tuple[np.ndarray, np.ndarray]:
