@@ -8,7 +8,7 @@ import time
 from pathlib import Path
 
 from modescope.app.cli.common import (EXIT_INTERRUPTED, EXIT_OK, EXIT_UNUSABLE, EXIT_USAGE,
-                                      InterruptFlag, ProgressLine, add_accuracy_options, failed,
+                                      InterruptFlag, ProgressLine, add_accuracy_options, cores, failed,
                                       positive_int, print_problems)
 from modescope.core.review.accuracy import describe_accuracy
 from modescope.app.words import counted
@@ -56,7 +56,8 @@ def run(args: argparse.Namespace) -> int:
                                   resize_mismatched=args.resize_mismatched,
                                   block_size=args.block_size, oversample=args.oversample,
                                   refine=not args.no_refine, workers=args.workers,
-                                  tolerance=args.tolerance, max_passes=args.max_passes)
+                                  tolerance=args.tolerance, max_passes=args.max_passes,
+                                  pass_blas_threads=cores())
     except (TypeError, ValueError) as exc:
         print(f"modescope analyze: {exc}", file=sys.stderr)
         return EXIT_USAGE

@@ -82,6 +82,15 @@ def fraction(text: str) -> float:
     return value
 
 
+def cores() -> int:
+    """Return the number of cores this process may use (for the passes after learning)."""
+    import os
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except (AttributeError, OSError):       # not on Linux
+        return max(1, os.cpu_count() or 1)
+
+
 def add_accuracy_options(parser: argparse.ArgumentParser) -> None:
     """Add ``--oversample``, ``--tolerance`` and ``--max-passes`` (analyze and update)."""
     parser.add_argument("--oversample", type=non_negative_int, default=10, metavar="P",

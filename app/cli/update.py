@@ -6,7 +6,7 @@ import argparse
 import dataclasses
 import sys
 
-from modescope.app.cli.common import (EXIT_OK, ProgressLine, add_accuracy_options, failed,
+from modescope.app.cli.common import (EXIT_OK, ProgressLine, add_accuracy_options, cores, failed,
                                       print_problems)
 from modescope.core.review.accuracy import describe_accuracy
 from modescope.core.errors import ModescopeError
@@ -38,7 +38,7 @@ def run(args: argparse.Namespace) -> int:
         options = AnalysisOptions.from_dict(d.metadata.get("options", {}))
         options = dataclasses.replace(options, rank=max(d.rank, 1), recursive=args.recursive,
                                       oversample=args.oversample, tolerance=args.tolerance,
-                                      max_passes=args.max_passes)
+                                      max_passes=args.max_passes, pass_blas_threads=cores())
         progress = None if args.quiet else ProgressLine(sys.stderr)
         result = update_analysis(d, args.sources, options, progress=progress)
         written = save_model(args.output, result.decomposition)

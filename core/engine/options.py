@@ -66,6 +66,12 @@ class AnalysisOptions:
     blas_threads : int
         Threads for the matrix products (pinned with threadpoolctl so that decoding and BLAS do not
         fight over the cores).
+    pass_blas_threads : int
+        Threads for the matrix products of the passes after learning, when nothing decodes
+        (images come back from the block cache); 0 (default) keeps ``blas_threads``. The
+        command line sets it to the number of cores; the desktop program keeps 0, because
+        changing OpenBLAS's thread count while the GUI thread may be inside a BLAS call is
+        risky (from memory of OpenBLAS reports, not verified here).
     """
 
     rank: int = 20
@@ -78,6 +84,7 @@ class AnalysisOptions:
     refine: bool = True
     workers: int = 0
     blas_threads: int = 1
+    pass_blas_threads: int = 0
     tolerance: float = 1e-4
     max_passes: int = 4
 
@@ -89,6 +96,7 @@ class AnalysisOptions:
         check_int("oversample", self.oversample, minimum=0, maximum=10_000)
         check_int("workers", self.workers, minimum=0, maximum=256)
         check_int("blas_threads", self.blas_threads, minimum=1, maximum=256)
+        check_int("pass_blas_threads", self.pass_blas_threads, minimum=0, maximum=256)
         check_int("max_passes", self.max_passes, minimum=1, maximum=1000)
         if isinstance(self.tolerance, bool) or not isinstance(self.tolerance, (int, float)):
             raise TypeError(f"tolerance must be a number, got {self.tolerance!r}")

@@ -182,7 +182,7 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
         if _out_of_reach(previous, excess, _predicted_rate(last, rank),
                          options.max_passes - passes):
             break
-        basis = last.next_basis
+        basis = last.next_basis()
     if last is None:
         return Refined(None, None, None, None, None, None, passes, True)
     b, s, w, res, err = last.truncate(rank)

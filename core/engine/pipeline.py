@@ -132,9 +132,10 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
             return run.result(run.snapshot(learned, "cancelled"), True)
         used = dataclasses.replace(source_set, problems=(),
                                    images=tuple(source_set.images[i] for i in learned.kept))
-        refined = refine(engine.basis, engine.mean, used, options, workers=run.workers,
-                         cache=cache, progress=progress, cancel=cancel,
-                         after_first_pass=engine.release_weights)
+        with _pass_threads(options):
+            refined = refine(engine.basis, engine.mean, used, options, workers=run.workers,
+                             cache=cache, progress=progress, cancel=cancel,
+                             after_first_pass=engine.release_weights)
     if refined.stopped:
         return run.result(run.snapshot(learned, "cancelled"), True)
     return run.result(run.final(refined, used.images, run.metadata("exact")),
@@ -201,6 +202,14 @@ def _refinement_summary(refined: Refined, options: AnalysisOptions) -> dict:
         summary["converged_modes"] = int(np.sum(ok))
         summary["unconverged"] = [int(i) + 1 for i in np.flatnonzero(~ok)]
     return summary
+
+
+def _pass_threads(options: AnalysisOptions):
+    """BLAS threads for the passes after learning (see ``AnalysisOptions.pass_blas_threads``)."""
+    import contextlib
+    if not options.pass_blas_threads or options.pass_blas_threads == options.blas_threads:
+        return contextlib.nullcontext()
+    return blas_limit(options.pass_blas_threads)
 
 
 def _scanned(sources, options, progress, cancel) -> SourceSet | None:
@@ -364,10 +373,11 @@ def update_analysis(decomposition: Decomposition, sources, options: AnalysisOpti
             return run.result(run.snapshot(learned, "streaming"), False)
         all_set = _old_and_new(d, new_set, learned, options)
         # the old images are read from their files, the new ones back from the cache
-        refined = refine(engine.padded_basis(), engine.mean, all_set, options,
-                         workers=run.workers, cache=cache, cache_start=d.n_images,
-                         progress=progress, cancel=cancel,
-                         after_first_pass=engine.release_weights)
+        with _pass_threads(options):
+            refined = refine(engine.padded_basis(), engine.mean, all_set, options,
+                             workers=run.workers, cache=cache, cache_start=d.n_images,
+                             progress=progress, cancel=cancel,
+                             after_first_pass=engine.release_weights)
     if refined.stopped:
         return run.result(run.snapshot(learned, "cancelled"), True)
     meta = run.metadata("exact")

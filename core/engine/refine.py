@@ -268,8 +268,9 @@ class RitzStep:
         :func:`angle_bounds` of each Ritz vector (NaN: not determined on its own).
     outside : ndarray, shape (n,)
         Squared norm of each centred image outside ``span(basis)``.
-    next_basis : ndarray, shape (pixels, q), float32
-        Orthonormal basis for the next pass (subspace iteration).
+    step_rows : ndarray, shape (q, pixels), float64
+        ``M`` applied to the Ritz vectors (as rows), scaled by their Ritz values: the rows
+        whose span is the next basis (:meth:`next_basis`).
     """
 
     basis: np.ndarray
@@ -279,7 +280,15 @@ class RitzStep:
     error: np.ndarray
     angle: np.ndarray
     outside: np.ndarray
-    next_basis: np.ndarray
+    step_rows: np.ndarray
+
+    def next_basis(self) -> np.ndarray:
+        """Return the orthonormal basis for the next pass (one subspace-iteration step).
+
+        Made only when another pass follows (the orthonormalisation is a small SVD of a
+        q x pixels matrix).
+        """
+        return np.asfortranarray(_orthonormal_rows(self.step_rows).T)
 
     def truncate(self, rank: int):
         """Return (basis, singular values, weights, residual, error) of the first ``rank``.
@@ -327,15 +336,13 @@ def rayleigh_ritz_step(acc: PassAccumulator, rounding: float = 0.0) -> RitzStep:
     error = certify(sv, res_norms, rounding)
     angle = angle_bounds(sv, res_norms)
     del res_rows
-    next_rows = _orthonormal_rows(np.where(theta[:, None] > 0,
-                                           vt_yt / np.where(theta > 0, theta, 1.0)[:, None],
-                                           ritz_rows))
-    del vt_yt
+    positive = theta > 0
+    vt_yt[positive] /= theta[positive, None]          # in place: M u_i / theta_i
+    vt_yt[~positive] = ritz_rows[~positive]
     basis, signed = fix_signs(np.ascontiguousarray(ritz_rows.T), vec.T)
     return RitzStep(basis=np.asfortranarray(basis), singular_values=sv, rotation=signed,
                     pass_weights=acc.weights, error=error, angle=angle,
-                    outside=acc.residual.copy(),
-                    next_basis=np.asfortranarray(next_rows.T))
+                    outside=acc.residual.copy(), step_rows=vt_yt)
 
 
 _CHUNK = 8192   # images per float64 chunk when float32 weights are combined
