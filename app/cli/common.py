@@ -93,14 +93,18 @@ def cores() -> int:
 
 def add_accuracy_options(parser: argparse.ArgumentParser) -> None:
     """Add ``--oversample``, ``--tolerance`` and ``--max-passes`` (analyze and update)."""
-    parser.add_argument("--oversample", type=non_negative_int, default=10, metavar="P",
-                        help="extra internal directions (default 10)")
-    parser.add_argument("--tolerance", type=fraction, default=1e-4, metavar="T",
+    from modescope.core.engine.options import AnalysisOptions
+    defaults = AnalysisOptions()
+    parser.add_argument("--oversample", type=non_negative_int, default=defaults.oversample,
+                        metavar="P", help="extra internal directions beyond --rank "
+                                          f"(default {defaults.oversample})")
+    parser.add_argument("--tolerance", type=fraction, default=defaults.tolerance, metavar="T",
                         help="relative accuracy asked of every singular value; refinement "
                              "passes run until each certified bound is within it "
-                             "(default 1e-4)")
-    parser.add_argument("--max-passes", type=positive_int, default=4, metavar="N",
-                        help="most passes over the images after learning (default 4)")
+                             f"(default {defaults.tolerance:g})")
+    parser.add_argument("--max-passes", type=positive_int, default=defaults.max_passes,
+                        metavar="N", help="most passes over the images after learning "
+                                          f"(default {defaults.max_passes})")
 
 
 def non_negative_int(text: str) -> int:

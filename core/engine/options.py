@@ -49,7 +49,12 @@ class AnalysisOptions:
         measured faster here for both 128x128 gray and 256x256 RGB). For large images it is
         lowered so that one decoded block stays within 256 MB (see :func:`block_size_for`).
     oversample : int
-        Extra directions kept internally to hold accuracy of the reported ones.
+        Extra directions kept internally beyond ``rank`` (default 20, chosen from measurement
+        on 2026-12-03: on 3,000 smooth random 64x64 fields with no spectral gap, k = 50, four
+        passes certified 27, 43, 47 and 50 of the 50 modes with 10, 20, 30 and 40 extra
+        directions, in 0.89, 1.00, 1.05 and 1.03 s; on 5,000 low-rank-plus-noise 128x128
+        images every value gave the same time within the noise, and every one certified the 30
+        signal modes in one pass; each extra direction costs about 4 bytes per image).
     refine : bool
         Run the refinement passes with their Rayleigh-Ritz step and certificate (False: one
         plain projection pass, no rotation, no certificate).
@@ -80,7 +85,7 @@ class AnalysisOptions:
     recursive: bool = False
     resize_mismatched: bool = False
     block_size: int = 128
-    oversample: int = 10
+    oversample: int = 20
     refine: bool = True
     workers: int = 0
     blas_threads: int = 1
