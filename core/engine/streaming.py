@@ -255,9 +255,15 @@ class StreamingSVD:
         if np.max(np.abs(gram_b - np.eye(q))) <= 1e-6:
             return new_rows, sig, a_blk, b_blk, new_w
         lam_b, vec_b = np.linalg.eigh(gram_b)
-        root_b = np.sqrt(np.maximum(lam_b, 1e-12))
+        # a direction of the new basis that float32 rounding left (nearly) null carries no
+        # data: it is dropped rather than scaled up into a column that is not unit length
+        # (rank-deficient data, found by the property tests)
+        keep = lam_b > 1e-6 * max(float(lam_b.max()), 1e-300)
+        vec_b, root_b = vec_b[:, keep], np.sqrt(lam_b[keep])
         half = (vec_b * root_b) @ vec_b.T
         p_fix, sig, _ = np.linalg.svd(half * sig, full_matrices=False)
+        r = int(keep.sum())
+        p_fix, sig = p_fix[:, :r], sig[:r]
         fix = p_fix.T @ half
         new_rows = (((vec_b / root_b) @ vec_b.T) @ p_fix).T.astype(np.float32) @ new_rows
         return new_rows, sig, fix @ a_blk, fix @ b_blk, fix @ new_w
