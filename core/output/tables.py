@@ -3,6 +3,15 @@
 Every table has a header row and is written with the :mod:`csv` module (comma separated,
 UTF-8, ``\\r\\n`` line ends); floats are written in Python's shortest round-trip form and
 infinities as ``inf`` / ``-inf``.
+
+File names that are not valid UTF-8
+-----------------------------------
+On Linux and macOS a file name is a string of bytes; Python reads the bytes that are not valid
+UTF-8 as lone surrogate characters (U+DC80-U+DCFF, PEP 383), which no UTF-8 file can hold. Every
+text cell goes through :func:`escape_undecodable`: each such byte is written as ``\\xNN``
+(backslash, "x", two lower-case hex digits of the byte), any other lone surrogate (a Windows
+name holding half a UTF-16 pair) as ``\\uNNNN``; every other character is written as it is.
+So the CSV stays valid UTF-8, and a name that is valid UTF-8 is written unchanged.
 """
 
 from __future__ import annotations
@@ -10,6 +19,7 @@ from __future__ import annotations
 import csv
 import io
 import math
+import re
 from typing import Callable, Iterable, Sequence
 
 import numpy as np
@@ -19,14 +29,62 @@ from modescope.core.errors import ModescopeError
 from modescope.core.output.images import preview_image
 from modescope.core.output.metrics import psnr, relative_error
 
-__all__ = ["csv_bytes", "format_float", "spectrum_bytes", "weights_bytes", "quality_bytes"]
+__all__ = ["csv_bytes", "escape_undecodable", "format_float", "spectrum_bytes", "weights_bytes",
+           "quality_bytes"]
 
 _SPECTRUM_HEADER = ("index", "singular_value", "energy_share", "cumulative_share")
 _QUALITY_HEADER = ("path", "page", "relative_error", "psnr_db", "note")
+_SURROGATE = re.compile("[\ud800-\udfff]")
+
+
+def _escape_one(match: re.Match) -> str:
+    code = ord(match.group())
+    if 0xDC80 <= code <= 0xDCFF:                 # an undecodable byte (surrogateescape)
+        return f"\\x{code - 0xDC00:02x}"
+    return f"\\u{code:04x}"
+
+
+def escape_undecodable(text: str) -> str:
+    """Return ``text`` with the characters no UTF-8 file can hold written as escapes.
+
+    A byte of a file name that is not valid UTF-8 reaches Python as a lone surrogate
+    U+DC80-U+DCFF (``surrogateescape``, PEP 383); it is written as ``\\xNN`` with the byte's
+    two lower-case hex digits. Any other lone surrogate is written as ``\\uNNNN``. Every other
+    character is kept, so text that is valid Unicode comes back unchanged.
+
+    Parameters
+    ----------
+    text : str
+        A file name or any other text for a UTF-8 table.
+
+    Returns
+    -------
+    str
+        Text that encodes to UTF-8 without error.
+
+    Raises
+    ------
+    TypeError
+        If ``text`` is not a str.
+
+    Examples
+    --------
+    >>> escape_undecodable("frame_\\udce9t\u00e9.png")
+    'frame_\\\\xe9t\u00e9.png'
+    """
+    if not isinstance(text, str):
+        raise TypeError(f"text must be a str, got {type(text).__name__}")
+    return _SURROGATE.sub(_escape_one, text)
+
+
+def _cell(value):
+    return escape_undecodable(value) if isinstance(value, str) else value
 
 
 def csv_bytes(header: Sequence[str], rows: Iterable[Sequence]) -> bytes:
     """Return a CSV table (header row first) as UTF-8 bytes with ``\\r\\n`` line ends.
+
+    Text cells go through :func:`escape_undecodable` (file names that are not valid UTF-8).
 
     Parameters
     ----------
@@ -41,7 +99,7 @@ def csv_bytes(header: Sequence[str], rows: Iterable[Sequence]) -> bytes:
     writer = csv.writer(buf)
     writer.writerow(header)
     for row in rows:
-        writer.writerow(row)
+        writer.writerow([_cell(value) for value in row])
     return buf.getvalue().encode("utf-8")
 
 

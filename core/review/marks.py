@@ -25,6 +25,7 @@ import numpy as np
 
 from modescope.core.validation import check_choice, check_instance, check_int
 from modescope.core.output.atomic import atomic_writer
+from modescope.core.output.tables import escape_undecodable
 from modescope.core.decomposition import Decomposition
 from modescope.core.errors import NoUsableImagesError
 from modescope.core.review.outliers import OutlierTable
@@ -201,6 +202,8 @@ def write_csv(path, decomposition: Decomposition, table: OutlierTable, which: st
     The file is UTF-8 with a header row and the columns ``path, page, score, q, q_limit, t2,
     t2_limit, flag, mark`` (flag 1/0, mark 0/1/2, numbers written so they read back exactly),
     rows most unusual first.
+    Bytes of a file name that are not valid UTF-8 are written as ``\\xNN``
+    (:func:`~modescope.core.output.tables.escape_undecodable`).
 
     Parameters
     ----------
@@ -232,7 +235,7 @@ def write_csv(path, decomposition: Decomposition, table: OutlierTable, which: st
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
     for row in rows:
-        writer.writerow([row["path"], row["page"], _number(row["score"]), _number(row["q"]),
+        writer.writerow([escape_undecodable(row["path"]), row["page"], _number(row["score"]), _number(row["q"]),
                          _number(row["q_limit"]), _number(row["t2"]), _number(row["t2_limit"]),
                          int(row["flag"]), row["mark"]])
     return _atomic_write(path, buf.getvalue(), overwrite)
@@ -248,7 +251,8 @@ def write_path_list(path, decomposition: Decomposition, which: str = "excluded",
     Parameters
     ----------
     path : str or path-like
-        File to write (UTF-8, newline after every path).
+        File to write (UTF-8, newline after every path; bytes of a name that are not valid
+        UTF-8 written as ``\\xNN``, see :func:`~modescope.core.output.tables.escape_undecodable`).
     decomposition : Decomposition
         With ``paths``.
     which : {"excluded", "flagged", "all"}
@@ -282,7 +286,7 @@ def write_path_list(path, decomposition: Decomposition, which: str = "excluded",
     seen: dict[str, None] = {}
     for i in _selected(d, table, which):
         seen.setdefault(d.paths[int(i)], None)
-    text = "".join(f"{p}\n" for p in seen)
+    text = "".join(f"{escape_undecodable(p)}\n" for p in seen)
     return _atomic_write(path, text, overwrite)
 
 
