@@ -75,8 +75,9 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
     analyze : callable, optional
         Stand-in for ``pipeline.analyze`` (tests).
     confirm_dialogs : bool, default True
-        Show message boxes for errors; tests may turn them off (the title and text then go to
-        the status bar).
+        Show message boxes for errors and ask before unsaved review marks are thrown away;
+        tests may turn them off (the title and text of errors then go to the status bar, and
+        unsaved marks are discarded without a question).
     """
 
     def __init__(self, settings: Settings | None = None, *,
@@ -98,6 +99,7 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self._run_key = None        # (sources, options) of a run that scans for the pane
         self._bottom_split = False
         self._closing = False
+        self._previous = None       # (state snapshot, file, title) shown before the current run
 
         self.inspector = Inspector(self.state, self)
         self.setCentralWidget(self.inspector)
@@ -133,10 +135,12 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self.state.decompositionChanged.connect(self._update_export_action)
         self.state.decompositionChanged.connect(self._on_state_changed)
         self.state.rankChanged.connect(self._on_state_changed)
+        self.state.marksHistoryChanged.connect(self._update_undo_actions)
         # ((path, page) pairs not excluded, StoredOptions)
         self.views["outliersDock"].refitRequested.connect(self.refit_analysis)
         self.cancel_action.setEnabled(False)
         self._update_export_action()
+        self._update_undo_actions()
 
     def _show_error(self, title: str, text: str) -> None:
         if self._closing:
@@ -176,6 +180,10 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         return ok_run and ok_scan and ok_views
 
     def closeEvent(self, event: QCloseEvent) -> None:  # noqa: N802 - Qt name
+        """Ask about unsaved review marks (Cancel keeps the window open), then shut down."""
+        if not self._closing and not self.confirm_discard_marks("Quitting"):
+            event.ignore()
+            return
         self._closing = True
         if self.message_box is not None:
             self.message_box.close()

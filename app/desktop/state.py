@@ -8,8 +8,10 @@ signal does not start a loop.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Iterable
 
+import numpy as np
 from PySide6.QtCore import QObject, Signal
 
 from modescope.core.decomposition import Decomposition
@@ -28,6 +30,30 @@ def initial_rank(decomposition: Decomposition) -> int:
     except ValueError:
         return k
     return k if found is None else max(1, min(k, found))
+
+
+#: Most mark changes kept for undo (older ones are forgotten first).
+UNDO_LIMIT = 1000
+
+
+@dataclass(frozen=True)
+class _MarkStep:
+    """One change of review marks: the images, their marks before and their mark after."""
+
+    indices: np.ndarray     # (m,) int64, sorted
+    before: np.ndarray      # (m,) int8
+    after: int
+
+
+@dataclass(frozen=True)
+class ReviewSnapshot:
+    """What :meth:`AppState.snapshot` keeps: the analysis, its marks as last saved (or
+    opened) and the undo and redo steps, so that :meth:`AppState.restore` can put them back."""
+
+    decomposition: Decomposition | None
+    saved_marks: np.ndarray | None
+    undo: tuple
+    redo: tuple
 
 
 class AppState(QObject):
@@ -53,6 +79,14 @@ class AppState(QObject):
         was replaced; ``decompositionChanged`` is not emitted for this).
     levelChanged(float)
         The confidence level of the outlier control limits (default 0.99).
+    marksHistoryChanged()
+        Whether marks can be undone or redone, or whether they differ from the saved ones, may
+        have changed (see :attr:`can_undo`, :attr:`can_redo`, :attr:`marks_modified`).
+
+    Review marks have a history: every :meth:`set_marks` that changes something is one step
+    that :meth:`undo_marks` takes back and :meth:`redo_marks` makes again (a new analysis
+    starts a new history). :attr:`marks_modified` tells whether the marks differ from the
+    ones the analysis had when it was installed or last saved (:meth:`marks_saved`).
     """
 
     decompositionChanged = Signal(object)
@@ -63,6 +97,7 @@ class AppState(QObject):
     focusModeChanged = Signal(int)
     marksChanged = Signal(object)
     levelChanged = Signal(float)
+    marksHistoryChanged = Signal()
 
     def __init__(self, parent: QObject | None = None):
         super().__init__(parent)
@@ -74,6 +109,9 @@ class AppState(QObject):
         self._focus_mode = 0
         self._level = 0.99
         self._rank_chosen = False    # True once the user (a view) set the rank
+        self._saved_marks: np.ndarray | None = None
+        self._undo: list[_MarkStep] = []
+        self._redo: list[_MarkStep] = []
 
     # ----- getters ---------------------------------------------------------------------------
     @property
@@ -104,13 +142,43 @@ class AppState(QObject):
     def level(self) -> float:
         return self._level
 
+    @property
+    def marks_modified(self) -> bool:
+        """True when the review marks differ from the ones last saved (or opened)."""
+        d = self._decomposition
+        if d is None:
+            return False
+        saved = self._saved_marks
+        return saved is None or not np.array_equal(np.asarray(d.marks), saved)
+
+    @property
+    def can_undo(self) -> bool:
+        """True when a change of marks can be taken back."""
+        return bool(self._undo)
+
+    @property
+    def can_redo(self) -> bool:
+        """True when a change of marks that was taken back can be made again."""
+        return bool(self._redo)
+
     # ----- setters ---------------------------------------------------------------------------
     def set_decomposition(self, decomposition: Decomposition | None) -> None:
-        """Install a new analysis (partial or final) and clamp the other values to it."""
+        """Install a new analysis (partial or final) and clamp the other values to it.
+
+        Its marks count as saved and the undo history starts afresh.
+
+        Raises
+        ------
+        TypeError
+            If ``decomposition`` is neither a Decomposition nor None.
+        """
         if decomposition is not None and not isinstance(decomposition, Decomposition):
             raise TypeError(f"decomposition must be a Decomposition or None, "
                             f"got {type(decomposition).__name__}")
         self._decomposition = decomposition
+        self._saved_marks = (None if decomposition is None
+                             else np.array(decomposition.marks, dtype=np.int8))
+        self._undo, self._redo = [], []
         k = 0 if decomposition is None else decomposition.rank
         n = 0 if decomposition is None else decomposition.n_images
         self.decompositionChanged.emit(decomposition)
@@ -134,6 +202,7 @@ class AppState(QObject):
             self.set_selection_set(i for i in self._selection_set if i < n)
         if self._focus_mode >= k:
             self.set_focus_mode(0 if k else -1)
+        self.marksHistoryChanged.emit()
 
     def set_selected(self, index: int) -> None:
         """Select image ``index`` (-1 for none)."""
@@ -184,13 +253,79 @@ class AppState(QObject):
         idx = sorted({int(i) for i in indices})
         if any(i < 0 or i >= d.n_images for i in idx):
             raise ValueError(f"image indices must be in 0..{d.n_images - 1}")
-        marks = d.marks.copy()
-        changed = tuple(i for i in idx if marks[i] != mark)
-        if not changed:
+        changed = np.asarray([i for i in idx if d.marks[i] != mark], dtype=np.int64)
+        if not changed.size:
             return
-        marks[list(changed)] = mark
+        step = _MarkStep(changed, np.asarray(d.marks, dtype=np.int8)[changed].copy(), mark)
+        self._undo.append(step)
+        del self._undo[:-UNDO_LIMIT]
+        self._redo.clear()
+        self._apply(changed, np.full(changed.size, mark, dtype=np.int8))
+
+    def _apply(self, indices: np.ndarray, values: np.ndarray) -> None:
+        d = self._decomposition
+        marks = np.array(d.marks, dtype=np.int8)
+        marks[indices] = values
         self._decomposition = d.replace(marks=marks)
-        self.marksChanged.emit(changed)
+        self.marksChanged.emit(tuple(int(i) for i in indices))
+        self.marksHistoryChanged.emit()
+
+    def undo_marks(self) -> bool:
+        """Take back the last change of review marks.
+
+        Returns
+        -------
+        bool
+            False when there was nothing to undo.
+        """
+        if not self._undo or self._decomposition is None:
+            return False
+        step = self._undo.pop()
+        self._redo.append(step)
+        self._apply(step.indices, step.before)
+        return True
+
+    def redo_marks(self) -> bool:
+        """Make again the last change of review marks that was taken back.
+
+        Returns
+        -------
+        bool
+            False when there was nothing to redo.
+        """
+        if not self._redo or self._decomposition is None:
+            return False
+        step = self._redo.pop()
+        self._undo.append(step)
+        self._apply(step.indices, np.full(step.indices.size, step.after, dtype=np.int8))
+        return True
+
+    def marks_saved(self) -> None:
+        """Record that the current marks are in a file (:attr:`marks_modified` becomes False;
+        the undo history stays)."""
+        d = self._decomposition
+        self._saved_marks = None if d is None else np.array(d.marks, dtype=np.int8)
+        self.marksHistoryChanged.emit()
+
+    def snapshot(self) -> ReviewSnapshot:
+        """Return the analysis with its saved marks and its undo history (for :meth:`restore`)."""
+        saved = None if self._saved_marks is None else self._saved_marks.copy()
+        return ReviewSnapshot(self._decomposition, saved, tuple(self._undo), tuple(self._redo))
+
+    def restore(self, snapshot: ReviewSnapshot) -> None:
+        """Put back an analysis kept by :meth:`snapshot`, its saved marks and its history.
+
+        Raises
+        ------
+        TypeError
+            If ``snapshot`` is not a ReviewSnapshot.
+        """
+        if not isinstance(snapshot, ReviewSnapshot):
+            raise TypeError(f"snapshot must be a ReviewSnapshot, got {type(snapshot).__name__}")
+        self.set_decomposition(snapshot.decomposition)
+        self._saved_marks = snapshot.saved_marks
+        self._undo, self._redo = list(snapshot.undo), list(snapshot.redo)
+        self.marksHistoryChanged.emit()
 
     def set_level(self, level: float) -> None:
         """Set the confidence level of the outlier limits, 0.5 <= level < 1."""

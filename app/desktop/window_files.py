@@ -13,7 +13,7 @@ from typing import Sequence
 
 from PySide6.QtCore import Slot
 from PySide6.QtGui import QAction
-from PySide6.QtWidgets import QFileDialog
+from PySide6.QtWidgets import QFileDialog, QMessageBox
 
 from modescope.core.errors import ModescopeError
 from modescope.core.output import model_file
@@ -32,10 +32,12 @@ def sample_images_dir() -> Path:
 
 
 class FilesMixin:
-    """Open, save, recent analyses, drag and drop, export (a part of ``MainWindow``).
+    """Open, save, recent analyses, the question about unsaved marks, drag and drop, export
+    (a part of ``MainWindow``).
 
     Uses ``self.state``, ``self.settings``, ``self.ingest``, ``self.runner``, ``self.docks``,
-    ``self.recent_menu``, ``self.export_action``, ``self._show_error`` and
+    ``self.recent_menu``, ``self.export_action``, ``self._show_error``,
+    ``self._confirm_dialogs``, ``self._previous`` (dropped when a file is opened) and
     ``self.start_analysis``; keeps ``current_file`` (the analysis file shown, or None) and
     ``export_dialog`` (made on first use).
     """
@@ -78,9 +80,8 @@ class FilesMixin:
             self.open_analysis(path)
 
     def open_analysis(self, path: str) -> bool:
-        """Load a saved analysis and show it; False (with a message) when it cannot be read."""
-        if self.runner.is_running():
-            self.runner.abandon()
+        """Load a saved analysis and show it; False (with a message) when it cannot be read,
+        or when the question about unsaved review marks is cancelled."""
         try:
             decomposition = model_file.load_model(path)
         except (ModescopeError, OSError) as exc:
@@ -90,6 +91,11 @@ class FilesMixin:
                 self.settings.remove_recent_file(os.path.abspath(path))
                 self._rebuild_recent_menu()
             return False
+        if not self.confirm_discard_marks(f"Opening {os.path.basename(path)}"):
+            return False
+        if self.runner.is_running():
+            self.runner.abandon()
+        self._previous = None
         self.current_file = os.path.abspath(path)
         self.state.set_decomposition(decomposition)
         self.settings.add_recent_file(path)
@@ -98,23 +104,62 @@ class FilesMixin:
         self.statusBar().showMessage(f"Opened {path}", 5000)
         return True
 
+    # ----- unsaved marks -------------------------------------------------------------------------
+    def confirm_discard_marks(self, action: str) -> bool:
+        """Ask before ``action`` throws away review marks that are not saved.
+
+        A message box offers Save (the analysis is saved through :meth:`choose_save`), Discard
+        and Cancel. Nothing is asked when the marks are saved, or when the window was made with
+        ``confirm_dialogs=False`` (tests; the marks are then discarded).
+
+        Parameters
+        ----------
+        action : str
+            What is about to happen, as the start of a sentence ("Quitting", "A new analysis").
+
+        Returns
+        -------
+        bool
+            True when the action may go on (marks saved, nothing to lose, or Discard); False
+            for Cancel, or when saving was cancelled or failed.
+        """
+        if not self.state.marks_modified or not self._confirm_dialogs:
+            return True
+        buttons = QMessageBox.StandardButton
+        answer = QMessageBox.question(
+            self, "Unsaved review marks",
+            f"The review marks of this analysis are not saved. {action} throws them away."
+            "\n\nSave the analysis with its marks first?",
+            buttons.Save | buttons.Discard | buttons.Cancel, buttons.Save)
+        if answer == buttons.Save:
+            return self.choose_save() is not None
+        return answer == buttons.Discard
+
     # ----- saving ------------------------------------------------------------------------------
     @Slot()
-    def choose_save(self) -> None:
-        """Ask for a file name and save the current analysis."""
+    def choose_save(self) -> Path | None:
+        """Ask for a file name and save the current analysis.
+
+        Returns
+        -------
+        Path or None
+            The file written; None when cancelled or on failure (with a message).
+        """
         if self.state.decomposition is None:
             self._show_error("Nothing to save", "There is no analysis to save yet.")
-            return
+            return None
         start = self.current_file or os.path.join(self._dialog_dir(), "analysis.npz")
         path, _ = QFileDialog.getSaveFileName(self, "Save analysis", start, MODEL_FILE_FILTER)
-        if path:
-            if not path.lower().endswith(".npz"):
-                path += ".npz"
-            self.ingest.set_dialog_dir(os.path.dirname(path))
-            self.save_analysis(path)
+        if not path:
+            return None
+        if not path.lower().endswith(".npz"):
+            path += ".npz"
+        self.ingest.set_dialog_dir(os.path.dirname(path))
+        return self.save_analysis(path)
 
     def save_analysis(self, path: str) -> Path | None:
-        """Save the current analysis to ``path`` (atomic); None (with a message) on failure."""
+        """Save the current analysis, review marks included, to ``path`` (atomic); None (with
+        a message) on failure. After a save the marks no longer count as unsaved."""
         d = self.state.decomposition
         if d is None:
             self._show_error("Nothing to save", "There is no analysis to save yet.")
@@ -124,6 +169,8 @@ class FilesMixin:
         except (ModescopeError, OSError) as exc:
             self._show_error("Cannot save the analysis", f"{path}: {exc}")
             return None
+        if self.state.decomposition is d:
+            self.state.marks_saved()
         self.current_file = os.fspath(written)
         self.settings.add_recent_file(os.fspath(written))
         self._rebuild_recent_menu()

@@ -78,6 +78,10 @@ class MenusMixin:
         self.rank_down_action = action("Rank &down", self.rank_down, ["-", "Ctrl+Down"],
                                        "Use one basis image fewer in the reconstruction")
         self.about_action = action("&About Modescope", self.show_about)
+        self.undo_marks_action = action("&Undo mark", self.undo_marks, "Ctrl+Z",
+                                        "Take back the last change of review marks")
+        self.redo_marks_action = action("&Redo mark", self.redo_marks, "Ctrl+Shift+Z",
+                                        "Make again the last change of marks taken back")
 
     def _build_menus(self) -> None:
         bar = self.menuBar()
@@ -109,6 +113,8 @@ class MenusMixin:
 
         # marks, refit, lists, duplicates: the review work has its own menu
         self.review_menu = bar.addMenu("&Review")
+        self.review_menu.addAction(self.undo_marks_action)
+        self.review_menu.addAction(self.redo_marks_action)
         for name in ("outliersDock", "duplicatesDock"):
             if not self.review_menu.isEmpty():
                 self.review_menu.addSeparator()
@@ -122,6 +128,24 @@ class MenusMixin:
         help_menu = bar.addMenu("&Help")
         help_menu.addAction(self.about_action)
         self._rebuild_recent_menu()
+
+    # ----- undo and redo of marks ----------------------------------------------------------------
+    @Slot()
+    def undo_marks(self) -> None:
+        """Take back the last change of review marks."""
+        if self.state.undo_marks():
+            self.statusBar().showMessage("Mark change undone.", 3000)
+
+    @Slot()
+    def redo_marks(self) -> None:
+        """Make again the last change of review marks that was taken back."""
+        if self.state.redo_marks():
+            self.statusBar().showMessage("Mark change made again.", 3000)
+
+    @Slot()
+    def _update_undo_actions(self) -> None:
+        self.undo_marks_action.setEnabled(self.state.can_undo)
+        self.redo_marks_action.setEnabled(self.state.can_redo)
 
     # ----- keys --------------------------------------------------------------------------------
     def _step_image(self, step: int) -> None:

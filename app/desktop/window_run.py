@@ -33,7 +33,9 @@ class RunControlMixin:
     Uses ``self.state``, ``self.settings``, ``self.ingest``, ``self.inspector``, ``self.runner``,
     ``self.progress_bar``, ``self.progress_label``, ``self.start_action``,
     ``self.cancel_action`` and ``self._show_error``; keeps the start time of the run, whether
-    its learning stage has begun, and the (sources, options) of a run that scans for the pane.
+    its learning stage has begun, the (sources, options) of a run that scans for the pane,
+    and ``_previous``: what was shown before the run (the state's snapshot, the file and the
+    window title), shown again when the run fails or stops before its first image.
     """
 
     @Slot()
@@ -48,12 +50,15 @@ class RunControlMixin:
         Returns
         -------
         bool
-            False (with a message) when the options are not valid.
+            False (with a message) when the options are not valid, or when the question about
+            unsaved review marks is cancelled.
         """
         sources = [os.fspath(s) for s in sources]
         analysis_options = self._checked_options(bool(sources), options,
                                                  "Add a folder or image files first.")
         if analysis_options is None:
+            return False
+        if not self.confirm_discard_marks("A new analysis"):
             return False
         if [os.path.abspath(s) for s in sources] != self.ingest.sources():
             self.ingest.set_sources(sources)
@@ -81,12 +86,14 @@ class RunControlMixin:
         -------
         bool
             False (with a message) when there is nothing to analyse or the options are not
-            valid.
+            valid, or when the question about unsaved review marks is cancelled.
         """
         pairs = [(os.fspath(p), int(g)) for p, g in images]
         analysis_options = self._checked_options(bool(pairs), options,
                                                  "Every image is marked excluded.")
         if analysis_options is None:
+            return False
+        if not self.confirm_discard_marks("The refit"):
             return False
         files = list(dict.fromkeys(p for p, _ in pairs))
         self.ingest.stop_scan()
@@ -108,6 +115,9 @@ class RunControlMixin:
 
     def _begin_run(self, sources, analysis_options, title: str, run_key=None,
                    only=None) -> None:
+        if not self.runner.is_running() or self._previous is None:
+            # what is shown now comes back if the run fails or stops before any image
+            self._previous = (self.state.snapshot(), self.current_file, self.windowTitle())
         self.current_file = None
         self.state.set_decomposition(None)
         self._run_started = time.monotonic()
@@ -167,8 +177,17 @@ class RunControlMixin:
     def _on_partial(self, decomposition) -> None:
         self.state.set_decomposition(decomposition)
 
+    def _restore_previous(self) -> None:
+        """Show again the analysis (its marks, history, file and title) shown before the run."""
+        previous, self._previous = self._previous, None
+        if previous is not None:
+            snapshot, self.current_file, title = previous
+            self.state.restore(snapshot)
+            self.setWindowTitle(title)
+
     @Slot(object)
     def _on_finished(self, result) -> None:
+        self._previous = None
         key = self._run_key
         if key is not None and self.ingest.scanned_for(*key) is None:
             self.ingest.adopt(result.source_set, *key)
@@ -194,11 +213,13 @@ class RunControlMixin:
         if result is not None:
             self.ingest.set_problems(result.problems)
         if d is not None:
+            self._previous = None
             self.state.set_decomposition(d)
             self.statusBar().showMessage(
                 f"Analysis cancelled: the partial result from {counted(d.n_images, 'image')} "
                 "is kept (it can be saved).", 10000)
         else:
+            self._restore_previous()
             self.statusBar().showMessage("Analysis cancelled before any image was analysed.",
                                          10000)
 
@@ -207,5 +228,6 @@ class RunControlMixin:
         key = self._run_key
         if key is not None and self.ingest.scanned_for(*key) is None:
             self.ingest.run_scan_ended(f"Not analysed: {message}")
+        self._restore_previous()
         self.statusBar().showMessage("The analysis failed.", 10000)
         self._show_error("The analysis failed", message)
