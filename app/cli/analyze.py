@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import argparse
+import shlex
 import sys
 import time
 from pathlib import Path
@@ -10,13 +11,14 @@ from pathlib import Path
 from modescope.app.cli.common import (EXIT_INTERRUPTED, EXIT_OK, EXIT_UNUSABLE, EXIT_USAGE,
                                       InterruptFlag, ProgressLine, add_accuracy_options, cores, failed,
                                       positive_int, print_problems)
+from modescope.app.cli.writing import check_output, model_name
 from modescope.core.review.accuracy import describe_accuracy
 from modescope.app.words import counted
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import save_model
 from modescope.core.engine.pipeline import AnalysisOptions, analyze
 
-__all__ = ["register", "run"]
+__all__ = ["register", "resume_command", "run"]
 
 
 def register(subparsers) -> None:
@@ -26,6 +28,8 @@ def register(subparsers) -> None:
                                               "write the model file.")
     a.add_argument("sources", nargs="+", metavar="SOURCE", help="folders or image files")
     a.add_argument("-o", "--output", required=True, metavar="MODEL.npz", help="model file to write")
+    a.add_argument("--overwrite", action="store_true",
+                   help="replace the model file if it exists (a source image is never replaced)")
     a.add_argument("--rank", type=positive_int, default=20, metavar="K",
                    help="number of basis images (default 20)")
     a.add_argument("--color", choices=("gray", "rgb"), default="gray",
@@ -66,6 +70,9 @@ def run(args: argparse.Namespace) -> int:
         print(f"modescope analyze: {output}: is a folder; give a file name such as "
               f"{output / 'model.npz'}", file=sys.stderr)
         return EXIT_USAGE
+    output = model_name(output)
+    if not check_output("analyze", "-o", output, overwrite=args.overwrite, sources=args.sources):
+        return EXIT_UNUSABLE
     start = time.perf_counter()
     progress = None if args.quiet else ProgressLine(sys.stderr)
     stop = InterruptFlag("modescope analyze: stopping after the current block; the images "
@@ -82,8 +89,12 @@ def run(args: argparse.Namespace) -> int:
         print("modescope analyze: interrupted before any image was analysed; nothing written",
               file=sys.stderr)
         return EXIT_INTERRUPTED
+    if not check_output("analyze", "-o", output, overwrite=args.overwrite,
+                        sources=[*args.sources, *d.paths]):
+        print("modescope analyze: the model was not written", file=sys.stderr)
+        return EXIT_UNUSABLE
     try:
-        written = save_model(output, d)
+        written = save_model(output, d, overwrite=args.overwrite)
     except ModescopeError as exc:
         print(f"modescope analyze: {exc}", file=sys.stderr)
         return EXIT_UNUSABLE
@@ -96,10 +107,10 @@ def run(args: argparse.Namespace) -> int:
         print_problems(result.problems)
         return EXIT_INTERRUPTED
     if result.cancelled:
-        print(f"modescope analyze: interrupted; wrote the streaming result of the first "
-              f"{counted(d.n_images, 'image')} to {written} (not exact: run `modescope update "
-              f"{written} SOURCE...` to add the rest and get the exact scoring pass)",
-              file=sys.stderr)
+        print(f"modescope analyze: interrupted; wrote the streaming result of "
+              f"{counted(d.n_images, 'image')} to {written} (not final: run\n  "
+              f"{resume_command(args, written)}\nto add the images not analysed yet and run the "
+              f"refinement passes)", file=sys.stderr)
         print_problems(result.problems)
         return EXIT_INTERRUPTED
     elapsed = time.perf_counter() - start
@@ -116,3 +127,35 @@ def run(args: argparse.Namespace) -> int:
     print(f"wrote {written}", file=sys.stderr)
     print_problems(result.problems)
     return EXIT_OK
+
+
+def resume_command(args: argparse.Namespace, written) -> str:
+    """Return the ``modescope update`` command that completes an interrupted analysis.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The arguments of the interrupted ``analyze``.
+    written : str or os.PathLike
+        The partial model file.
+
+    Returns
+    -------
+    str
+        A command line, quoted for a POSIX shell, that works when typed as printed.
+    """
+    from modescope.core.engine.options import AnalysisOptions
+    defaults = AnalysisOptions()
+    def word(path) -> str:        # a name starting with "-" would be read as an option
+        text = str(path)
+        return f"./{text}" if text.startswith("-") else text
+    words = ["modescope", "update", word(written), *map(word, args.sources), "-o",
+             word(written), "--overwrite"]
+    if args.recursive:
+        words.append("--recursive")
+    for option, value, default in (("--oversample", args.oversample, defaults.oversample),
+                                   ("--tolerance", args.tolerance, defaults.tolerance),
+                                   ("--max-passes", args.max_passes, defaults.max_passes)):
+        if value != default:
+            words += [option, repr(value) if isinstance(value, float) else str(value)]
+    return " ".join(shlex.quote(w) for w in words)

@@ -3,8 +3,9 @@
 ``modescope demo OUT_DIR [--frames N] [--size ROWSxCOLS] [--seed S] [--format jpg|png]
 [--quality Q] [--workers W] [--overwrite]``
 
-Exit codes: 0 when every frame was written, 1 when writing failed (disk full, no permission,
-interrupted), 2 for invalid arguments (including a non-empty OUT_DIR without ``--overwrite``).
+Exit codes: 0 when every frame was written, 1 when writing failed (disk full, no permission),
+2 for invalid arguments (including a non-empty OUT_DIR without ``--overwrite``), 130 when
+interrupted.
 """
 
 from __future__ import annotations
@@ -15,7 +16,7 @@ import sys
 
 from modescope.core import demo
 from modescope.core.output.atomic import DestinationError
-from modescope.app.cli.common import CountProgress, run_subcommand
+from modescope.app.cli.common import EXIT_INTERRUPTED, CountProgress, run_subcommand
 
 __all__ = ["register", "run", "main"]
 
@@ -84,7 +85,7 @@ def run(args: argparse.Namespace) -> int:
     Returns
     -------
     int
-        0 on success, 1 when writing failed, 2 for invalid arguments.
+        0 on success, 1 when writing failed, 2 for invalid arguments, 130 when interrupted.
     """
     progress = CountProgress(sys.stderr, "demo", "frames")
     try:
@@ -108,7 +109,7 @@ def run(args: argparse.Namespace) -> int:
     except KeyboardInterrupt:
         print("\nmodescope demo: interrupted; the frames written so far are complete files",
               file=sys.stderr)
-        return 1
+        return EXIT_INTERRUPTED
     rows, cols = args.size
     print(f"wrote {len(paths)} frames of {rows}x{cols} to {args.out_dir}")
     problems = demo.planted_problems(args.frames)

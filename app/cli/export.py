@@ -9,9 +9,11 @@ text file holding one source path per line (blank lines and lines starting with 
 skipped; every page of a multi-page file is taken).
 
 Progress goes to stderr, the summary to stdout. Exit codes: 0 done (notes such as missing
-sources are printed), 1 the model cannot be read, the destination is refused or fails (existing
-files, source folder, read-only, disk full) or the export was interrupted (Ctrl-C stops after
-the current file; completed files are kept), 2 invalid arguments.
+sources are printed), 1 the model cannot be read or the destination is refused or fails
+(existing files, source folder, read-only, disk full), 2 invalid arguments, 130 interrupted
+(Ctrl-C or SIGTERM stops after the current file; completed files are kept). A source image of
+the model and the model file itself are never replaced, whatever ``--overwrite`` and
+``--allow-source-folder`` say.
 """
 
 from __future__ import annotations
@@ -22,7 +24,8 @@ import re
 import sys
 from pathlib import Path
 
-from modescope.app.cli.common import CountProgress, InterruptFlag, run_subcommand
+from modescope.app.cli.common import (EXIT_INTERRUPTED, CountProgress, InterruptFlag,
+                                      run_subcommand)
 from modescope.core.errors import ModescopeError
 
 __all__ = ["register", "run", "main", "parse_image_list"]
@@ -77,9 +80,11 @@ def register(subparsers) -> argparse.ArgumentParser:
                    help="store the compact model's mean, basis and weights as float16")
     p.add_argument("--sheet-count", type=int, default=16, metavar="N",
                    help="basis images on the contact sheet (default 16)")
-    p.add_argument("--overwrite", action="store_true", help="replace existing files")
+    p.add_argument("--overwrite", action="store_true",
+                   help="replace existing files (never a source image or the model file)")
     p.add_argument("--allow-source-folder", action="store_true",
-                   help="allow writing into a folder that holds source images")
+                   help="allow writing into a folder that holds source images (they are never "
+                        "replaced)")
     p.add_argument("--quiet", action="store_true", help="no progress display")
     p.set_defaults(func=run)
     return p
@@ -163,10 +168,10 @@ def run(args: argparse.Namespace) -> int:
     Returns
     -------
     int
-        0 done, 1 unreadable model / refused or failing destination / interrupted, 2 invalid
-        arguments.
+        0 done, 1 unreadable model / refused or failing destination, 2 invalid arguments,
+        130 interrupted.
     """
-    from modescope.core.output.atomic import DestinationError
+    from modescope.core.output.atomic import DestinationError, refuse_sources
     from modescope.core.output.export import ExportOptions, plan_export, run_export
     from modescope.core.output.model_file import load_model
 
@@ -198,8 +203,9 @@ def run(args: argparse.Namespace) -> int:
             float16=args.float16, sheet_count=args.sheet_count, overwrite=args.overwrite,
             allow_source_folder=args.allow_source_folder)
         plan = plan_export(d, out, options)
+        refuse_sources(plan.files, [args.model], what="the model file this command reads")
     except ModescopeError as exc:       # DestinationError included
-        print(f"modescope export: {exc}", file=err)
+        print(f"modescope export: {_cli_words(str(exc))}", file=err)
         return EXIT_FAILED
     except (TypeError, ValueError) as exc:
         print(f"modescope export: {exc}", file=err)
@@ -210,14 +216,20 @@ def run(args: argparse.Namespace) -> int:
                            "now)") as interrupted:
             report = run_export(plan, progress=progress, cancel=interrupted)
     except DestinationError as exc:
-        print(f"modescope export: {exc}", file=err)
+        print(f"modescope export: {_cli_words(str(exc))}", file=err)
         return EXIT_FAILED
     except KeyboardInterrupt:
         print("\nmodescope export: interrupted; the files written so far are complete",
               file=err)
-        return EXIT_FAILED
+        return EXIT_INTERRUPTED
     print(report.summary())
-    return EXIT_FAILED if report.cancelled else EXIT_OK
+    return EXIT_INTERRUPTED if report.cancelled else EXIT_OK
+
+
+def _cli_words(message: str) -> str:
+    """Name the command-line options in a core message instead of the Python parameters."""
+    return (message.replace("(allow_source_folder=True)", "(--allow-source-folder)")
+            .replace("allow overwriting", "pass --overwrite to replace them"))
 
 
 def main(argv=None) -> int:

@@ -6,24 +6,43 @@ display.
 
 Exit codes: 0 done (perhaps with skipped files), 1 nothing usable or an input error, 2 usage,
 130 interrupted.
+
+Interruptions: this module imports only the standard library at its top, so a Ctrl-C at any
+moment of the start-up (numpy, Pillow and the verbs are imported inside :func:`main`) ends with
+exit code 130 and one line, never a traceback. When run as the program (``argv`` None), SIGTERM
+is handled like Ctrl-C, and once the verb has returned a further Ctrl-C or SIGTERM ends the
+process at once with 130 (nothing is left to keep).
 """
 
 from __future__ import annotations
 
-import argparse
 import os
+import signal
 import sys
 
-from modescope.app.cli import (analyze, demo, duplicates, export, info, outliers,  # noqa: F401
-                               update)
-from modescope.app.cli.common import EXIT_UNUSABLE, EXIT_USAGE, Parser
+__all__ = ["VERBS", "VERB_NAMES", "build_parser", "main"]
 
-__all__ = ["VERBS", "build_parser", "main"]
+EXIT_UNUSABLE, EXIT_USAGE, EXIT_INTERRUPTED = 1, 2, 130   # as in common.py (not imported here)
 
-#: Verb name -> module with ``register(subparsers)``; imported above, so a broken verb module
-#: fails at start-up (and in the tests) instead of silently leaving its verb out.
-VERBS = {"analyze": analyze, "update": update, "info": info, "outliers": outliers,
-         "duplicates": duplicates, "export": export, "demo": demo}
+#: The verbs, in the order ``--help`` lists them; each is the module ``modescope.app.cli.<verb>``.
+VERB_NAMES = ("analyze", "update", "info", "outliers", "duplicates", "export", "demo")
+
+
+def _load_verbs() -> dict:
+    """Import every verb module explicitly (a broken one fails at start-up, never vanishes)."""
+    from modescope.app.cli import analyze, demo, duplicates, export, info, outliers, update
+    return {"analyze": analyze, "update": update, "info": info, "outliers": outliers,
+            "duplicates": duplicates, "export": export, "demo": demo}
+
+
+def __getattr__(name: str):
+    # VERBS (verb name -> module with ``register(subparsers)``) is made on first use, so that
+    # importing this module stays cheap and a Ctrl-C during the heavy imports is caught by main
+    if name == "VERBS":
+        verbs = _load_verbs()
+        globals()["VERBS"] = verbs
+        return verbs
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 
 def _version() -> str:
@@ -31,24 +50,79 @@ def _version() -> str:
     return version()
 
 
-def build_parser() -> argparse.ArgumentParser:
+def build_parser():
     """Return the argument parser with every verb registered."""
+    from modescope.app.cli.common import Parser
+    verbs = globals().get("VERBS") or __getattr__("VERBS")
     parser = Parser(prog="modescope",
                     description="Explore what a collection of aligned images is made of. "
                                 "With no command (or with folders, image files or a model "
                                 "file and no command) the desktop program opens.")
     parser.add_argument("--version", action="version", version=f"modescope {_version()}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=Parser)
-    for module in VERBS.values():
+    for module in verbs.values():
         module.register(sub)
     return parser
 
 
+def _sigterm_like_ctrl_c(signum, frame) -> None:
+    """Handle SIGTERM as the SIGINT handler in force handles Ctrl-C."""
+    handler = signal.getsignal(signal.SIGINT)
+    if callable(handler):
+        handler(signal.SIGINT, frame)
+    else:                          # SIGINT ignored or left to the system: stop here
+        raise KeyboardInterrupt
+
+
+def _exit_at_once(signum, frame) -> None:  # pragma: no cover - runs in a subprocess only
+    os._exit(EXIT_INTERRUPTED)
+
+
+def _set_handlers(term, interrupt=None) -> None:
+    try:
+        signal.signal(signal.SIGTERM, term)
+        if interrupt is not None:
+            signal.signal(signal.SIGINT, interrupt)
+    except (ValueError, OSError):  # pragma: no cover - not the main thread
+        pass
+
+
 def main(argv: list[str] | None = None) -> int:
-    """Run the command line; with no verb, open the desktop program."""
+    """Run the command line; with no verb, open the desktop program.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        Arguments after the program name; ``sys.argv[1:]`` (and the program's signal
+        handling, see the module notes) when None.
+
+    Returns
+    -------
+    int
+        The exit code (0 done, 1 nothing usable, 2 usage, 130 interrupted).
+    """
+    program = argv is None
     argv = list(sys.argv[1:] if argv is None else argv)
-    if not argv or (argv[0] not in VERBS and not argv[0].startswith("-")):
+    if not argv or (argv[0] not in VERB_NAMES and not argv[0].startswith("-")):
         return _run_desktop(argv)
+    verb = argv[0] if argv[0] in VERB_NAMES else ""
+    if program:
+        _set_handlers(_sigterm_like_ctrl_c)
+    try:
+        return _run_verb(argv)
+    except KeyboardInterrupt:
+        name = f"modescope {verb}" if verb else "modescope"
+        try:
+            print(f"\n{name}: interrupted", file=sys.stderr, flush=True)
+        except (OSError, ValueError):  # pragma: no cover - stderr closed
+            pass
+        return EXIT_INTERRUPTED
+    finally:
+        if program:   # the work is over: a late Ctrl-C only ends the process, quietly
+            _set_handlers(_exit_at_once, _exit_at_once)
+
+
+def _run_verb(argv: list[str]) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     if not getattr(args, "func", None):
@@ -71,7 +145,7 @@ def _run_desktop(paths: list[str]) -> int:
     missing = [p for p in paths if not os.path.exists(p)]
     if missing:
         print(f"modescope: {missing[0]}: no such file or folder (commands: "
-              f"{', '.join(VERBS)})", file=sys.stderr)
+              f"{', '.join(VERB_NAMES)})", file=sys.stderr)
         return EXIT_USAGE
     try:
         from modescope.app.desktop.launch import run_gui

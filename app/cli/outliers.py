@@ -1,7 +1,8 @@
 """``modescope outliers MODEL.npz``: rank the images of a model by how unusual they are.
 
-Exit codes: 0 success, 1 unreadable or inconsistent input (the message goes to stderr),
-2 wrong usage.
+Exit codes: 0 success, 1 unreadable or inconsistent input or a refused ``--csv`` file (the
+message goes to stderr), 2 wrong usage, 130 interrupted. The CSV file is never a source image
+or the model file, whatever ``--overwrite`` says.
 """
 
 from __future__ import annotations
@@ -10,6 +11,7 @@ import argparse
 import os
 
 from modescope.app.cli.common import check_rank, error, fmt, label, level, non_negative_int
+from modescope.app.cli.writing import check_output
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import load_model
 from modescope.core.review.marks import table_rows, write_csv
@@ -38,7 +40,8 @@ def register(subparsers) -> None:
     p.add_argument("--csv", default=None, metavar="FILE",
                    help="also write every image's scores to this CSV file")
     p.add_argument("--overwrite", action="store_true",
-                   help="replace the CSV file if it exists")
+                   help="replace the CSV file if it exists (a source image or the model file "
+                        "is never replaced)")
     p.set_defaults(func=run)
 
 
@@ -56,6 +59,9 @@ def run(args: argparse.Namespace) -> int:
         rows = table_rows(decomposition, table, "all")
         csv_path = None
         if args.csv is not None:
+            if not check_output("outliers", "--csv", args.csv, overwrite=bool(args.overwrite),
+                                sources=decomposition.paths, inputs=[args.model]):
+                return 1
             csv_path = write_csv(args.csv, decomposition, table, "all",
                                  overwrite=bool(args.overwrite))
     except (ModescopeError, ValueError, OSError) as exc:

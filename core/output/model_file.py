@@ -106,7 +106,7 @@ def save_model(path, decomposition: Decomposition, *, overwrite: bool = True,
     }
     folder = path.parent if str(path.parent) else Path(".")
     try:
-        with atomic_writer(path, "wb", overwrite, fsync=True) as fh:
+        with atomic_writer(path, "wb", overwrite, fsync=True, protect=d.paths) as fh:
             np.savez(fh, **arrays)
     except DestinationError as exc:
         raise ModelFileError(f"{path}: cannot write into {folder} ({exc})") from exc

@@ -15,7 +15,7 @@ from typing import Callable
 import numpy as np
 
 from modescope.core.decomposition import Decomposition
-from modescope.core.output.atomic import DestinationError
+from modescope.core.output.atomic import DestinationError, refuse_sources
 from modescope.core.output.images import source_size
 from modescope.core.output.naming import preview_names
 from modescope.core.output.options import ExportOptions
@@ -228,13 +228,17 @@ def plan_items(d: Decomposition, folder: Path, options: ExportOptions,
 
 
 def check_targets(plan: ExportPlan) -> None:
-    """Refuse a plan whose files exist (without overwrite) or are folders.
+    """Refuse a plan whose files are source images, exist (without overwrite) or are folders.
+
+    A planned file that is a source image of the analysis (same name, or the same file reached
+    through a link) is refused whatever ``overwrite`` and ``allow_source_folder`` say.
 
     Raises
     ------
     DestinationError
         Naming the files taken; nothing is written.
     """
+    refuse_sources(plan.files, plan.decomposition.paths)
     if plan.overwrite:
         taken = [p for p in plan.files if p.is_dir()]
         if taken:

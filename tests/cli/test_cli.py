@@ -1,5 +1,7 @@
 """Command line: analyze and info, exit codes and messages."""
 
+import shlex
+
 import numpy as np
 import pytest
 from PIL import Image
@@ -32,7 +34,10 @@ def test_analyze_writes_model_and_reports_problems(folder, tmp_path, capsys):
     assert "analysed 30 images of 10x12 (gray)" in err
     # with --resize-mismatched the odd one is included
     assert main(["analyze", str(folder), "-o", str(out), "--rank", "4", "--quiet",
-                 "--resize-mismatched"]) == 0
+                 "--resize-mismatched"]) == 1          # the model exists: --overwrite needed
+    assert "pass --overwrite to replace it" in capsys.readouterr().err
+    assert main(["analyze", str(folder), "-o", str(out), "--rank", "4", "--quiet",
+                 "--resize-mismatched", "--overwrite"]) == 0
     assert load_model(out).n_images == 31
 
 
@@ -150,14 +155,19 @@ def test_ctrl_c_writes_the_partial_analysis_and_update_completes_it(folder, tmp_
     err = capsys.readouterr().err
     assert code == 130
     assert "stopping after the current block" in err
-    assert "wrote the streaming result of the first 10 images" in err
+    assert "wrote the streaming result of 10 images" in err
+    hint = next(line.strip() for line in err.splitlines()
+                if line.strip().startswith("modescope update"))
     partial = load_model(out)
     assert partial.n_images == 10 and not partial.exact
     assert partial.metadata["stage"] == "cancelled"
     assert signal.getsignal(signal.SIGINT) is signal.default_int_handler   # handler restored
     monkeypatch.undo()
-    # resuming: update adds the 20 images not yet in the model and runs the exact pass
-    assert main(["update", str(out), str(folder), "-o", str(out), "--quiet"]) == 0
+    # resuming, typed as printed: update adds the 20 images not yet in the model and runs the
+    # exact pass
+    words = shlex.split(hint)
+    assert words[:2] == ["modescope", "update"]
+    assert main(words[1:]) == 0
     full = load_model(out)
     assert full.n_images == 30 and full.exact
 

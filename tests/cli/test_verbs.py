@@ -48,7 +48,8 @@ def test_a_verb_module_that_cannot_import_stops_the_command():
             "        raise ImportError('demo verb broken')\n"
             "    return real(name, *a, **k)\n"
             "builtins.__import__ = fake\n"
-            "import modescope.app.cli.main\n")
+            "from modescope.app.cli.main import main\n"
+            "sys.exit(main(['info', '--help']))\n")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     assert done.returncode != 0
     assert "demo verb broken" in done.stderr

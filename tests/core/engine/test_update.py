@@ -71,6 +71,7 @@ def test_update_command(two_folders, tmp_path, capsys):
     first, second, _ = two_folders
     model = tmp_path / "m.npz"
     assert main(["analyze", str(first), "-o", str(model), "--rank", "5", "--quiet"]) == 0
-    assert main(["update", str(model), str(second), "-o", str(model), "--quiet"]) == 0
+    assert main(["update", str(model), str(second), "-o", str(model), "--quiet",
+                 "--overwrite"]) == 0
     assert load_model(model).n_images == 100
     assert "added 40 images to 60" in capsys.readouterr().err
