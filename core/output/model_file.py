@@ -27,15 +27,17 @@ that has none (files written before the certificate existed have no ``singular_v
 from __future__ import annotations
 
 import json
-import zipfile
 from pathlib import Path
 
 import numpy as np
 
 from modescope.core.decomposition import Decomposition
 from modescope.core.errors import ModelFileError
+from modescope.core.output import model_zip
 from modescope.core.output.atomic import DestinationError, atomic_writer
-from modescope.core.validation import check_instance
+from modescope.core.output.model_metadata import check_metadata
+from modescope.core.output.model_zip import describe, unusable
+from modescope.core.validation import check_instance, check_path
 
 __all__ = ["save_model", "load_model", "FORMAT_NAME", "FORMAT_VERSION"]
 
@@ -43,6 +45,7 @@ FORMAT_NAME = "modescope-model"
 FORMAT_VERSION = 1
 _REQUIRED = ("mean", "basis", "singular_values", "weights", "total_energy", "image_shape",
              "paths", "metadata")
+_OPTIONAL = ("residual", "singular_value_error", "pages", "marks", "exact")
 _FLOATS = (np.float16, np.float32, np.float64)
 
 
@@ -113,16 +116,18 @@ def save_model(path, decomposition: Decomposition, *, overwrite: bool = True,
     return path
 
 
-def _bad(path, what: str) -> ModelFileError:
-    return ModelFileError(f"{path}: not a usable Modescope model file: {what}")
-
-
 def load_model(path) -> Decomposition:
-    """Read an analysis written by :func:`save_model`, checking every entry.
+    """Read an analysis written by :func:`save_model`, checking every entry before using it.
+
+    The file is checked before anything is allocated (see :mod:`modescope.core.output.model_zip`):
+    it must be a regular file (a pipe is never opened), every array header must declare
+    exactly the bytes its member holds, the entries must fit together and the whole must fit in
+    memory; the data is then read without pickle, and every entry and metadata field is checked
+    (see :mod:`modescope.core.output.model_metadata`).
 
     Parameters
     ----------
-    path : str or path
+    path : str or os.PathLike
 
     Returns
     -------
@@ -131,92 +136,136 @@ def load_model(path) -> Decomposition:
 
     Raises
     ------
+    TypeError
+        If ``path`` is not a str or os.PathLike path.
     ModelFileError
-        If the file is missing, not a zip/npz, holds pickled objects, misses an entry, or holds
-        entries of the wrong shape, type or with non-finite values. The message names the file
-        and the entry.
+        If the file is missing, not a regular file, not a zip/npz, holds pickled objects,
+        declares arrays larger than it holds or than memory allows, misses an entry, holds
+        entries of the wrong shape, type or with non-finite values, or metadata fields of the
+        wrong type. The message names the file and the entry or field.
     """
-    path = Path(path)
-    if not path.exists():
-        raise ModelFileError(f"{path}: no such file")
-    if path.is_dir():
-        raise ModelFileError(f"{path}: is a folder, not a model file")
+    path = check_path("path", path)
+    file_size = model_zip.stat_regular(path)
     try:
-        with open(path, "rb") as fh, np.load(fh, allow_pickle=False) as npz:
-            names = set(npz.files)
-            missing = [n for n in _REQUIRED if n not in names]
+        with model_zip.open_zip(path) as zf:
+            entries = model_zip.read_headers(path, zf, _REQUIRED + _OPTIONAL)
+            missing = [n for n in _REQUIRED if n not in entries]
             if missing:
-                raise _bad(path, f"missing entries {', '.join(missing)}")
-            data = {}
-            for name in names:
-                try:
-                    data[name] = npz[name]
-                    if not isinstance(data[name], np.ndarray):
-                        raise _bad(path, f"entry {name!r} is not a numpy array")
-                except ValueError as exc:
-                    raise _bad(path, f"entry {name!r} cannot be read without pickle "
-                                     f"({exc})") from None
+                raise unusable(path, f"missing entries {', '.join(missing)}")
+            model_zip.check_totals(path, entries, file_size)
+            _check_shapes(path, entries)
+            data = model_zip.read_arrays(path, zf, entries)
+        return _decomposition(path, data)
     except ModelFileError:
         raise
-    except (zipfile.BadZipFile, OSError, EOFError, ValueError) as exc:
-        raise _bad(path, f"damaged or not an .npz file ({exc})") from None
+    except MemoryError:
+        raise unusable(path, "not enough memory to read it") from None
+    except Exception as exc:  # noqa: BLE001 - one clear message for any damage not foreseen
+        raise unusable(path, f"damaged ({type(exc).__name__}: {describe(exc)})") from None
 
-    def floats(name, ndim):
-        a = data[name]
-        if a.dtype not in _FLOATS:
-            raise _bad(path, f"entry {name!r} must hold floats, found {a.dtype}")
-        if a.ndim != ndim:
-            raise _bad(path, f"entry {name!r} must have {ndim} dimensions, found shape {a.shape}")
-        if not np.all(np.isfinite(a)):
-            raise _bad(path, f"entry {name!r} holds NaN or infinite values")
-        return a.astype(np.float32) if a.dtype == np.float16 else a
 
+def _check_shapes(path, entries: dict) -> None:
+    """Refuse entries whose declared shapes do not fit each other (headers only, no data)."""
+    for name, ndim in (("mean", 1), ("basis", 2), ("singular_values", 1), ("weights", 2)):
+        shape = entries[name].shape
+        if len(shape) != ndim:
+            raise unusable(path, f"entry {name!r} must have {ndim} dimension"
+                                 f"{'s' if ndim > 1 else ''}, found shape {shape}")
+    p, k = entries["mean"].shape[0], entries["singular_values"].shape[0]
+    n = entries["weights"].shape[1]
+    expected = {"basis": [(p, k)], "weights": [(k, n)], "paths": [(n,), (0,)],
+                "pages": [(n,)], "marks": [(n,)], "residual": [(n,), (0,)],
+                "singular_value_error": [(k,), (0,)], "image_shape": [(3,)],
+                "total_energy": [()], "exact": [()], "metadata": [()]}
+    for name, shapes in expected.items():
+        if name in entries and entries[name].shape not in shapes:
+            raise unusable(path, f"entries do not fit together ({name} must have shape "
+                                 f"{' or '.join(str(s) for s in shapes)}, found "
+                                 f"{entries[name].shape})")
+
+
+def _floats(path, data: dict, name: str) -> np.ndarray:
+    a = data[name]
+    if a.dtype not in _FLOATS:
+        raise unusable(path, f"entry {name!r} must hold floats, found {a.dtype}")
+    if not np.all(np.isfinite(a)):
+        raise unusable(path, f"entry {name!r} holds NaN or infinite values")
+    return a.astype(np.float32) if a.dtype == np.float16 else a
+
+
+def _metadata(path, data: dict, channels: int) -> dict:
+    """Return the metadata entry parsed and checked field by field."""
+    text = data["metadata"]
+    if text.dtype.kind != "U":
+        raise unusable(path, f"entry 'metadata' must be JSON text, found {text.dtype}")
     try:
-        meta_text = str(data["metadata"][()])
-        meta = json.loads(meta_text)
-        if not isinstance(meta, dict):
-            raise ValueError("not a JSON object")
-    except (ValueError, TypeError, IndexError) as exc:
-        raise _bad(path, f"entry 'metadata' is not JSON text ({exc})") from None
-    if meta.get("format", FORMAT_NAME) != FORMAT_NAME:
-        raise _bad(path, f"metadata says format {meta.get('format')!r}")
-    if int(meta.get("format_version", FORMAT_VERSION)) > FORMAT_VERSION:
-        raise _bad(path, f"written by a newer Modescope (format version "
-                         f"{meta.get('format_version')}; this one reads {FORMAT_VERSION})")
+        meta = json.loads(str(text[()]))
+    except (ValueError, RecursionError) as exc:
+        raise unusable(path, f"entry 'metadata' is not JSON text ({exc})") from None
+    if not isinstance(meta, dict):
+        raise unusable(path, f"entry 'metadata' is not JSON text (not a JSON object: found "
+                             f"{type(meta).__name__})")
+    try:
+        check_metadata(meta, channels, FORMAT_NAME, FORMAT_VERSION)
+    except ValueError as exc:
+        raise unusable(path, str(exc)) from None
+    return meta
+
+
+def _integers(path, data: dict, name: str, n: int, low: int, high: int):
+    a = data.get(name)
+    if a is None:
+        return None
+    if not np.issubdtype(a.dtype, np.integer) or a.shape != (n,):
+        raise unusable(path, f"entry {name!r} must be {n} integers, found {a.dtype} {a.shape}")
+    if a.size and (a.min() < low or a.max() > high):
+        raise unusable(path, f"entry {name!r} must hold integers from {low} to {high}, found "
+                             f"{a.min()} to {a.max()}")
+    return a
+
+
+def _image_shape(path, data: dict) -> tuple:
     shape = data["image_shape"]
     if shape.shape != (3,) or not np.issubdtype(shape.dtype, np.integer) or np.any(shape < 1):
-        raise _bad(path, f"entry 'image_shape' must be 3 positive integers, found {shape!r}")
-    image_shape = tuple(int(v) for v in shape)
-    mean = floats("mean", 1).astype(np.float32)
-    basis = np.asfortranarray(floats("basis", 2).astype(np.float32))
-    sv = floats("singular_values", 1).astype(np.float64)
-    weights = floats("weights", 2).astype(np.float64)
+        raise unusable(path, f"entry 'image_shape' must be 3 positive integers, found {shape!r}")
+    return tuple(int(v) for v in shape)
+
+
+def _decomposition(path, data: dict) -> Decomposition:
+    """Return the Decomposition of the arrays read, checking every entry's type and values."""
+    image_shape = _image_shape(path, data)
+    meta = _metadata(path, data, image_shape[2])
+    mean = _floats(path, data, "mean").astype(np.float32)
+    basis = np.asfortranarray(_floats(path, data, "basis").astype(np.float32))
+    sv = _floats(path, data, "singular_values").astype(np.float64)
+    weights = _floats(path, data, "weights").astype(np.float64)
     te = data["total_energy"]
-    if te.shape != () or te.dtype not in _FLOATS or not np.isfinite(te) or te < 0:
-        raise _bad(path, f"entry 'total_energy' must be one non-negative number, found {te!r}")
+    if te.dtype not in _FLOATS or not np.isfinite(te) or te < 0:
+        raise unusable(path, f"entry 'total_energy' must be one non-negative number, found "
+                             f"{te!r}")
     paths = data["paths"]
-    if paths.dtype.kind != "U" or paths.ndim != 1:
-        raise _bad(path, f"entry 'paths' must be a list of text, found dtype {paths.dtype}")
-    n = weights.shape[1] if weights.ndim == 2 else -1
+    if paths.dtype.kind != "U":
+        raise unusable(path, f"entry 'paths' must be a list of text, found dtype {paths.dtype}")
+    n = weights.shape[1]
     residual = None
     if "residual" in data and data["residual"].size:
-        residual = floats("residual", 1).astype(np.float64)
+        residual = _floats(path, data, "residual").astype(np.float64)
     sv_error = None
     if "singular_value_error" in data and data["singular_value_error"].size:
-        sv_error = floats("singular_value_error", 1).astype(np.float64)
-        if sv_error.shape != sv.shape or np.any(sv_error < 0):
-            raise _bad(path, f"entry 'singular_value_error' must be {sv.size} non-negative "
-                             f"numbers, found shape {sv_error.shape}")
-    pages = data.get("pages")
-    if pages is not None and (not np.issubdtype(pages.dtype, np.integer) or pages.shape != (n,)):
-        raise _bad(path, f"entry 'pages' must be {n} integers, found {pages.dtype} {pages.shape}")
-    marks = data.get("marks")
-    if marks is not None and (not np.issubdtype(marks.dtype, np.integer) or marks.shape != (n,)
-                              or np.any((marks < 0) | (marks > 2))):
-        raise _bad(path, f"entry 'marks' must be {n} integers 0, 1 or 2")
+        sv_error = _floats(path, data, "singular_value_error").astype(np.float64)
+        if np.any(sv_error < 0):
+            raise unusable(path, f"entry 'singular_value_error' must be {sv.size} non-negative "
+                                 f"numbers")
+    pages = _integers(path, data, "pages", n, 0, np.iinfo(np.int32).max)
+    marks = _integers(path, data, "marks", n, 0, 2)
     if np.any(sv < 0) or np.any(np.diff(sv) > 1e-6 * (sv[0] if sv.size else 1)):
-        raise _bad(path, "entry 'singular_values' must be non-negative and descending")
-    exact = bool(data["exact"][()]) if "exact" in data else residual is not None
+        raise unusable(path, "entry 'singular_values' must be non-negative and descending")
+    exact = residual is not None
+    if "exact" in data:
+        if data["exact"].dtype != np.bool_:
+            raise unusable(path, f"entry 'exact' must be True or False, found "
+                                 f"{data['exact'].dtype}")
+        exact = bool(data["exact"][()])
     try:
         return Decomposition(
             mean=mean, basis=basis, singular_values=sv, weights=weights,
@@ -226,4 +275,4 @@ def load_model(path) -> Decomposition:
             marks=None if marks is None else marks.astype(np.int8), metadata=meta,
             singular_value_error=sv_error)
     except ValueError as exc:
-        raise _bad(path, f"entries do not fit together ({exc})") from None
+        raise unusable(path, f"entries do not fit together ({exc})") from None
