@@ -256,10 +256,21 @@ def good(tmp_path_factory):
     return make_good(tmp_path_factory.mktemp("good"))
 
 
-def test_the_good_file_with_every_metadata_field_loads(good):
+def test_the_good_file_with_every_metadata_field_loads(good, tmp_path, capsys):
     d = load_model(good)
-    assert d.metadata == {**good_metadata()}
+    assert d.metadata == good_metadata()
     assert d.singular_value_error.tolist() == [1e-9] * K and d.n_images == N
+    assert cli_main(["info", str(good)]) == 0
+    out = capsys.readouterr().out
+    assert f"images:       {N}" in out
+    assert "skipped files: 2 (first: /data/broken.png: cannot be decoded)" in out
+    # a deflated copy (numpy's savez_compressed layout) inflates a few times only: accepted
+    packed = rewrite(good, tmp_path / "packed.npz", compress=zipfile.ZIP_DEFLATED)
+    assert packed.stat().st_size < good.stat().st_size
+    np.testing.assert_array_equal(load_model(packed).weights, d.weights)
+    # unknown metadata fields (a newer writer's) are kept and ignored
+    assert load_model(with_metadata(good, tmp_path / "more.npz", later={"x": 1})).metadata[
+        "later"] == {"x": 1}
 
 
 @pytest.mark.parametrize("case", list(CASES))
