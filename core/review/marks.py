@@ -235,9 +235,9 @@ def write_csv(path, decomposition: Decomposition, table: OutlierTable, which: st
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
     for row in rows:
-        writer.writerow([escape_undecodable(row["path"]), row["page"], _number(row["score"]), _number(row["q"]),
-                         _number(row["q_limit"]), _number(row["t2"]), _number(row["t2_limit"]),
-                         int(row["flag"]), row["mark"]])
+        writer.writerow([escape_undecodable(row["path"]), row["page"], _number(row["score"]),
+                         _number(row["q"]), _number(row["q_limit"]), _number(row["t2"]),
+                         _number(row["t2_limit"]), int(row["flag"]), row["mark"]])
     return _atomic_write(path, buf.getvalue(), overwrite)
 
 

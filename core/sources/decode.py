@@ -8,9 +8,12 @@ Decoding rules
 Every image becomes a float32 array of shape ``(rows, cols, channels)`` with values in [0, 1]:
 
 1. The page is selected (multi-page TIFF) and the pixels decoded by Pillow.
-2. The EXIF orientation is applied with ``PIL.ImageOps.exif_transpose``, so the array looks
-   the way an image viewer shows the file (Pillow's TIFF reader applies the TIFF Orientation
-   tag itself while decoding; it is not applied twice).
+2. The EXIF orientation is applied as ``PIL.ImageOps.exif_transpose`` does, so the array
+   looks the way an image viewer shows the file. It is read before decoding by
+   :func:`modescope.core.sources.headers.orientation`, the very reading the scan uses (a PNG
+   ``eXIf`` chunk after the image data included), so scan and decoder agree on the size
+   (Pillow's TIFF reader applies the TIFF Orientation tag itself while decoding; it is not
+   applied twice).
 3. Values are scaled to [0, 1] by the storage type:
 
    * 8-bit modes (L, LA, P, PA, RGB, RGBA, RGBX, CMYK, YCbCr): divided by 255.
@@ -62,15 +65,14 @@ from dataclasses import dataclass
 from typing import Callable, Iterator
 
 import numpy as np
-from PIL import Image, ImageOps
+from PIL import Image
 
 from modescope.core.validation import check_bool, check_choice, check_int, check_path
 from modescope.core.errors import SourceError
-from modescope.core.sources.pixels import (_ORIENTATION_TAG, _DecodeFailure, _downscale,
-                                           _jpeg_draft, _native, _open_reduced, _resize,
-                                           _to_float)
-from modescope.core.sources.scan import (ImageRef, Problem, SourceSet, _header_orientation,
-                                         _short_message)
+from modescope.core.sources.headers import orientation, pillow_notes, short_message, transpose
+from modescope.core.sources.pixels import (_DecodeFailure, _downscale, _jpeg_draft, _native,
+                                           _open_reduced, _resize, _to_float)
+from modescope.core.sources.scan import ImageRef, Problem, SourceSet
 
 __all__ = ["analysis_shape", "load_image", "load_preview", "Block", "iter_blocks"]
 
@@ -150,7 +152,7 @@ def analysis_shape(source_set: SourceSet, downscale: int = 1) -> tuple[int, int,
 
 
 def _pillow_failure(exc: Exception, ref: ImageRef) -> _DecodeFailure:
-    return _DecodeFailure(f"cannot be decoded ({_short_message(exc, ref.path)})")
+    return _DecodeFailure(f"cannot be decoded ({short_message(exc, ref.path)})")
 
 
 def _read(img: Image.Image, ref: ImageRef, source_set: SourceSet, f: int,
@@ -163,14 +165,15 @@ def _read(img: Image.Image, ref: ImageRef, source_set: SourceSet, f: int,
     # (OSError, ValueError, SyntaxError, struct.error, EOFError, ...); a bug in our conversion
     # (_native) must surface as itself, not as "cannot be decoded".
     try:
-        if ref.page:
-            img.seek(ref.page)
-        s = (_jpeg_draft(img, _header_orientation(img), source_set.reference_size, f)
-             if draft else 1)
+        # the header work as in the scan (same orientation reading); the scan has noted
+        # Pillow's warnings already, these are only kept off the terminal
+        with pillow_notes([], ref.path):
+            if ref.page:
+                img.seek(ref.page)
+            turn = orientation(img)
+        s = _jpeg_draft(img, turn, source_set.reference_size, f) if draft else 1
         img.load()
-        orientation = img.getexif().get(_ORIENTATION_TAG, 1)
-        oriented = (ImageOps.exif_transpose(img) if orientation in (2, 3, 4, 5, 6, 7, 8)
-                    else img)
+        oriented = transpose(img, turn)
     except MemoryError:
         raise
     except Exception as exc:  # noqa: BLE001 - see above
@@ -191,7 +194,8 @@ def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
     """
     reference = source_set.reference_size
     try:
-        img = Image.open(ref.path)
+        with pillow_notes([], ref.path):
+            img = Image.open(ref.path)
     except MemoryError:
         raise
     except Exception as exc:  # noqa: BLE001 - Pillow raises many types on damaged files
@@ -327,11 +331,12 @@ def load_preview(path, page: int = 0, *, max_side: int = 64,
         check_choice("color", color, ("gray", "rgb"))
     where = f"{name} (page {page})" if page else name
     try:
-        img = Image.open(name)
+        with pillow_notes([], name):
+            img = Image.open(name)
     except MemoryError:
         raise
     except Exception as exc:  # noqa: BLE001 - Pillow raises many types on damaged files
-        raise SourceError(f"{where}: cannot be decoded ({_short_message(exc, name)})") from exc
+        raise SourceError(f"{where}: cannot be decoded ({short_message(exc, name)})") from exc
     with img:
         try:
             reduced, target = _open_reduced(img, page, max_side)
@@ -339,7 +344,7 @@ def load_preview(path, page: int = 0, *, max_side: int = 64,
             raise
         except Exception as exc:  # noqa: BLE001 - only Pillow's work is guarded here
             raise SourceError(f"{where}: cannot be decoded "
-                              f"({_short_message(exc, name)})") from exc
+                              f"({short_message(exc, name)})") from exc
         try:
             values, scale = _native(reduced)
         except _DecodeFailure as failure:

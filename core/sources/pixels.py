@@ -25,11 +25,9 @@ orientation reverses, the stored length must be a multiple of ``s``.
 from __future__ import annotations
 
 import numpy as np
-from PIL import Image, ImageOps
+from PIL import Image
 
-from modescope.core.sources.scan import _header_orientation
-
-_ORIENTATION_TAG = 0x0112
+from modescope.core.sources.headers import orientation, pillow_notes, transpose
 _LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
 _INT32_MAX = float(np.iinfo(np.int32).max)
 _EIGHT_BIT_RGB = ("RGB", "RGBA", "RGBX")
@@ -172,19 +170,19 @@ def _open_reduced(img: Image.Image, page: int, max_side: int) -> tuple[Image.Ima
     Returns the oriented image, reduced by whole blocks (8-bit L and RGB only, cropped like
     :func:`_downscale`), and the preview size (rows, cols) of the full oriented image.
     """
-    if page:
-        img.seek(page)
+    with pillow_notes([], getattr(img, "filename", "")):
+        if page:
+            img.seek(page)
+        turn = orientation(img)           # 1 for TIFF: Pillow's reader rotates it itself
     cols, rows = img.size
-    swapped = img.format != "TIFF" and _header_orientation(img) >= 5  # TIFF rotates itself
+    swapped = turn >= 5
     if swapped:
         rows, cols = cols, rows
     target = _fit(rows, cols, max_side)
     if img.format == "JPEG" and target != (rows, cols):
         img.draft(img.mode, target if swapped else target[::-1])  # (width, height) as stored
     img.load()
-    orientation = img.getexif().get(_ORIENTATION_TAG, 1)
-    if orientation in (2, 3, 4, 5, 6, 7, 8):
-        img = ImageOps.exif_transpose(img)
+    img = transpose(img, turn)
     f = max(1, min(img.height // target[0], img.width // target[1]))
     if f > 1 and img.mode in ("L", "RGB"):
         box = (0, 0, img.width // f * f, img.height // f * f)

@@ -13,7 +13,13 @@ Rules
   ``recursive=True``) whose suffix is one of :data:`SUPPORTED_SUFFIXES`, compared
   case-insensitively. Hidden files and folders (name starting with ".") below a folder given
   are skipped silently, and so are files of other types (README.md, thumbs.db, ...).
+  An entry with a supported suffix that is not a regular file is a problem naming what it is:
+  a symbolic link to a missing file or one that loops, a named pipe (FIFO, never opened), a
+  socket or a device. Folders are not problems (``recursive=True`` enters them).
 * A file given explicitly is taken whatever its suffix, as long as Pillow can open it.
+* Pillow's warnings (a very large image, damaged EXIF metadata) are never printed: on a file
+  that is used they become :attr:`SourceSet.notes`, on a file that is refused they are part of
+  its problem.
 * The same file reached twice (given twice, or through two folders) is kept once, at its first
   occurrence.
 * Inside a folder the files are ordered by :func:`natural_key` over their path relative to the
@@ -22,7 +28,9 @@ Rules
   contribute their first frame only.
 * Sizes are ``(rows, cols)`` after the EXIF orientation of the file is applied (orientations 5-8
   swap rows and cols), which is how an image viewer shows them. For TIFF files Pillow itself
-  reports the oriented size and applies the Orientation tag while decoding.
+  reports the oriented size and applies the Orientation tag while decoding. The orientation is
+  read by :func:`modescope.core.sources.headers.orientation`, the same reading the decoder
+  uses (it also finds a PNG ``eXIf`` chunk that follows the image data).
 * The reference size is the most common size (ties: the size found first in sort order). Images
   of another size are skipped with a problem, or kept when ``resize_mismatched=True`` (the
   reader then resizes them to the reference size).
@@ -41,7 +49,7 @@ from collections import Counter
 from dataclasses import dataclass
 from typing import Callable, Iterable
 
-from PIL import Image, UnidentifiedImageError
+from modescope.core.sources.headers import not_regular_reason, read_headers, short_message
 
 from modescope.core.validation import check_bool, check_callable, check_choice
 from modescope.core.errors import AnalysisCancelled, NoUsableImagesError
@@ -63,7 +71,6 @@ SUPPORTED_MODES = ("1", "L", "LA", "P", "PA", "RGB", "RGBA", "RGBX", "I;16", "I;
                    "I;16N", "I", "F", "CMYK", "YCbCr")
 
 _COLORS = ("gray", "rgb")
-_ORIENTATION_TAG = 0x0112
 _MAX_PROBLEMS_IN_MESSAGE = 5
 
 
@@ -129,6 +136,9 @@ class SourceSet:
         True when images of another size are kept and resized by the reader.
     problems : tuple of Problem
         Every skipped file or page with its reason.
+    notes : tuple of Problem
+        Files that are used but drew a warning from Pillow (a very large image, damaged EXIF
+        metadata), each with a sentence; empty by default.
     """
 
     images: tuple[ImageRef, ...]
@@ -136,6 +146,7 @@ class SourceSet:
     color: str
     resize_mismatched: bool
     problems: tuple[Problem, ...]
+    notes: tuple[Problem, ...] = ()
 
     @property
     def n_images(self) -> int:
@@ -227,6 +238,13 @@ def _has_supported_suffix(name: str) -> bool:
     return os.path.splitext(name)[1].lower() in SUPPORTED_SUFFIXES
 
 
+def _report_irregular(path: str, problems: list[Problem]) -> None:
+    """Add a problem for an entry of a folder that is neither a regular file nor a folder."""
+    reason = not_regular_reason(path)
+    if reason:
+        problems.append(Problem(path, reason))
+
+
 def _list_folder(folder: str, recursive: bool,
                  problems: list[Problem]) -> list[tuple[str, bool]]:
     """Return ``(path, is_link)`` of the supported files of ``folder`` in natural order.
@@ -249,6 +267,7 @@ def _list_folder(folder: str, recursive: bool,
                     continue
                 full = os.path.join(dirpath, fname)
                 if not os.path.isfile(full):
+                    _report_irregular(full, problems)
                     continue
                 found.append((full, os.path.islink(full)))
     else:
@@ -259,9 +278,12 @@ def _list_folder(folder: str, recursive: bool,
                         continue
                     try:
                         if not entry.is_file():
+                            _report_irregular(entry.path, problems)
                             continue
                         is_link = entry.is_symlink()
-                    except OSError:
+                    except OSError as err:
+                        problems.append(Problem(entry.path, not_regular_reason(entry.path)
+                                                or f"cannot be read ({err.strerror or err})"))
                         continue
                     found.append((entry.path, is_link))
         except OSError as err:
@@ -272,82 +294,26 @@ def _list_folder(folder: str, recursive: bool,
     return found
 
 
-def _short_message(exc: BaseException, path: str) -> str:
-    if isinstance(exc, UnidentifiedImageError):
-        return "Pillow does not recognise the file format"
-    text = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-    for variant in (f"'{path}'", f'"{path}"', path):
-        text = text.replace(variant, "the file")
-    if len(text) > 120:
-        text = text[:117] + "..."
-    return text
-
-
-def _header_orientation(img: Image.Image) -> int:
-    """Return the EXIF orientation (1-8) of an opened image without decoding its pixels.
-
-    Parameters
-    ----------
-    img : PIL.Image.Image
-        An image opened with ``Image.open`` (current frame for multi-page files).
-
-    Returns
-    -------
-    int
-        The orientation tag, 1 when absent or not in 1-8.
-    """
-    try:
-        # PngImageFile.getexif decodes the whole image when the EXIF block is not in the
-        # header; the base implementation only looks at what the header held.
-        exif = Image.Image.getexif(img)
-        value = exif.get(_ORIENTATION_TAG, 1)
-    except Exception:  # noqa: BLE001 - damaged EXIF must not hide a readable image
-        return 1
-    try:
-        value = int(value)
-    except (TypeError, ValueError):
-        return 1
-    return value if 1 <= value <= 8 else 1
-
-
-def _oriented_size(img: Image.Image) -> tuple[int, int]:
-    cols, rows = img.size
-    # Pillow's TIFF reader already reports the oriented size and rotates while decoding.
-    if img.format != "TIFF" and _header_orientation(img) >= 5:
-        rows, cols = cols, rows
-    return (rows, cols)
-
-
-def _read_headers(path: str) -> list[tuple[int, str, int, int]]:
-    """Return ``(page, mode, rows, cols)`` of every page of ``path`` from its header.
-
-    Only Pillow's work happens here; a damaged or foreign file raises whatever Pillow raises.
-    """
-    pages = []
-    with Image.open(path) as img:
-        n_pages = int(getattr(img, "n_frames", 1)) if img.format == "TIFF" else 1
-        for page in range(n_pages):
-            if page:
-                img.seek(page)
-            rows, cols = _oriented_size(img) if img.mode in SUPPORTED_MODES else (0, 0)
-            pages.append((page, img.mode, rows, cols))
-    return pages
-
-
-def _probe(path: str, problems: list[Problem], sizes: dict | None = None) -> list[ImageRef]:
+def _probe(path: str, problems: list[Problem], sizes: dict | None = None,
+           notes: list[Problem] | None = None) -> list[ImageRef]:
     """Open ``path`` (header only) and return one ImageRef per usable page.
 
     ``sizes`` shares one tuple per distinct size among the refs of a scan (a large collection
     holds one size many times over: per-image bookkeeping is what grows with the collection).
+    Pillow's warnings on a file that is kept go to ``notes``; on a file that is refused they
+    are part of its problem.
     """
+    said: list[str] = []
     try:
-        pages = _read_headers(path)
+        pages = read_headers(path, said, SUPPORTED_MODES)
     except MemoryError:
         raise
     except Exception as exc:  # noqa: BLE001 - Pillow plugins raise many types on bad files
-        problems.append(Problem(
-            path, f"not an image Modescope can read ({_short_message(exc, path)})"))
+        reason = f"not an image Modescope can read ({short_message(exc, path)})"
+        problems.append(Problem(path, "; ".join([reason] + said)))
         return []
+    if said and notes is not None:
+        notes.extend(Problem(path, sentence) for sentence in said)
     sizes = {} if sizes is None else sizes
     refs: list[ImageRef] = []
     for page, mode, rows, cols in pages:
@@ -448,10 +414,8 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
                     add(path, os.path.join(real_folder, os.path.relpath(path, full)))
         elif os.path.isfile(full):
             add(full, real(full))
-        elif os.path.exists(full):
-            problems.append(Problem(full, "is neither a file nor a folder"))
         else:
-            problems.append(Problem(full, "does not exist"))
+            problems.append(Problem(full, not_regular_reason(full) or "does not exist"))
 
     # the natural-sort keys of a large folder (about 0.5 KB a file) are freed by now, but the
     # interpreter keeps their memory until a full collection: 10 MB per 20,000 files measured
@@ -462,10 +426,11 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
     total = len(files)
     found: list[ImageRef] = []
     sizes: dict = {}
+    notes: list[Problem] = []
     for done, path in enumerate(files, start=1):
         if cancel is not None and cancel():
             raise AnalysisCancelled("scan of the image sources was cancelled")
-        found.extend(_probe(path, problems, sizes))
+        found.extend(_probe(path, problems, sizes, notes))
         if progress is not None:
             progress(done, total)
 
@@ -506,4 +471,5 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
         raise NoUsableImagesError(message)
 
     return SourceSet(images=tuple(usable), reference_size=reference_size, color=color,
-                     resize_mismatched=resize_mismatched, problems=tuple(problems))
+                     resize_mismatched=resize_mismatched, problems=tuple(problems),
+                     notes=tuple(notes))
