@@ -252,3 +252,24 @@ def test_save_answer_cancelled_in_the_file_dialog_aborts(qtbot, opened, answers,
     assert w.current_file == str(path)
     assert w.state.marks_modified
     np.testing.assert_array_equal(w.state.decomposition.marks, [0, 0, 0, 1, 0, 0, 0, 0])
+
+
+def test_refit_from_the_review_menu_asks_both_questions(qtbot, window, answers,
+                                                        small_collection):
+    w = window
+    with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT):
+        assert w.start_analysis([str(small_collection)], StoredOptions(rank=3))
+    first = w.state.decomposition
+    view = w.views["outliersDock"]
+    view.flush()
+    w.state.set_marks([4, 8], review.EXCLUDE)
+    answers.queue[:] = [B.Yes, B.Cancel]               # refit? yes; the unsaved marks: cancel
+    view.refit_action.trigger()
+    assert len(answers.asked) == 2 and "The refit throws them away" in answers.asked[1]
+    assert not w.runner.is_running() and w.state.decomposition.paths == first.paths
+    answers.queue[:] = [B.Yes, B.Discard]
+    with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT) as blocker:
+        view.refit_action.trigger()
+    assert blocker.args[0].decomposition.n_images == 38
+    assert len(answers.asked) == 4
+    assert not w.state.marks_modified and not w.state.can_undo
