@@ -16,7 +16,7 @@ from modescope.core.engine.refine import (PassAccumulator, RitzStep, rayleigh_ri
                                           rounding_error)
 from modescope.core.errors import SourceError
 from modescope.core.sources.decode import analysis_shape, iter_blocks
-from modescope.core.sources.scan import SourceSet
+from modescope.core.sources.scan import Problem, SourceSet
 
 __all__ = ["Refined", "refine"]
 
@@ -39,6 +39,12 @@ class Refined:
         True when cancelled before the first pass completed (then the arrays are None).
     interrupted : bool
         True when cancelled after at least one complete pass (the arrays are that pass's).
+    kept : ndarray of int or None
+        Indices (into the ``used`` given to :func:`refine`) of the images the arrays cover,
+        ascending; None when they cover every image.
+    dropped : tuple of Problem
+        The images left out because their file changed or became unreadable after the
+        learning pass, each with its reason.
     """
 
     basis: np.ndarray | None
@@ -50,6 +56,16 @@ class Refined:
     passes: int
     stopped: bool
     interrupted: bool = False
+    kept: np.ndarray | None = None
+    dropped: tuple = ()
+
+
+class _Changed(Exception):
+    """Internal: images of a pass failed to decode again; ``indices`` into the pass's set."""
+
+    def __init__(self, indices: list[int], problems: tuple):
+        super().__init__(indices)
+        self.indices, self.problems = indices, problems
 
 
 def _blocks(used: SourceSet, options: AnalysisOptions, workers: int, cancel,
@@ -58,7 +74,7 @@ def _blocks(used: SourceSet, options: AnalysisOptions, workers: int, cancel,
 
     Images ``cache_start`` to ``cache_start + cache.images`` come back from ``cache``; the
     others are decoded from their files (a file that fails now, after a good learning pass,
-    changed during the analysis: SourceError).
+    changed during the analysis: ``_Changed`` names the images of that block that failed).
     """
     pixels = int(np.prod(analysis_shape(used, options.downscale)))
     # the learning pass's block width: files and cache then give the very same float32
@@ -73,9 +89,9 @@ def _blocks(used: SourceSet, options: AnalysisOptions, workers: int, cancel,
         for block in iter_blocks(part, block_size=block_size, downscale=options.downscale,
                                  workers=workers, cancel=cancel):
             if block.problems:
-                bad = block.problems[0]
-                raise SourceError(f"{bad.path}: changed or became unreadable during the "
-                                  f"analysis ({bad.reason})")
+                attempted = range(block.start, min(block.start + block_size, stop - start))
+                failed = sorted(set(attempted) - set(block.indices.tolist()))
+                raise _Changed([start + i for i in failed], block.problems)
             yield block.data
 
     yield from from_files(0, cache_start)
@@ -94,6 +110,21 @@ def _one_pass(basis, mean, used, options, workers, cancel, cache, cache_start, c
         if cancel():
             return None
     return acc if acc.done == used.n_images else None
+
+
+def _without(used: SourceSet, cache_start: int, kept: np.ndarray,
+             failed: list[int]) -> tuple[SourceSet, int, np.ndarray]:
+    """Leave the images ``failed`` (indices into ``used``) out of the passes."""
+    bad = set(failed)
+    keep = [i for i in range(used.n_images) if i not in bad]
+    used = dataclasses.replace(used, images=tuple(used.images[i] for i in keep))
+    return used, cache_start - sum(1 for i in bad if i < cache_start), kept[keep]
+
+
+def _dropped(problems) -> list[Problem]:
+    return [Problem(p.path, f"changed or became unreadable during the analysis ({p.reason}); "
+                            "left out of the result (the mean image still counts it as first "
+                            "read)", p.page) for p in problems]
 
 
 def _source_note(cache: BlockCache | None, n_images: int) -> str:
@@ -117,8 +148,10 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
     While a reported mode's bound exceeds ``options.tolerance`` times its singular value, the
     basis takes one subspace-iteration step and another pass follows, up to
     ``options.max_passes``, or until no open mode can reach its target in the passes left at
-    the rate its bound shrank in the last pass. A pass stopped by ``cancel`` is dropped: the result is the last
-    complete pass.
+    the rate its bound shrank in the last pass. A pass stopped by ``cancel`` is dropped: the
+    result is the last complete pass. An image whose file fails to decode in a pass (it
+    changed after the learning pass) is named in ``Refined.dropped`` and left out: that pass
+    starts again without it (the mean is not changed), the other images' work is kept.
 
     Parameters
     ----------
@@ -145,8 +178,17 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
     Returns
     -------
     Refined
+
+    Raises
+    ------
+    SourceError
+        If every image read from its files failed in a pass.
     """
     rank = options.rank
+    given = used
+    kept = np.arange(used.n_images)
+    last_kept = kept
+    dropped: list[Problem] = []
     note = _source_note(cache, used.n_images)
     last: RitzStep | None = None
     energy = None
@@ -157,8 +199,16 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
         detail = (f"pass {passes + 1} of at most {options.max_passes}, {note}"
                   if options.refine else note)
         clock = Clock("score", used.n_images, progress, detail)
-        acc = _one_pass(basis, mean, used, options, workers, cancel, cache, cache_start, clock,
-                        want_y=options.refine)
+        try:
+            acc = _one_pass(basis, mean, used, options, workers, cancel, cache, cache_start,
+                            clock, want_y=options.refine)
+        except _Changed as changed:
+            dropped.extend(_dropped(changed.problems))
+            used, cache_start, kept = _without(used, cache_start, kept, changed.indices)
+            if used.n_images == 0:
+                raise SourceError("every image changed or became unreadable during the "
+                                  f"analysis: {dropped[0]}") from None
+            continue                      # the same pass again without them
         if acc is None:
             interrupted = last is not None
             break
@@ -167,7 +217,8 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
             after_first_pass()
         energy = acc.energy
         if not options.refine:
-            return _plain(acc, rank, passes)
+            return dataclasses.replace(_plain(acc, rank, passes), kept=_kept(kept, given),
+                                       dropped=tuple(dropped))
         if passes == 1:
             rounding = rounding_error(mean.size, used.n_images,
                                       np.sqrt(float(np.sum(acc.energy))),
@@ -175,6 +226,7 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
         previous = None if last is None else _excess(last, rank, options.tolerance)
         last = None                       # free the previous pass's arrays before the next
         last = rayleigh_ritz_step(acc, rounding)
+        last_kept = kept
         del acc
         excess = _excess(last, rank, options.tolerance)
         if np.all(excess <= 1.0):
@@ -186,7 +238,16 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
     if last is None:
         return Refined(None, None, None, None, None, None, passes, True)
     b, s, w, res, err = last.truncate(rank)
-    return Refined(b, s, w, res, err, energy, passes, False, interrupted)
+    if last_kept.size != kept.size:       # cancelled in a pass restarted without an image:
+        present = {given.images[i].path for i in last_kept}     # the last pass still has it
+        dropped = [p for p in dropped if p.path not in present]
+    return Refined(b, s, w, res, err, energy, passes, False, interrupted,
+                   _kept(last_kept, given), tuple(dropped))
+
+
+def _kept(kept: np.ndarray, given: SourceSet) -> np.ndarray | None:
+    """None when no image of ``given`` was left out."""
+    return None if kept.size == given.n_images else kept
 
 
 def _excess(step: RitzStep, rank: int, tolerance: float) -> np.ndarray:

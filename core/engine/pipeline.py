@@ -92,7 +92,8 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
     NoUsableImagesError
         If the sources hold no usable image, or every image failed to decode.
     SourceError
-        If a file changed or became unreadable between the two passes.
+        If every file changed or became unreadable after the learning pass (one that did is
+        left out of the result and listed in ``problems``; the others' work is kept).
 
     Examples
     --------
@@ -138,6 +139,7 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
                              after_first_pass=engine.release_weights)
     if refined.stopped:
         return run.result(run.snapshot(learned, "cancelled"), True)
+    run.problems.extend(refined.dropped)          # files that changed after the learning pass
     return run.result(run.final(refined, used.images, run.metadata("exact")),
                       refined.interrupted)
 
@@ -178,6 +180,9 @@ class _Run:
         n_old = 0 if self.base is None else self.base.n_images
         marks = (None if self.base is None else
                  np.concatenate([self.base.marks, np.zeros(len(refs) - n_old, dtype=np.int8)]))
+        if refined.kept is not None:              # images left out by the passes
+            refs = [refs[i] for i in refined.kept]
+            marks = None if marks is None else marks[refined.kept]
         meta["refinement"] = _refinement_summary(refined, self.options)
         return Decomposition(
             mean=self.engine.mean.astype(np.float32), basis=refined.basis,
@@ -371,7 +376,10 @@ def update_analysis(decomposition: Decomposition, sources, options: AnalysisOpti
                                            "skipped and the result is the streaming update",
                                         None) for p in missing)
             return run.result(run.snapshot(learned, "streaming"), False)
-        all_set = _old_and_new(d, new_set, learned, options)
+        all_set, unread = _old_and_new(d, new_set, learned, options)
+        if unread:                        # like a missing file: keep the streaming update
+            run.problems.extend(unread)
+            return run.result(run.snapshot(learned, "streaming"), False)
         # the old images are read from their files, the new ones back from the cache
         with _pass_threads(options):
             refined = refine(engine.padded_basis(), engine.mean, all_set, options,
@@ -380,6 +388,7 @@ def update_analysis(decomposition: Decomposition, sources, options: AnalysisOpti
                              after_first_pass=engine.release_weights)
     if refined.stopped:
         return run.result(run.snapshot(learned, "cancelled"), True)
+    run.problems.extend(refined.dropped)
     meta = run.metadata("exact")
     meta["updated_from"] = {"images": d.n_images, "created": d.metadata.get("created")}
     return run.result(run.final(refined, all_set.images, meta), refined.interrupted)
@@ -425,17 +434,41 @@ def _new_images(d: Decomposition, found: SourceSet, options: AnalysisOptions) ->
 
 
 def _old_and_new(d: Decomposition, new_set: SourceSet, learned: Learned,
-                 options: AnalysisOptions) -> SourceSet:
-    """Return one SourceSet of the analysis' old images followed by the new ones learned."""
+                 options: AnalysisOptions) -> tuple[SourceSet, list[Problem]]:
+    """Return one SourceSet of the analysis' old images followed by the new ones learned.
+
+    The second value lists the old images that cannot be read again (then the set is not
+    usable for the passes).
+    """
     color = "gray" if d.image_shape[2] == 1 else "rgb"
     old_paths, old_pages = list(d.paths), [int(g) for g in d.pages]
-    old_set = scan_sources(list(dict.fromkeys(old_paths)), color=color, resize_mismatched=True)
-    by_key = {(r.path, r.page): r for r in old_set.images}
+    files = list(dict.fromkeys(old_paths))
     try:
-        old_refs = [by_key[(os.path.abspath(p), g)] for p, g in zip(old_paths, old_pages)]
-    except KeyError as exc:
-        raise SourceError(f"{exc.args[0][0]}: page {exc.args[0][1]} is no longer in the "
-                          f"file") from None
+        old_set = scan_sources(files, color=color, resize_mismatched=True)
+        found, reasons = old_set.images, old_set.problems
+    except NoUsableImagesError:
+        found, reasons = (), [p for f in files for p in _scan_problems(f)]
+    by_key = {(r.path, r.page): r for r in found}
+    why = {p.path: p.reason for p in reasons}
+    old_refs, unread = [], []
+    for p, g in zip(old_paths, old_pages):
+        ref = by_key.get((os.path.abspath(p), g))
+        if ref is None:
+            reason = why.get(os.path.abspath(p), f"page {g} is no longer in the file")
+            unread.append(Problem(p, f"old image cannot be read again ({reason}): the "
+                                     "refinement passes were skipped and the result is the "
+                                     "streaming update", g or None))
+        old_refs.append(ref)
     refs = tuple(old_refs) + tuple(new_set.images[i] for i in learned.kept)
     resize = bool(d.metadata.get("resize_mismatched", options.resize_mismatched))
-    return dataclasses.replace(new_set, images=refs, problems=(), resize_mismatched=resize)
+    return (dataclasses.replace(new_set, images=refs, problems=(), resize_mismatched=resize),
+            unread)
+
+
+def _scan_problems(path: str) -> list[Problem]:
+    """The scan's problems for one file (used only when no old file could be read)."""
+    from modescope.core.sources.scan import _probe
+
+    problems: list[Problem] = []
+    _probe(os.path.abspath(path), problems)
+    return problems
