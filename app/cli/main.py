@@ -9,7 +9,9 @@ Exit codes: 0 done (perhaps with skipped files), 1 nothing usable or an input er
 
 Interruptions: this module imports only the standard library at its top, so a Ctrl-C at any
 moment of the start-up (numpy, Pillow and the verbs are imported inside :func:`main`) ends with
-exit code 130 and one line, never a traceback. When run as the program (``argv`` None), SIGTERM
+exit code 130 and one line, never a traceback; importing it installs a ``sys.excepthook`` that
+does the same for a Ctrl-C reaching the top level just before or after :func:`main` (not in an
+interactive session). When run as the program (``argv`` None), SIGTERM
 is handled like Ctrl-C, and once the verb has returned a further Ctrl-C or SIGTERM ends the
 process at once with 130 (nothing is left to keep).
 """
@@ -26,6 +28,23 @@ EXIT_UNUSABLE, EXIT_USAGE, EXIT_INTERRUPTED = 1, 2, 130   # as in common.py (not
 
 #: The verbs, in the order ``--help`` lists them; each is the module ``modescope.app.cli.<verb>``.
 VERB_NAMES = ("analyze", "update", "info", "outliers", "duplicates", "export", "demo")
+
+
+def _interrupted_quietly(kind, value, traceback) -> None:
+    """``sys.excepthook`` of the program: a Ctrl-C that reached the top level outside
+    :func:`main` (between the import of this module and the call) ends with 130, no traceback."""
+    if issubclass(kind, KeyboardInterrupt) and not (hasattr(sys, "ps1") or sys.flags.interactive):
+        try:
+            print("\nmodescope: interrupted", file=sys.stderr, flush=True)
+            sys.stdout.flush()
+        except (OSError, ValueError):  # pragma: no cover - streams closed
+            pass
+        os._exit(EXIT_INTERRUPTED)
+    sys.__excepthook__(kind, value, traceback)
+
+
+if sys.excepthook is sys.__excepthook__:     # leave a hook someone else installed alone
+    sys.excepthook = _interrupted_quietly
 
 
 def _load_verbs() -> dict:
