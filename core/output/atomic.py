@@ -179,7 +179,7 @@ def refuse_sources(targets, sources: Iterable, *,
     DestinationError
         Naming the target and the source it would replace.
     """
-    if isinstance(targets, (str, bytes, os.PathLike)):
+    if isinstance(targets, (str, bytes, os.PathLike)) or not isinstance(targets, Iterable):
         targets = [targets]
     names = {}
     stats = {}
@@ -393,7 +393,7 @@ def atomic_writer(path, mode: str = "wb", overwrite: bool = False, *,
     """
     if mode not in ("wb", "w"):
         raise ValueError(f"mode must be 'wb' or 'w', got {mode!r}")
-    refuse_sources(path, protect)
+    refuse_sources(check_path("path", path), protect)
     target = check_destination(path, overwrite=overwrite)
     f, tmp = _open_temp(target, mode, encoding, newline)
     try:

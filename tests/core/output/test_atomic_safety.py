@@ -101,3 +101,10 @@ def test_the_first_write_into_a_folder_tidies_it(tmp_path):
     dead.write_bytes(b"half a model")
     atomic_write_bytes(folder / "a.csv", b"1,2\n")
     assert sorted(os.listdir(folder)) == ["a.csv"]
+
+
+def test_wrong_types_are_named():
+    with pytest.raises(TypeError, match="target must be a path"):
+        refuse_sources(5, [])
+    with pytest.raises(TypeError, match="path must be a path"):
+        atomic_write_bytes(5, b"x", protect=["a.png"])
