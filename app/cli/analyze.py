@@ -104,14 +104,14 @@ def run(args: argparse.Namespace) -> int:
               f"of the last complete pass ({passes} of at most "
               f"{d.metadata.get('refinement', {}).get('max_passes', passes)}) to {written}; "
               f"singular values: {describe_accuracy(d)}", file=sys.stderr)
-        print_problems(result.problems)
+        print_problems(result.problems, result.source_set.notes)
         return EXIT_INTERRUPTED
     if result.cancelled:
         print(f"modescope analyze: interrupted; wrote the streaming result of "
               f"{counted(d.n_images, 'image')} to {written} (not final: run\n  "
               f"{resume_command(args, written)}\nto add the images not analysed yet and run the "
               f"refinement passes)", file=sys.stderr)
-        print_problems(result.problems)
+        print_problems(result.problems, result.source_set.notes)
         return EXIT_INTERRUPTED
     elapsed = time.perf_counter() - start
     rows, cols, ch = d.image_shape
@@ -125,7 +125,7 @@ def run(args: argparse.Namespace) -> int:
           f"({'gray' if ch == 1 else 'rgb'}) in {elapsed:.1f} s; {captured}", file=sys.stderr)
     print(f"singular values: {describe_accuracy(d)}", file=sys.stderr)
     print(f"wrote {written}", file=sys.stderr)
-    print_problems(result.problems)
+    print_problems(result.problems, result.source_set.notes)
     return EXIT_OK
 
 

@@ -175,12 +175,16 @@ def failed(command: str, exc: BaseException, unusable: str = "", memory_hint: st
     return EXIT_UNUSABLE
 
 
-def print_problems(problems) -> None:
-    if not problems:
-        return
-    print(f"{len(problems)} file(s) skipped:", file=sys.stderr)
-    for p in problems:
-        print(f"  {p}", file=sys.stderr)
+def print_problems(problems, notes=()) -> None:
+    """Print the skipped files with their reasons, then notes on files that were used."""
+    if problems:
+        print(f"{len(problems)} file(s) skipped:", file=sys.stderr)
+        for p in problems:
+            print(f"  {p}", file=sys.stderr)
+    if notes:
+        print(f"{len(notes)} note(s) on files that were analysed:", file=sys.stderr)
+        for note in notes:
+            print(f"  {note}", file=sys.stderr)
 
 
 class CountProgress:

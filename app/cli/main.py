@@ -122,6 +122,7 @@ def main(argv: list[str] | None = None) -> int:
     """
     program = argv is None
     argv = list(sys.argv[1:] if argv is None else argv)
+    _printable_streams()
     if not argv or (argv[0] not in VERB_NAMES and not argv[0].startswith("-")):
         return _run_desktop(argv)
     verb = argv[0] if argv[0] in VERB_NAMES else ""
@@ -139,6 +140,19 @@ def main(argv: list[str] | None = None) -> int:
     finally:
         if program:   # the work is over: a late Ctrl-C only ends the process, quietly
             _set_handlers(_exit_at_once, _exit_at_once)
+
+
+def _printable_streams() -> None:
+    """Let any file name reach the terminal: characters the terminal's encoding cannot show
+    (names that are not valid UTF-8 arrive as lone surrogates) are written as backslash
+    escapes instead of ending the command with UnicodeEncodeError."""
+    for stream in (sys.stdout, sys.stderr):
+        reconfigure = getattr(stream, "reconfigure", None)
+        if reconfigure is not None:
+            try:
+                reconfigure(errors="backslashreplace")
+            except (ValueError, OSError):  # pragma: no cover - a stream already in use
+                pass
 
 
 def _run_verb(argv: list[str]) -> int:

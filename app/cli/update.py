@@ -88,5 +88,5 @@ def run(args: argparse.Namespace) -> int:
     print(f"added {new.n_images - d.n_images} images to {d.n_images}; "
           f"singular values: {describe_accuracy(new)}", file=sys.stderr)
     print(f"wrote {written}", file=sys.stderr)
-    print_problems(result.problems)
+    print_problems(result.problems, result.source_set.notes)
     return EXIT_OK
