@@ -59,29 +59,6 @@ class ProgressLine:
         self.last_tenth = max(self.last_tenth, int(frac * 10))
 
 
-def positive_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if value < 1:
-        raise argparse.ArgumentTypeError(f"expected a number of at least 1, got {value}")
-    return value
-
-
-
-def fraction(text: str) -> float:
-    """argparse type: a number strictly between 0 and 1 (a relative tolerance)."""
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not 0.0 < value < 1.0:
-        raise argparse.ArgumentTypeError(f"expected a number strictly between 0 and 1, got "
-                                         f"{text}")
-    return value
-
-
 def cores() -> int:
     """Return the number of cores this process may use (for the passes after learning)."""
     import os
@@ -89,6 +66,40 @@ def cores() -> int:
         return max(1, len(os.sched_getaffinity(0)))
     except (AttributeError, OSError):       # not on Linux
         return max(1, os.cpu_count() or 1)
+
+
+def _whole_number(minimum: int, wording: str):
+    """Return an argparse type for whole numbers of at least ``minimum``."""
+    def parse(text: str) -> int:
+        try:
+            value = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+        if value < minimum:
+            raise argparse.ArgumentTypeError(f"expected {wording}, got {value}")
+        return value
+    return parse
+
+
+def _number(accept, wording: str):
+    """Return an argparse type for numbers for which ``accept(value)`` is True."""
+    def parse(text: str) -> float:
+        try:
+            value = float(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+        if not accept(value):
+            raise argparse.ArgumentTypeError(f"expected {wording}, got {text}")
+        return value
+    return parse
+
+
+#: argparse types of the verbs' options (each message says what was expected and what was found)
+positive_int = _whole_number(1, "a number of at least 1")
+non_negative_int = _whole_number(0, "a number >= 0")
+fraction = _number(lambda v: 0.0 < v < 1.0, "a number strictly between 0 and 1")
+level = _number(lambda v: 0.0 < v < 1.0, "a confidence level strictly between 0 and 1")
+tolerance = _number(lambda v: math.isfinite(v) and v >= 0, "a finite number >= 0")
 
 
 def add_accuracy_options(parser: argparse.ArgumentParser) -> None:
@@ -105,37 +116,6 @@ def add_accuracy_options(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--max-passes", type=positive_int, default=defaults.max_passes,
                         metavar="N", help="most passes over the images after learning "
                                           f"(default {defaults.max_passes})")
-
-
-def non_negative_int(text: str) -> int:
-    try:
-        value = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
-    if value < 0:
-        raise argparse.ArgumentTypeError(f"expected a number >= 0, got {value}")
-    return value
-
-
-def level(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not 0.0 < value < 1.0:
-        raise argparse.ArgumentTypeError(f"expected a confidence level strictly between 0 "
-                                         f"and 1, got {text}")
-    return value
-
-
-def tolerance(text: str) -> float:
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
-    if not (math.isfinite(value) and value >= 0):
-        raise argparse.ArgumentTypeError(f"expected a finite number >= 0, got {text}")
-    return value
 
 
 def fmt(value: float) -> str:
@@ -221,30 +201,6 @@ class CountProgress:
             if tenth != self.last_tenth:
                 self.last_tenth = tenth
                 print(text, file=self.stream, flush=True)
-
-
-def run_subcommand(name: str, register, argv=None) -> int:
-    """Run the sub-command ``name`` on its own (``python -m modescope.app.cli.<name> ...``).
-
-    Parameters
-    ----------
-    name : str
-        The sub-command, e.g. "export".
-    register : callable
-        Adds the sub-command's parser to an argparse sub-parsers object.
-    argv : list of str, optional
-        Arguments after the program name; ``sys.argv[1:]`` when None.
-
-    Returns
-    -------
-    int
-        The sub-command's exit code (argparse itself exits with 2 on bad syntax).
-    """
-    parser = argparse.ArgumentParser(prog="modescope")
-    sub = parser.add_subparsers(dest="command", required=True)
-    register(sub)
-    args = parser.parse_args([name, *(sys.argv[1:] if argv is None else argv)])
-    return args.func(args)
 
 
 class InterruptFlag:

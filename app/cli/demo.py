@@ -16,9 +16,9 @@ import sys
 
 from modescope.core import demo
 from modescope.core.output.atomic import DestinationError
-from modescope.app.cli.common import EXIT_INTERRUPTED, CountProgress, run_subcommand
+from modescope.app.cli.common import EXIT_INTERRUPTED, CountProgress
 
-__all__ = ["register", "run", "main"]
+__all__ = ["register", "run"]
 
 _SIZE_RE = re.compile(r"^\s*(\d+)\s*[xX]\s*(\d+)\s*$")
 
@@ -118,23 +118,3 @@ def run(args: argparse.Namespace) -> int:
         for p in problems:
             print(f"  {paths[p.index].name}  {p.kind}")
     return 0
-
-
-def main(argv=None) -> int:
-    """Run the ``demo`` subcommand on its own (``python -m modescope.app.cli.demo ...``).
-
-    Parameters
-    ----------
-    argv : list of str, optional
-        Arguments after the program name; ``sys.argv[1:]`` when None.
-
-    Returns
-    -------
-    int
-        The exit code of :func:`run` (argparse itself exits with 2 on bad syntax).
-    """
-    return run_subcommand("demo", register, argv)
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())

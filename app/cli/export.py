@@ -24,11 +24,10 @@ import re
 import sys
 from pathlib import Path
 
-from modescope.app.cli.common import (EXIT_INTERRUPTED, CountProgress, InterruptFlag,
-                                      run_subcommand)
+from modescope.app.cli.common import EXIT_INTERRUPTED, CountProgress, InterruptFlag
 from modescope.core.errors import ModescopeError
 
-__all__ = ["register", "run", "main", "parse_image_list"]
+__all__ = ["register", "run", "parse_image_list"]
 
 EXIT_OK, EXIT_FAILED, EXIT_USAGE = 0, 1, 2
 _WHAT = ("previews", "basis", "sheet", "weights", "spectrum", "quality", "model")
@@ -230,23 +229,3 @@ def _cli_words(message: str) -> str:
     """Name the command-line options in a core message instead of the Python parameters."""
     return (message.replace("(allow_source_folder=True)", "(--allow-source-folder)")
             .replace("allow overwriting", "pass --overwrite to replace them"))
-
-
-def main(argv=None) -> int:
-    """Run the ``export`` subcommand on its own (``python -m modescope.app.cli.export ...``).
-
-    Parameters
-    ----------
-    argv : list of str, optional
-        Arguments after the program name; ``sys.argv[1:]`` when None.
-
-    Returns
-    -------
-    int
-        The exit code of :func:`run` (argparse itself exits with 2 on bad syntax).
-    """
-    return run_subcommand("export", register, argv)
-
-
-if __name__ == "__main__":  # pragma: no cover
-    sys.exit(main())

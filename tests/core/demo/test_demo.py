@@ -15,6 +15,7 @@ from skimage.metrics import peak_signal_noise_ratio
 from sklearn.decomposition import PCA
 
 from modescope.app.cli import demo as cli_demo
+from modescope.app.cli import main as cli_main
 
 from modescope.core import demo
 from modescope.core.output import atomic
@@ -406,7 +407,7 @@ def test_frame_name_and_planted_problems_reject_bad_arguments():
 
 def test_cli_writes_collection(tmp_path, capsys):
     out = tmp_path / "demo"
-    code = cli_demo.main([str(out), "--frames", "24", "--size", "32x48", "--seed", "3",
+    code = cli_main.main(["demo", str(out), "--frames", "24", "--size", "32x48", "--seed", "3",
                           "--format", "png"])
     assert code == 0
     captured = capsys.readouterr()
@@ -422,18 +423,18 @@ def test_cli_writes_collection(tmp_path, capsys):
 def test_cli_exit_codes(tmp_path, capsys):
     (tmp_path / "full").mkdir()
     (tmp_path / "full" / "a.txt").write_text("x")
-    assert cli_demo.main([str(tmp_path / "full"), "--frames", "24", "--size", "32x48"]) == 2
+    assert cli_main.main(["demo", str(tmp_path / "full"), "--frames", "24", "--size", "32x48"]) == 2
     assert "not empty" in capsys.readouterr().err
-    assert cli_demo.main([str(tmp_path / "full"), "--frames", "24", "--size", "32x48",
+    assert cli_main.main(["demo", str(tmp_path / "full"), "--frames", "24", "--size", "32x48",
                           "--overwrite"]) == 0
-    assert cli_demo.main([str(tmp_path / "q"), "--frames", "0"]) == 2
+    assert cli_main.main(["demo", str(tmp_path / "q"), "--frames", "0"]) == 2
     assert "n_frames must be at least 1" in capsys.readouterr().err
     blocker = tmp_path / "blocker"
     blocker.write_text("x")
-    assert cli_demo.main([str(blocker / "sub"), "--frames", "24", "--size", "32x48"]) == 1
+    assert cli_main.main(["demo", str(blocker / "sub"), "--frames", "24", "--size", "32x48"]) == 1
     assert "could not write" in capsys.readouterr().err
     with pytest.raises(SystemExit) as info:
-        cli_demo.main([str(tmp_path / "s"), "--size", "96by128"])
+        cli_main.main(["demo", str(tmp_path / "s"), "--size", "96by128"])
     assert info.value.code == 2
     assert "ROWSxCOLS" in capsys.readouterr().err
 
