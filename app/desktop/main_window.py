@@ -29,6 +29,7 @@ from PySide6.QtCore import Qt
 from PySide6.QtGui import QCloseEvent
 from PySide6.QtWidgets import QDockWidget, QMainWindow, QMessageBox, QWidget
 
+from modescope.app.desktop.display import display_text
 from modescope.app.desktop.settings import Settings
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.views.duplicates import DuplicatesView
@@ -143,6 +144,7 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self._update_undo_actions()
 
     def _show_error(self, title: str, text: str) -> None:
+        text = display_text(text)           # a file name may hold bytes Qt cannot show
         if self._closing:
             return
         if not self._confirm_dialogs:

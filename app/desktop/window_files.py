@@ -17,8 +17,10 @@ from PySide6.QtWidgets import QFileDialog, QMessageBox
 
 from modescope.core.errors import ModescopeError
 from modescope.core.output import model_file
+from modescope.core.output.atomic import refuse_sources
 from modescope.core.sources.scan import SUPPORTED_SUFFIXES
 
+from modescope.app.desktop.display import display_name, display_path
 from modescope.app.desktop.views.sources import MODEL_FILE_FILTER
 
 __all__ = ["FilesMixin", "sample_images_dir"]
@@ -91,7 +93,7 @@ class FilesMixin:
                 self.settings.remove_recent_file(os.path.abspath(path))
                 self._rebuild_recent_menu()
             return False
-        if not self.confirm_discard_marks(f"Opening {os.path.basename(path)}"):
+        if not self.confirm_discard_marks(f"Opening {display_name(path)}"):
             return False
         if self.runner.is_running():
             self.runner.abandon()
@@ -100,8 +102,8 @@ class FilesMixin:
         self.state.set_decomposition(decomposition)
         self.settings.add_recent_file(path)
         self._rebuild_recent_menu()
-        self.setWindowTitle(f"Modescope — {os.path.basename(path)}")
-        self.statusBar().showMessage(f"Opened {path}", 5000)
+        self.setWindowTitle(f"Modescope — {display_name(path)}")
+        self.statusBar().showMessage(f"Opened {display_path(path)}", 5000)
         return True
 
     # ----- unsaved marks -------------------------------------------------------------------------
@@ -164,10 +166,13 @@ class FilesMixin:
         if d is None:
             self._show_error("Nothing to save", "There is no analysis to save yet.")
             return None
+        target = path if os.fspath(path).lower().endswith(".npz") else f"{path}.npz"
         try:
+            refuse_sources(target, d.paths)    # save_model refuses too; this message is plainer
             written = model_file.save_model(path, d)
         except (ModescopeError, OSError) as exc:
-            self._show_error("Cannot save the analysis", f"{path}: {exc}")
+            self._show_error("Cannot save the analysis", str(exc) if os.fspath(path) in str(exc)
+                             else f"{path}: {exc}")
             return None
         if self.state.decomposition is d:
             self.state.marks_saved()
@@ -175,7 +180,7 @@ class FilesMixin:
         self.settings.add_recent_file(os.fspath(written))
         self._rebuild_recent_menu()
         note = "" if d.exact else " (partial result)"
-        self.statusBar().showMessage(f"Saved {written}{note}", 5000)
+        self.statusBar().showMessage(f"Saved {display_path(written)}{note}", 5000)
         return Path(written)
 
     # ----- exporting ---------------------------------------------------------------------------
@@ -205,10 +210,10 @@ class FilesMixin:
         menu.clear()
         files = self.settings.recent_files()
         for path in files:
-            a = menu.addAction(os.path.basename(path))
+            a = menu.addAction(display_name(path))
             a.setData(path)
-            a.setToolTip(path)
-            a.setStatusTip(path)
+            a.setToolTip(display_path(path))
+            a.setStatusTip(display_path(path))
         menu.setEnabled(bool(files))
 
     @Slot(QAction)

@@ -16,6 +16,7 @@ from typing import Sequence
 from PySide6.QtCore import Slot
 
 from modescope.app.words import counted
+from modescope.app.desktop.display import display_name
 from modescope.app.desktop.settings import StoredOptions
 from modescope.app.desktop.views.sources import make_analysis_options
 from modescope.app.desktop.window_status import format_seconds
@@ -68,7 +69,7 @@ class RunControlMixin:
         scanned = self.ingest.scanned_for(sources, options)
         if scanned is None:
             self.ingest.stop_scan(run_scans=True)
-        names = ", ".join(os.path.basename(s.rstrip(os.sep)) or s for s in sources[:2])
+        names = ", ".join(display_name(s) for s in sources[:2])
         more = f" and {len(sources) - 2} more" if len(sources) > 2 else ""
         self._begin_run(scanned if scanned is not None else sources, analysis_options,
                         f"Modescope — {names}{more}", run_key=(list(sources), options))
@@ -193,7 +194,7 @@ class RunControlMixin:
             self.ingest.adopt(result.source_set, *key)
         if result.decomposition is not None:
             self.state.set_decomposition(result.decomposition)
-        self.ingest.set_problems(result.problems)
+        self.ingest.set_problems(result.problems, result.source_set.notes)
         seconds = time.monotonic() - self._run_started
         n = result.decomposition.n_images if result.decomposition is not None else 0
         skipped = len(result.problems)
@@ -211,7 +212,7 @@ class RunControlMixin:
             else:
                 self.ingest.run_scan_ended()
         if result is not None:
-            self.ingest.set_problems(result.problems)
+            self.ingest.set_problems(result.problems, result.source_set.notes)
         if d is not None:
             self._previous = None
             self.state.set_decomposition(d)

@@ -20,6 +20,7 @@ from modescope.core.output.images import source_size
 from modescope.core.output.metrics import compression_numbers
 from modescope.core.output.naming import select_images
 
+from modescope.app.desktop.display import display_text
 from modescope.app.desktop.dialogs.export_form import MESSAGE_STYLE, PARTS, PER_IMAGE_PARTS
 
 __all__ = ["ExportChoicesMixin"]
@@ -244,5 +245,5 @@ class ExportChoicesMixin:
     # ----- the message line --------------------------------------------------------------------
     def _show_message(self, text: str, kind: str = "error") -> None:
         self.message_label.setStyleSheet(MESSAGE_STYLE[kind])
-        self.message_label.setText(text)
+        self.message_label.setText(display_text(text))   # a file name may hold odd bytes
         self.message_label.setVisible(bool(text))

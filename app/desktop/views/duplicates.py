@@ -14,7 +14,6 @@ display; ``state.selected`` stays 0-based.
 
 from __future__ import annotations
 
-import os
 
 import numpy as np
 from PySide6.QtCore import Qt, Signal, Slot
@@ -27,6 +26,7 @@ from modescope.core.review import marks as review
 from modescope.core.review.duplicates import DuplicateReport, find_duplicates
 
 from modescope.app.words import counted
+from modescope.app.desktop.display import display_name
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.workers.background import BackgroundRunner, plain_message
 
@@ -317,7 +317,7 @@ class DuplicatesView(QWidget):
                 item.setToolTip(0, f"{group.size} images; largest distance between two of them "
                                    f"{group.max_distance:.4g} ({share} of the RMS image norm)")
                 for i, path, page in zip(group.indices, group.paths, group.pages):
-                    name = os.path.basename(path) if path else f"image {i + 1}"
+                    name = display_name(path) if path else f"image {i + 1}"
                     if page:
                         name = f"{name} [page {page + 1}]"
                     child = QTreeWidgetItem([f"{i + 1}  {name}", ""])

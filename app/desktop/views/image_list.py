@@ -13,7 +13,6 @@ Images are numbered from 1 for display; ``state.selected`` stays 0-based.
 
 from __future__ import annotations
 
-import os
 
 import numpy as np
 from PySide6.QtCore import (QAbstractTableModel, QItemSelection, QItemSelectionModel,
@@ -24,6 +23,7 @@ from PySide6.QtWidgets import (QAbstractItemView, QHBoxLayout, QHeaderView, QLab
 from modescope.core.decomposition import Decomposition
 
 from modescope.app.words import counted
+from modescope.app.desktop.display import display_name, display_path
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.workers.thumbnails import ThumbnailMaker
@@ -69,7 +69,7 @@ class ImageTableModel(QAbstractTableModel):
         for i in range(start, stop):
             path = d.paths[i] if d.paths else ""
             page = int(d.pages[i])
-            name = os.path.basename(path) if path else f"image {i + 1}"
+            name = display_name(path) if path else f"image {i + 1}"
             if page:
                 name = f"{name} [page {page + 1}]"
             key = (path or f"#{i}", page)
@@ -194,7 +194,7 @@ class ImageTableModel(QAbstractTableModel):
         if role == Qt.ItemDataRole.ToolTipRole:
             d = self._d
             path = d.paths[row] if d.paths else "(no file recorded)"
-            text = f"image {row + 1}: {path}"
+            text = f"image {row + 1}: {display_path(path)}"
             if int(d.pages[row]):
                 text += f", page {int(d.pages[row]) + 1}"
             thumb = self.maker.thumbnail(self._keys[row])

@@ -18,7 +18,6 @@ repaints the reconstruction live without flooding the other views.
 
 from __future__ import annotations
 
-import os
 from typing import Any, Callable
 
 import numpy as np
@@ -35,6 +34,7 @@ from PySide6.QtWidgets import (
 from modescope.core.errors import ModescopeError
 from modescope.core.review.reconstruct import LiveReconstruction
 
+from modescope.app.desktop.display import display_name
 from modescope.app.desktop.imaging import (NO_VARIATION, array_to_qimage, signed_to_qimage,
                                            symmetric_limit)
 from modescope.app.desktop.state import AppState
@@ -310,7 +310,7 @@ class Inspector(QWidget):
 
     def _show_title(self, d, index: int) -> None:
         path = d.paths[index] if d.paths else ""
-        name = os.path.basename(path) if path else f"image {index + 1}"
+        name = display_name(path) if path else f"image {index + 1}"
         page = int(d.pages[index])
         if page:
             name += f" (page {page})"

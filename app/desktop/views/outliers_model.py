@@ -8,7 +8,6 @@ leaves the sorting to the model. Images are numbered from 1 for display.
 
 from __future__ import annotations
 
-import os
 
 import numpy as np
 from PySide6.QtCore import QAbstractTableModel, QModelIndex, QSortFilterProxyModel, Qt
@@ -16,6 +15,7 @@ from PySide6.QtGui import QColor
 
 from modescope.core.decomposition import Decomposition
 from modescope.core.review import marks as review
+from modescope.app.desktop.display import display_name, display_path
 from modescope.core.review.outliers import Q_METHOD_NAMES, ControlLimits, OutlierTable
 
 __all__ = ["OutlierTableModel", "OutlierFilterProxy", "FILTERS", "SORT_ROLE", "N_COLUMNS",
@@ -83,7 +83,7 @@ def _image_names(d: Decomposition) -> list[str]:
     names = []
     for i in range(d.n_images):
         path = d.paths[i] if d.paths else ""
-        name = os.path.basename(path) if path else f"image {i + 1}"
+        name = display_name(path) if path else f"image {i + 1}"
         page = int(d.pages[i])
         names.append(f"{name} [page {page + 1}]" if page else name)
     return names
@@ -298,7 +298,7 @@ class OutlierTableModel(QAbstractTableModel):
             d = self._d
             path = d.paths[i] if d.paths else "(no file recorded)"
             lim = t.limits
-            text = (f"image {i + 1}: {path}\nQ = {t.q[i]:.5g} (limit {self.limit_text('q')}), "
+            text = (f"image {i + 1}: {display_path(path)}\nQ = {t.q[i]:.5g} (limit {self.limit_text('q')}), "
                     f"T² = {t.t2[i]:.5g} (limit {self.limit_text('t2')}), score "
                     f"{t.score[i]:.4g}")
             if t.flag[i]:

@@ -18,8 +18,10 @@ from PySide6.QtWidgets import QFileDialog, QMessageBox
 
 from modescope.core.decomposition import Decomposition
 from modescope.core.errors import ModescopeError
+from modescope.core.output.atomic import refuse_sources
 from modescope.core.review import marks as review
 
+from modescope.app.desktop.display import display_text
 from modescope.app.desktop.settings import StoredOptions
 
 __all__ = ["ReviewActions", "stored_options_of"]
@@ -178,7 +180,8 @@ class ReviewActions:
     # ----- messages ----------------------------------------------------------------------------
     def confirm(self, title: str, text: str) -> bool:
         """Ask a yes/no question (QMessageBox.question); True for yes."""
-        answer = QMessageBox.question(self, title, text, QMessageBox.StandardButton.Yes
+        answer = QMessageBox.question(self, title, display_text(text),
+                                      QMessageBox.StandardButton.Yes
                                       | QMessageBox.StandardButton.Cancel,
                                       QMessageBox.StandardButton.Cancel)
         return answer == QMessageBox.StandardButton.Yes
@@ -187,8 +190,8 @@ class ReviewActions:
         """Show a message without blocking (the box is kept in :attr:`message_box`)."""
         if self.message_box is not None:
             self.message_box.close()
-        box = QMessageBox(QMessageBox.Icon.Warning, title, text, QMessageBox.StandardButton.Ok,
-                          self)
+        box = QMessageBox(QMessageBox.Icon.Warning, title, display_text(text),
+                          QMessageBox.StandardButton.Ok, self)
         box.setTextInteractionFlags(Qt.TextInteractionFlag.TextSelectableByMouse)
         self.message_box = box
         box.open()
@@ -272,6 +275,7 @@ class ReviewActions:
         if path is None:
             return None
         try:
+            refuse_sources(path, d.paths)         # never a source image, whatever was answered
             if kind == "csv":
                 written = review.write_csv(path, d, t, which, overwrite=overwrite)
             else:
@@ -296,6 +300,12 @@ class ReviewActions:
             return None, False
         if not os.path.splitext(path)[1]:
             path += suffix
+        d = self.state.decomposition
+        try:
+            refuse_sources(path, d.paths if d is not None else ())
+        except ModescopeError as exc:           # a source image: refused before any question
+            self._warn("Cannot write the list", str(exc))
+            return None, False
         if os.path.exists(path):
             if not self.confirm("Replace the file?", f"{path} already exists. Replace it?"):
                 return None, False

@@ -37,6 +37,7 @@ from PySide6.QtWidgets import (
 )
 
 from modescope.app.words import counted
+from modescope.app.desktop.display import display_name, display_path, display_text
 from modescope.app.desktop.settings import StoredOptions
 from modescope.app.desktop.workers.background import BackgroundRunner
 
@@ -45,6 +46,10 @@ __all__ = ["IngestPane", "make_analysis_options", "scan_collection", "describe_s
 
 IMAGE_FILE_FILTER = ("Images (*.png *.jpg *.jpeg *.tif *.tiff *.bmp *.webp);;All files (*)")
 MODEL_FILE_FILTER = "Modescope analysis (*.npz);;All files (*)"
+#: Start of the reason of a file that was used but drew a warning (a row of the skipped table).
+NOTE_PREFIX = "Used, with a note: "
+#: Item data role holding a row's kind in the skipped table: "skipped" or "note".
+KIND_ROLE = Qt.ItemDataRole.UserRole + 1
 
 
 def make_analysis_options(stored: StoredOptions, **extra: Any):
@@ -216,7 +221,7 @@ class IngestPane(QWidget):
         form.addRow(self.recursive_check)
         form.addRow(self.resize_check)
 
-        problems_box = QGroupBox("Skipped files", self)
+        problems_box = self.problems_box = QGroupBox("Skipped files", self)
         self.problem_table = QTableWidget(0, 2, problems_box)
         self.problem_table.setHorizontalHeaderLabels(["File", "Reason"])
         self.problem_table.verticalHeader().setVisible(False)
@@ -287,7 +292,8 @@ class IngestPane(QWidget):
     # ----- sources -----------------------------------------------------------------------------
     def sources(self) -> list[str]:
         """Return the sources listed, in order."""
-        return [self.source_list.item(i).data(Qt.ItemDataRole.UserRole)
+        # kept as bytes: a Qt string would drop the bytes of a name that are not valid UTF-8
+        return [os.fsdecode(self.source_list.item(i).data(Qt.ItemDataRole.UserRole))
                 for i in range(self.source_list.count())]
 
     def set_sources(self, paths: Iterable[str]) -> None:
@@ -309,10 +315,10 @@ class IngestPane(QWidget):
             if p in present:
                 continue
             present.add(p)
-            label = p + (os.sep if os.path.isdir(p) else "")
+            label = display_path(p) + (os.sep if os.path.isdir(p) else "")
             item = QListWidgetItem(label)
-            item.setData(Qt.ItemDataRole.UserRole, p)
-            item.setToolTip(p)
+            item.setData(Qt.ItemDataRole.UserRole, os.fsencode(p))
+            item.setToolTip(display_path(p))
             self.source_list.addItem(item)
             added += 1
         if added:
@@ -449,7 +455,7 @@ class IngestPane(QWidget):
         self.source_set = source_set
         self._scanned_key = self._pending_key
         self._refresh_summary()
-        self.set_problems(source_set.problems)
+        self.set_problems(source_set.problems, source_set.notes)
         self._update_buttons()
         self.scanFinished.emit(source_set)
 
@@ -467,24 +473,43 @@ class IngestPane(QWidget):
             self.summary_label.setText(describe_source_set(self.source_set,
                                                            self.downscale_spin.value()))
 
-    def set_problems(self, problems: Sequence[Any]) -> None:
-        """List skipped files (``Problem`` objects: path, reason, page)."""
+    def set_problems(self, problems: Sequence[Any], notes: Sequence[Any] = ()) -> None:
+        """List skipped files, then files used with a note.
+
+        Parameters
+        ----------
+        problems : sequence of Problem
+            Skipped files or pages (``path``, ``reason``, ``page``).
+        notes : sequence of Problem, optional
+            Files that were used but drew a warning (``SourceSet.notes``): listed after the
+            skipped ones in italics, their reason starting with :data:`NOTE_PREFIX`, their
+            :data:`KIND_ROLE` "note" (skipped rows have "skipped").
+        """
         table = self.problem_table
         table.setRowCount(0)
-        table.setRowCount(len(problems))
-        for row, problem in enumerate(problems):
+        rows = [("skipped", p) for p in problems] + [("note", n) for n in notes]
+        table.setRowCount(len(rows))
+        for row, (kind, problem) in enumerate(rows):
             page = getattr(problem, "page", None)
-            path = str(getattr(problem, "path", problem))
-            name = os.path.basename(path) or path
+            path = getattr(problem, "path", problem)
+            name = display_name(path)
             if page is not None:
                 name += f" (page {page})"
             file_item = QTableWidgetItem(name)
-            file_item.setToolTip(path)
-            reason = str(getattr(problem, "reason", ""))
+            file_item.setToolTip(display_path(path))
+            reason = display_text(str(getattr(problem, "reason", "")))
+            if kind == "note":
+                reason = NOTE_PREFIX + reason
             reason_item = QTableWidgetItem(reason)
             reason_item.setToolTip(reason)
-            table.setItem(row, 0, file_item)
-            table.setItem(row, 1, reason_item)
+            for col, item in enumerate((file_item, reason_item)):
+                item.setData(KIND_ROLE, kind)
+                if kind == "note":
+                    font = item.font()
+                    font.setItalic(True)
+                    item.setFont(font)
+                table.setItem(row, col, item)
+        self.problems_box.setTitle("Skipped files and notes" if notes else "Skipped files")
 
     def shutdown(self, timeout_ms: int = 3000) -> bool:
         """Stop any scan and wait for it at most ``timeout_ms``; return True when it stopped."""

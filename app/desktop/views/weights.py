@@ -27,6 +27,7 @@ from modescope.core.decomposition import Decomposition
 
 from modescope.app.desktop.imaging import NO_VARIATION
 from modescope.app.words import counted
+from modescope.app.desktop.display import display_path
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 
@@ -385,7 +386,7 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.bars_plot.setYRange(lo - margin, hi + margin, padding=0)
         self.bars_plot.setTitle(f"Weights of image {i + 1} on each basis image", color="#222",
                                 size="9pt")
-        name = d.paths[i] if d.paths else ""
+        name = display_path(d.paths[i]) if d.paths else ""
         self.bars_widget.setToolTip(f"Weights of image {i + 1} {name} on each basis image (the "
                                     f"two modes of the weights plane in colour).")
         self._syncing = True
