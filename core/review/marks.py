@@ -182,11 +182,16 @@ def table_rows(decomposition: Decomposition, table: OutlierTable, which: str = "
     return rows
 
 
-def _atomic_write(path, text: str, overwrite: bool) -> Path:
-    """Write text to a temporary file beside ``path`` and move it into place."""
+def _atomic_write(path, text: str, overwrite: bool, protect=()) -> Path:
+    """Write text to a temporary file beside ``path`` and move it into place.
+
+    ``protect`` (the analysis' source files) can never be the destination, whatever
+    ``overwrite`` says.
+    """
     if not isinstance(overwrite, bool):
         raise TypeError(f"overwrite must be True or False, got {type(overwrite).__name__}")
-    with atomic_writer(path, "w", overwrite, encoding="utf-8", newline="", fsync=True) as fh:
+    with atomic_writer(path, "w", overwrite, encoding="utf-8", newline="", fsync=True,
+                       protect=protect) as fh:
         fh.write(text)
     return Path(path)
 
@@ -238,7 +243,7 @@ def write_csv(path, decomposition: Decomposition, table: OutlierTable, which: st
         writer.writerow([escape_undecodable(row["path"]), row["page"], _number(row["score"]),
                          _number(row["q"]), _number(row["q_limit"]), _number(row["t2"]),
                          _number(row["t2_limit"]), int(row["flag"]), row["mark"]])
-    return _atomic_write(path, buf.getvalue(), overwrite)
+    return _atomic_write(path, buf.getvalue(), overwrite, protect=decomposition.paths)
 
 
 def write_path_list(path, decomposition: Decomposition, which: str = "excluded",
@@ -287,7 +292,7 @@ def write_path_list(path, decomposition: Decomposition, which: str = "excluded",
     for i in _selected(d, table, which):
         seen.setdefault(d.paths[int(i)], None)
     text = "".join(f"{escape_undecodable(p)}\n" for p in seen)
-    return _atomic_write(path, text, overwrite)
+    return _atomic_write(path, text, overwrite, protect=d.paths)
 
 
 # ----- refit -------------------------------------------------------------------------------

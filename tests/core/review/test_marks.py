@@ -294,3 +294,33 @@ def test_refit_refuses_when_everything_is_excluded(model):
         remaining_sources(model.replace(paths=()))
     with pytest.raises(TypeError, match="options must be AnalysisOptions"):
         refit_without_excluded(model, options={"rank": 3})
+
+
+def test_lists_never_replace_a_source_of_the_analysis(tmp_path):
+    # the CSV and the path list refuse a destination that is one of the analysis' own source
+    # files, even with overwrite=True; the source stays byte-identical
+    import hashlib
+
+    from modescope.core.output.atomic import DestinationError
+    from modescope.core.review.outliers import score_table
+
+    source = tmp_path / "frame_0.png"
+    source.write_bytes(b"\x89PNG not really, but a source file")
+    rng = np.random.default_rng(1)
+    X = rng.random((6, 8))
+    mean = X.mean(axis=1)
+    u, s, vt = np.linalg.svd(X - mean[:, None], full_matrices=False)
+    d = Decomposition(mean=mean.astype(np.float32), basis=u[:, :2].astype(np.float32),
+                      singular_values=s[:2], weights=s[:2, None] * vt[:2],
+                      total_energy=float(np.sum(s ** 2)), image_shape=(6, 1, 1),
+                      paths=tuple([str(source)] + [str(tmp_path / f"f{i}.png") for i in
+                                                   range(1, 8)]),
+                      residual=np.sum((s[2:, None] * vt[2:]) ** 2, axis=0), exact=True)
+    before = hashlib.sha256(source.read_bytes()).hexdigest()
+    table = score_table(d, rank=1)
+    with pytest.raises(DestinationError, match="frame_0.png"):
+        write_csv(source, d, table, "all", overwrite=True)
+    d = set_marks(d, [0], EXCLUDE)
+    with pytest.raises(DestinationError, match="frame_0.png"):
+        write_path_list(source, d, "excluded", overwrite=True)
+    assert hashlib.sha256(source.read_bytes()).hexdigest() == before
