@@ -15,6 +15,7 @@ import sys
 from modescope.app.cli.common import (EXIT_OK, EXIT_UNUSABLE, ProgressLine,
                                       add_accuracy_options, cores, failed, print_problems)
 from modescope.app.cli.writing import check_output, model_name, same_file
+from modescope.app.words import counted
 from modescope.core.errors import ModescopeError, NoUsableImagesError
 from modescope.core.engine.pipeline import AnalysisOptions, analyze, update_analysis
 from modescope.core.output.model_file import load_model, save_model
@@ -85,8 +86,12 @@ def run(args: argparse.Namespace) -> int:
         written = save_model(output, new, overwrite=args.overwrite)
     except (ModescopeError, MemoryError, OSError, KeyboardInterrupt) as exc:
         return failed("update", exc)
-    print(f"added {new.n_images - d.n_images} images to {d.n_images}; "
-          f"singular values: {describe_accuracy(new)}", file=sys.stderr)
+    old = set(zip(d.paths, d.pages.tolist()))
+    added = sum(1 for key in zip(new.paths, new.pages.tolist()) if key not in old)
+    left_out = d.n_images - (new.n_images - added)
+    print(f"added {counted(added, 'image')} to {counted(d.n_images, 'image')}"
+          + (f" ({left_out} old could not be read again and were left out)" if left_out else "")
+          + f"; singular values: {describe_accuracy(new)}", file=sys.stderr)
     print(f"wrote {written}", file=sys.stderr)
     print_problems(result.problems, result.source_set.notes)
     return EXIT_OK

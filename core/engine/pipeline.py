@@ -152,6 +152,8 @@ class _Run:
         self.engine, self.source_set, self.options = engine, source_set, options
         self.shape, self.problems, self.base = shape, problems, base
         self.workers = decode_workers(source_set, options)
+        # rows of the base analysis kept in the final result (an update may leave old ones out)
+        self.old_rows = None if base is None else np.arange(base.n_images)
 
     def metadata(self, stage: str) -> dict:
         meta = metadata_for(self.options, self.source_set, self.problems, stage,
@@ -177,9 +179,10 @@ class _Run:
 
     def final(self, refined: Refined, refs, meta: dict) -> Decomposition:
         """Return the refined decomposition of the images ``refs`` (old images first)."""
-        n_old = 0 if self.base is None else self.base.n_images
+        n_old = 0 if self.base is None else len(self.old_rows)
         marks = (None if self.base is None else
-                 np.concatenate([self.base.marks, np.zeros(len(refs) - n_old, dtype=np.int8)]))
+                 np.concatenate([self.base.marks[self.old_rows],
+                                 np.zeros(len(refs) - n_old, dtype=np.int8)]))
         if refined.kept is not None:              # images left out by the passes
             refs = [refs[i] for i in refined.kept]
             marks = None if marks is None else marks[refined.kept]
@@ -370,20 +373,14 @@ def update_analysis(decomposition: Decomposition, sources, options: AnalysisOpti
         run.problems.extend(learned.problems)
         if learned.stopped:
             return run.result(run.snapshot(learned, "cancelled"), True)
-        missing = [p for p in dict.fromkeys(d.paths) if not os.path.exists(p)]
-        if missing:
-            run.problems.extend(Problem(p, "source file missing: the refinement passes were "
-                                           "skipped and the result is the streaming update",
-                                        None) for p in missing)
-            return run.result(run.snapshot(learned, "streaming"), False)
-        all_set, unread = _old_and_new(d, new_set, learned, options)
-        if unread:                        # like a missing file: keep the streaming update
-            run.problems.extend(unread)
-            return run.result(run.snapshot(learned, "streaming"), False)
-        # the old images are read from their files, the new ones back from the cache
+        # old images that cannot be read again (missing, damaged) are left out with a note;
+        # the others are read from their files, the new ones back from the cache
+        all_set, unread, old_rows = _old_and_new(d, new_set, learned, options)
+        run.problems.extend(unread)
+        run.old_rows = old_rows
         with _pass_threads(options):
             refined = refine(engine.padded_basis(), engine.mean, all_set, options,
-                             workers=run.workers, cache=cache, cache_start=d.n_images,
+                             workers=run.workers, cache=cache, cache_start=len(old_rows),
                              progress=progress, cancel=cancel,
                              after_first_pass=engine.release_weights)
     if refined.stopped:
@@ -434,11 +431,11 @@ def _new_images(d: Decomposition, found: SourceSet, options: AnalysisOptions) ->
 
 
 def _old_and_new(d: Decomposition, new_set: SourceSet, learned: Learned,
-                 options: AnalysisOptions) -> tuple[SourceSet, list[Problem]]:
+                 options: AnalysisOptions) -> tuple[SourceSet, list[Problem], np.ndarray]:
     """Return one SourceSet of the analysis' old images followed by the new ones learned.
 
-    The second value lists the old images that cannot be read again (then the set is not
-    usable for the passes).
+    Old images that cannot be read again (missing, damaged, a page gone) are left out: the
+    second value names them, the third gives the rows of ``d`` that are kept, in order.
     """
     color = "gray" if d.image_shape[2] == 1 else "rgb"
     old_paths, old_pages = list(d.paths), [int(g) for g in d.pages]
@@ -450,19 +447,21 @@ def _old_and_new(d: Decomposition, new_set: SourceSet, learned: Learned,
         found, reasons = (), [p for f in files for p in _scan_problems(f)]
     by_key = {(r.path, r.page): r for r in found}
     why = {p.path: p.reason for p in reasons}
-    old_refs, unread = [], []
-    for p, g in zip(old_paths, old_pages):
+    old_refs, unread, rows = [], [], []
+    for row, (p, g) in enumerate(zip(old_paths, old_pages)):
         ref = by_key.get((os.path.abspath(p), g))
         if ref is None:
             reason = why.get(os.path.abspath(p), f"page {g} is no longer in the file")
-            unread.append(Problem(p, f"old image cannot be read again ({reason}): the "
-                                     "refinement passes were skipped and the result is the "
-                                     "streaming update", g or None))
+            unread.append(Problem(p, f"old image cannot be read again ({reason}): left out of "
+                                     "the updated analysis (the mean still counts it as first "
+                                     "analysed)", g or None))
+            continue
         old_refs.append(ref)
+        rows.append(row)
     refs = tuple(old_refs) + tuple(new_set.images[i] for i in learned.kept)
     resize = bool(d.metadata.get("resize_mismatched", options.resize_mismatched))
     return (dataclasses.replace(new_set, images=refs, problems=(), resize_mismatched=resize),
-            unread)
+            unread, np.asarray(rows, dtype=np.int64))
 
 
 def _scan_problems(path: str) -> list[Problem]:

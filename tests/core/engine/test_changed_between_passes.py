@@ -103,20 +103,28 @@ def _split(folder, tmp_path):
     return new
 
 
-def test_update_keeps_streaming_result_when_an_old_file_is_unreadable(frames, tmp_path):
-    folder, _ = frames
+def test_update_leaves_out_an_old_file_that_is_unreadable(frames, tmp_path):
+    folder, x = frames
     new = _split(folder, tmp_path)
     base = analyze([folder], AnalysisOptions(rank=3)).decomposition
+    base = set_marks(base, [1, 6], EXCLUDE)
     (folder / "f_02.png").write_bytes(b"damaged")
     result = update_analysis(base, [new])
     d = result.decomposition
-    assert not result.cancelled and not d.exact and d.n_images == 12
-    assert d.paths[:8] == base.paths
+    # the other images are refined as usual; the unreadable one is named and left out
+    assert not result.cancelled and d.exact and d.n_images == 11
+    assert d.paths == base.paths[:2] + base.paths[3:] + tuple(str(new / f"f_{i:02d}.png")
+                                                             for i in range(8, 12))
+    assert d.marks.tolist() == [0, 2, 0, 0, 0, 2, 0] + [0] * 4     # marks follow their images
     assert [(p.path, p.reason) for p in result.problems] == [
         (str(folder / "f_02.png"), "old image cannot be read again (not an image Modescope can "
-                                   "read (Pillow does not recognise the file format)): the "
-                                   "refinement passes were skipped and the result is the "
-                                   "streaming update")]
+                                   "read (Pillow does not recognise the file format)): left "
+                                   "out of the updated analysis (the mean still counts it as "
+                                   "first analysed)")]
+    # weights are the exact projections of the images kept (numpy), about the model's mean
+    kept = [0, 1] + list(range(3, 12))
+    w = d.basis.astype(np.float64).T @ (x[:, kept] - d.mean.astype(np.float64)[:, None])
+    np.testing.assert_allclose(d.weights, w, atol=1e-5)
 
 
 def test_update_with_every_old_file_unreadable(frames, tmp_path):
@@ -126,7 +134,9 @@ def test_update_with_every_old_file_unreadable(frames, tmp_path):
     for i in range(8):
         (folder / f"f_{i:02d}.png").write_bytes(b"damaged")
     result = update_analysis(base, [new])
-    assert not result.decomposition.exact and result.decomposition.n_images == 12
+    d = result.decomposition
+    assert d.exact and d.n_images == 4
+    assert d.paths == tuple(str(new / f"f_{i:02d}.png") for i in range(8, 12))
     assert sorted(p.path for p in result.problems) == list(base.paths)
     assert all(p.reason.startswith("old image cannot be read again (not an image")
                for p in result.problems)

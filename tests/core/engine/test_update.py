@@ -51,13 +51,14 @@ def test_update_matches_lapack_and_one_run(two_folders):
         update_analysis(d, [first])
 
 
-def test_update_with_missing_old_file_keeps_streaming_result(two_folders):
+def test_update_leaves_out_a_missing_old_file(two_folders):
     first, second, _ = two_folders
     base = analyze([first], AnalysisOptions(rank=4)).decomposition
     (first / "f_3.png").unlink()
     result = update_analysis(base, [second])
-    assert not result.decomposition.exact and result.decomposition.n_images == 100
-    assert any("f_3.png" in p.path and "missing" in p.reason for p in result.problems)
+    d = result.decomposition
+    assert d.exact and d.n_images == 99 and str(first / "f_3.png") not in d.paths
+    assert any("f_3.png" in p.path and "does not exist" in p.reason for p in result.problems)
 
 
 def test_update_refuses_mismatched_colour(two_folders):
@@ -75,3 +76,15 @@ def test_update_command(two_folders, tmp_path, capsys):
                  "--overwrite"]) == 0
     assert load_model(model).n_images == 100
     assert "added 40 images to 60" in capsys.readouterr().err
+
+
+def test_update_command_names_old_files_left_out(two_folders, tmp_path, capsys):
+    first, second, _ = two_folders
+    model = tmp_path / "m.npz"
+    assert main(["analyze", str(first), "-o", str(model), "--rank", "5", "--quiet"]) == 0
+    (first / "f_3.png").unlink()
+    out = tmp_path / "m2.npz"
+    assert main(["update", str(model), str(second), "-o", str(out), "--quiet"]) == 0
+    err = capsys.readouterr().err
+    assert "added 40 images to 60 images (1 old could not be read again and were left out)" in err
+    assert "f_3.png" in err and load_model(out).n_images == 99
