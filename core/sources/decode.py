@@ -59,6 +59,7 @@ The pixel vector of an image (a column of the data matrix) is the C-order ravel 
 
 from __future__ import annotations
 
+import contextlib
 import math
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
@@ -167,7 +168,7 @@ def _read(img: Image.Image, ref: ImageRef, source_set: SourceSet, f: int,
     try:
         # the header work as in the scan (same orientation reading); the scan has noted
         # Pillow's warnings already, these are only kept off the terminal
-        with pillow_notes([], ref.path):
+        with _quiet(ref):
             if ref.page:
                 img.seek(ref.page)
             turn = orientation(img)
@@ -182,6 +183,16 @@ def _read(img: Image.Image, ref: ImageRef, source_set: SourceSet, f: int,
     return values, scale, s
 
 
+def _quiet(ref: ImageRef):
+    """Keep Pillow's warnings on ``ref`` off the terminal (the scan noted them already).
+
+    Only for files that warned at the scan (``ref.noted``): the capture holds a process-wide
+    lock, and taking it for every file made the two decoding threads take turns (5,000 small
+    PNGs: 0.82 s -> 1.29 s).
+    """
+    return pillow_notes([], ref.path) if ref.noted else contextlib.nullcontext()
+
+
 def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
             raw_out: np.ndarray | None = None, draft: bool = True) -> bool:
     """Decode ``ref`` into ``out`` (shape analysis_shape, float32) or raise _DecodeFailure.
@@ -194,7 +205,7 @@ def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
     """
     reference = source_set.reference_size
     try:
-        with pillow_notes([], ref.path):
+        with _quiet(ref):
             img = Image.open(ref.path)
     except MemoryError:
         raise

@@ -112,12 +112,17 @@ class ImageRef:
         ``(rows, cols)`` after the EXIF orientation is applied.
     mode : str
         Pillow mode of the file, e.g. "L", "RGB", "I;16", "F", "RGBA".
+    noted : bool
+        True when Pillow warned while the scan read the header (the notes are in
+        :attr:`SourceSet.notes`): only then does the decoder capture Pillow's warnings again
+        (the capture holds a lock that would otherwise make the decoding threads take turns).
     """
 
     path: str
     page: int = 0
     size: tuple[int, int] = (0, 0)
     mode: str = ""
+    noted: bool = False
 
 
 @dataclass(frozen=True)
@@ -328,7 +333,8 @@ def _probe(path: str, problems: list[Problem], sizes: dict | None = None,
                                     page_label))
             continue
         size = sizes.setdefault((rows, cols), (rows, cols))
-        refs.append(ImageRef(path=path, page=page, size=size, mode=sys.intern(mode)))
+        refs.append(ImageRef(path=path, page=page, size=size, mode=sys.intern(mode),
+                             noted=bool(said)))
     return refs
 
 
