@@ -16,6 +16,7 @@ from modescope.core.output.metrics import quantize
 from modescope.core.validation import check_float, check_instance, check_int
 
 __all__ = ["source_size", "upsample_image", "preview_image", "signed_image_rgb", "basis_image_rgb",
+           "contrast_limits", "stretch",
            "mean_image"]
 
 
@@ -210,3 +211,62 @@ def mean_image(decomposition: Decomposition) -> np.ndarray:
     """
     d = check_instance("decomposition", decomposition, Decomposition)
     return quantize(d.to_image(d.mean), 8)
+
+
+def contrast_limits(image, low: float = 0.01, high: float = 0.99) -> tuple[float, float]:
+    """Return the display range that stretches ``image``'s contrast: its low and high quantiles.
+
+    A dark night frame or a bright over-exposed one shows its detail when ``[lo, hi]`` is
+    mapped to black..white (:func:`stretch`). The 1% and 99% quantiles by default ignore a few
+    extreme pixels (common practice in image viewers, no published source).
+
+    Parameters
+    ----------
+    image : array_like, any shape
+        Intensities, nominally in [0, 1]; non-finite values are ignored.
+    low, high : float
+        Quantiles, 0 <= low < high <= 1.
+
+    Returns
+    -------
+    (lo, hi) : tuple of float
+        ``hi > lo`` always (a flat image gets a range of one 8-bit level around its value).
+
+    Raises
+    ------
+    ValueError
+        If the quantiles are out of order or out of range.
+
+    Examples
+    --------
+    >>> contrast_limits(np.linspace(0.1, 0.3, 101), 0.0, 1.0)
+    (0.1, 0.3)
+    """
+    low = check_float("low", low, low=0.0, high=1.0)
+    high = check_float("high", high, low=0.0, high=1.0)
+    if not low < high:
+        raise ValueError(f"low must be below high, got low={low}, high={high}")
+    values = np.asarray(image, dtype=np.float64)
+    values = values[np.isfinite(values)]
+    if values.size == 0:
+        return (0.0, 1.0)
+    lo, hi = (float(v) for v in np.quantile(values, [low, high]))
+    if hi - lo < 1.0 / 255:
+        middle = 0.5 * (lo + hi)
+        lo, hi = middle - 0.5 / 255, middle + 0.5 / 255
+    return (lo, hi)
+
+
+def stretch(image, limits: tuple[float, float]) -> np.ndarray:
+    """Return ``image`` with ``limits`` mapped to [0, 1] (clipped), float32, same shape.
+
+    Examples
+    --------
+    >>> stretch(np.array([0.1, 0.2, 0.3, 0.5]), (0.1, 0.3)).tolist()
+    [0.0, 0.5, 1.0, 1.0]
+    """
+    lo, hi = (float(v) for v in limits)
+    if not hi > lo:
+        raise ValueError(f"limits must be (low, high) with high > low, got {limits!r}")
+    out = (np.asarray(image, dtype=np.float32) - np.float32(lo)) / np.float32(hi - lo)
+    return np.clip(out, 0.0, 1.0, out=out)

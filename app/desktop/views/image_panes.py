@@ -8,7 +8,7 @@ large as the area allows.
 
 from __future__ import annotations
 
-from PySide6.QtCore import QRectF, QSize, Qt
+from PySide6.QtCore import QRectF, QSize, Qt, Signal
 from PySide6.QtGui import QColor, QImage, QPainter, QPalette
 from PySide6.QtWidgets import QSizePolicy, QWidget
 
@@ -27,8 +27,12 @@ class ImagePane(QWidget):
     parent : QWidget, optional
     """
 
+    #: The pixel under the mouse as (row, column) of the image shown; (-1, -1) when none.
+    hovered = Signal(int, int)
+
     def __init__(self, title: str = "", parent: QWidget | None = None):
         super().__init__(parent)
+        self.setMouseTracking(True)
         self._title = title
         self._image = QImage()
         self._note = ""
@@ -75,6 +79,24 @@ class ImagePane(QWidget):
         scale = min(area.width() / iw, area.height() / ih)
         w, h = iw * scale, ih * scale
         return QRectF(area.x() + (area.width() - w) / 2, area.y() + (area.height() - h) / 2, w, h)
+
+    def pixel_at(self, x: float, y: float) -> tuple[int, int]:
+        """Return the (row, column) of the image pixel at widget point (x, y); (-1, -1) outside."""
+        rect = self.image_rect()
+        if self._image.isNull() or not rect.contains(x, y) or rect.width() <= 0:
+            return (-1, -1)
+        col = int((x - rect.x()) / rect.width() * self._image.width())
+        row = int((y - rect.y()) / rect.height() * self._image.height())
+        return (min(row, self._image.height() - 1), min(col, self._image.width() - 1))
+
+    def mouseMoveEvent(self, event) -> None:  # noqa: N802 - Qt name
+        pos = event.position()
+        self.hovered.emit(*self.pixel_at(pos.x(), pos.y()))
+        super().mouseMoveEvent(event)
+
+    def leaveEvent(self, event) -> None:  # noqa: N802 - Qt name
+        self.hovered.emit(-1, -1)
+        super().leaveEvent(event)
 
     def paintEvent(self, event) -> None:  # noqa: N802 - Qt name
         p = QPainter(self)

@@ -23,6 +23,7 @@ from typing import Any, Callable
 import numpy as np
 from PySide6.QtCore import Qt, QTimer, Signal, Slot
 from PySide6.QtWidgets import (
+    QCheckBox,
     QHBoxLayout,
     QLabel,
     QSizePolicy,
@@ -32,6 +33,7 @@ from PySide6.QtWidgets import (
 )
 
 from modescope.core.errors import ModescopeError
+from modescope.core.output.images import contrast_limits, stretch
 from modescope.core.review.reconstruct import LiveReconstruction
 
 from modescope.app.desktop.display import display_name
@@ -45,6 +47,9 @@ __all__ = ["ImagePane", "ColorLegend", "Inspector", "RANK_DEBOUNCE_MS"]
 
 #: Delay between a slider move and the rank reaching the shared state.
 RANK_DEBOUNCE_MS = 15
+
+#: Shown under the panes while the mouse is on no image.
+HOVER_HINT = "Point at a pixel to read the image, reconstruction and residual there."
 
 #: Shown in the image pane while the source image is being read.
 READING_NOTE = "Reading the image…"
@@ -111,7 +116,10 @@ class Inspector(QWidget):
         self._cache_key: tuple | None = None
         self._live = None           # LiveReconstruction of the selected image
         self._cache_value: np.ndarray | None = None
-        self._source_qimage: tuple | None = None   # (source array, its QImage)
+        self._source_qimage: tuple | None = None   # (source array, limits, its QImage)
+        # what the panes show now, for the pixel readout: (source or None, reconstruction,
+        # residual plane or None)
+        self._shown: tuple | None = None
         self._running = False
         self._cache_error = ""
         self._reading = False       # the cached key's image is being read
@@ -168,15 +176,27 @@ class Inspector(QWidget):
                                     "(keys + and −)")
         self.rank_label = QLabel("Rank –", self)
         self.rank_label.setMinimumWidth(self.fontMetrics().horizontalAdvance("Rank 9999 of 9999"))
+        self.stretch_box = QCheckBox("Stretch contrast", self)
+        self.stretch_box.setToolTip("Show the image and its reconstruction with the image's "
+                                    "1% and 99% levels as black and white (for dark or bright "
+                                    "images); the numbers are unchanged")
         slider_row = QHBoxLayout()
         slider_row.addWidget(self.rank_label)
         slider_row.addWidget(self.rank_slider, 1)
+        slider_row.addWidget(self.stretch_box)
+        self.readout_label = QLabel(HOVER_HINT, self)
+        self.readout_label.setToolTip("Values at the pixel under the mouse in any of the three "
+                                      "panes (rows and columns counted from 1, values in "
+                                      "0..1; colour images give red, green, blue)")
+        self.readout_label.setSizePolicy(QSizePolicy.Policy.Ignored,
+                                         QSizePolicy.Policy.Preferred)
 
         layout = QVBoxLayout(self)
         layout.setContentsMargins(8, 6, 8, 6)
         layout.addWidget(self.title_label)
         layout.addWidget(self.pane_area, 1)
         layout.addLayout(slider_row)
+        layout.addWidget(self.readout_label)
         self.setFocusPolicy(Qt.FocusPolicy.StrongFocus)
 
     def _wire(self) -> None:
@@ -184,6 +204,9 @@ class Inspector(QWidget):
         self._state.selectedChanged.connect(self._on_selected)
         self._state.rankChanged.connect(self._on_rank)
         self.rank_slider.valueChanged.connect(self._on_slider)
+        self.stretch_box.toggled.connect(self.refresh)
+        for pane in (self.source_pane, self.reconstruction_pane, self.residual_pane):
+            pane.hovered.connect(self._on_hover)
 
     # ----- state -> view -----------------------------------------------------------------------
     @Slot(object)
@@ -287,6 +310,8 @@ class Inspector(QWidget):
 
     def _show_nothing(self, d) -> None:
         """No image to show: say why (no analysis, no variation, nothing selected)."""
+        self._shown = None
+        self.readout_label.setText(HOVER_HINT)
         if d is None:
             title = "Analysis starting…" if self._running else "No analysis yet"
         elif d.rank == 0 and d.n_images:
@@ -322,25 +347,60 @@ class Inspector(QWidget):
         """The reconstruction at ``rank``, the source image and the residual (core's)."""
         # incremental: a slider step adds or removes only the modes in between
         self.reconstruction_pane.set_title(f"Reconstruction, rank {rank}")
-        self.reconstruction_pane.set_image(array_to_qimage(live.image_at(rank)))
+        recon = live.image_at(rank)
         source, error = self._source(live.decomposition, live.index)
+        # one display range for the image and its reconstruction, so they stay comparable
+        limits = (contrast_limits(source if source is not None else recon)
+                  if self.stretch_box.isChecked() else None)
+        self.reconstruction_pane.set_image(array_to_qimage(
+            recon if limits is None else stretch(recon, limits)))
         if source is None:
+            self._shown = (None, recon, None)
             self.source_pane.set_image(None, error)
             self.residual_pane.set_image(None, "" if self._reading
                                          else "No residual without the source image.")
             self.legend.set_limit(None)
             return
-        # the source does not change with the rank: convert it once per image
-        if self._source_qimage is None or self._source_qimage[0] is not source:
-            self._source_qimage = (source, array_to_qimage(source))
-        self.source_pane.set_image(self._source_qimage[1])
+        # the source does not change with the rank: convert it once per image and range
+        if (self._source_qimage is None or self._source_qimage[0] is not source
+                or self._source_qimage[1] != limits):
+            shown = source if limits is None else stretch(source, limits)
+            self._source_qimage = (source, limits, array_to_qimage(shown))
+        self.source_pane.set_image(self._source_qimage[2])
         residual = live.residual_image(source, rank)
         plane = residual.mean(axis=2) if residual.shape[2] > 1 else residual[:, :, 0]
+        self._shown = (source, recon, plane)
         limit = symmetric_limit(plane)
         self.residual_pane.set_image(signed_to_qimage(plane, limit))
         self.residual_pane.set_title("Residual" + (" (channel mean)"
                                                    if residual.shape[2] > 1 else ""))
         self.legend.set_limit(limit)
+
+    @Slot(int, int)
+    def _on_hover(self, row: int, col: int) -> None:
+        """Write the values of the pixel under the mouse (the same in all three panes)."""
+        shown = self._shown
+        if row < 0 or shown is None:
+            self.readout_label.setText(HOVER_HINT)
+            return
+        source, recon, plane = shown
+        if row >= recon.shape[0] or col >= recon.shape[1]:
+            self.readout_label.setText(HOVER_HINT)
+            return
+
+        def value(array) -> str:
+            v = np.asarray(array[row, col], dtype=np.float64).ravel()
+            return f"{v[0]:.3f}" if v.size == 1 else "(" + ", ".join(f"{x:.3f}" for x in v) + ")"
+
+        parts = [f"Row {row + 1}, column {col + 1}:"]
+        if source is not None:
+            parts.append(f"image {value(source)},")
+        parts.append(f"reconstruction {value(recon)}")
+        if plane is not None:
+            parts[-1] += ","
+            parts.append(f"residual {plane[row, col]:+.3f}"
+                         + (" (channel mean)" if recon.ndim == 3 and recon.shape[2] > 1 else ""))
+        self.readout_label.setText(" ".join(parts))
 
     def _show_texts(self, d, index: int, rank: int) -> None:
         """The energy the first ``rank`` modes capture and this image's residual."""
