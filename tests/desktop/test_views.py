@@ -9,6 +9,8 @@ from __future__ import annotations
 import time
 from pathlib import Path
 
+import os
+
 import numpy as np
 import pytest
 from PIL import Image
@@ -656,3 +658,15 @@ def test_spectrum_summary_states_the_certificate(qtbot, state, gray):
     state.set_decomposition(loose)
     qtbot.waitUntil(lambda: "2 modes not converged" in sp.summary.text(), timeout=2000)
     assert f"modes {k - 1}-{k}" in sp.summary.toolTip()
+
+
+def test_hovering_a_point_of_the_weights_plane_names_the_image(qtbot, state, gray):
+    view = WeightsView(state)
+    qtbot.addWidget(view)
+    assert view.scatter.opts["hoverable"] and view.scatter.opts["tip"] == view.point_tip
+    a, b = state.modes
+    tip = view.point_tip(x=1.25, y=-0.5, data=3)
+    assert tip.splitlines() == [f"Image 4: {os.path.basename(gray.paths[3])}",
+                                f"weight on basis image {a + 1}: 1.25",
+                                f"weight on basis image {b + 1}: -0.5"]
+    assert view.point_tip(x=0.0, y=0.0, data=gray.n_images) == ""

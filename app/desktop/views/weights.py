@@ -27,7 +27,7 @@ from modescope.core.decomposition import Decomposition
 
 from modescope.app.desktop.imaging import NO_VARIATION
 from modescope.app.words import counted
-from modescope.app.desktop.display import display_path
+from modescope.app.desktop.display import display_name, display_path
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 
@@ -167,7 +167,9 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.plane = self.plane_widget.addPlot(row=0, col=0, viewBox=self.plane_vb)
         _style(self.plane)
         self.plane.setTitle("Weights plane", color="#222", size="10pt")
-        self.scatter = pg.ScatterPlotItem(size=7, pen=None, symbol="o")
+        # hovering a point names its image (pyqtgraph shows ``tip`` as the tooltip)
+        self.scatter = pg.ScatterPlotItem(size=7, pen=None, symbol="o", hoverable=True,
+                                          tip=self.point_tip)
         self.plane.addItem(self.scatter)
         self.set_marks = pg.ScatterPlotItem(size=11, pen=pg.mkPen(QColor(20, 20, 20), width=1.5),
                                             brush=None, symbol="o")
@@ -269,6 +271,17 @@ class WeightsView(ThrottledRedraw, QWidget):
             r = min(max(self.state.rank, 0), d.rank)
             return d.residual_at_rank(r), f"residual at rank {r}"
         return np.arange(1, d.n_images + 1, dtype=np.float64), "image number"
+
+    def point_tip(self, x: float, y: float, data) -> str:
+        """Return the tooltip of the point of image ``data`` (0-based) at weights (x, y)."""
+        d = self.state.decomposition
+        if d is None or data is None or not 0 <= int(data) < d.n_images:
+            return ""
+        i = int(data)
+        name = display_name(d.paths[i]) if d.paths else ""
+        a, b = (m + 1 for m in self._modes(d))
+        return (f"Image {i + 1:,}" + (f": {name}" if name else "")
+                + f"\nweight on basis image {a}: {x:.4g}\nweight on basis image {b}: {y:.4g}")
 
     # ----- state -> view ---------------------------------------------------------------------
     @Slot()
