@@ -141,6 +141,30 @@ def check_rank(command: str, rank, decomposition) -> int | None:
     return None
 
 
+def resolve_rank(rank, decomposition) -> tuple[int, str]:
+    """Return the rank a verb uses and the line that says so.
+
+    Parameters
+    ----------
+    rank : int or None
+        The ``--rank`` given (already checked against the model), or None for the default.
+    decomposition : Decomposition
+
+    Returns
+    -------
+    (int, str)
+        The rank and one line such as "Rank 3 of 20: the smallest rank capturing 95% of the
+        energy (3 modes capture 96.6%); --rank K sets another" or "Rank 5 of 20: given by
+        --rank".
+    """
+    from modescope.core.review.rank import default_rank
+    k = decomposition.rank
+    if rank is not None:
+        return rank, f"Rank {rank} of {k}: given by --rank"
+    chosen, reason = default_rank(decomposition)
+    return chosen, f"Rank {chosen} of {k}: {reason}; --rank K sets another"
+
+
 def failed(command: str, exc: BaseException, unusable: str = "", memory_hint: str = "") -> int:
     """Print why ``modescope COMMAND`` stopped and return its exit code (nothing was written)."""
     if isinstance(exc, KeyboardInterrupt):

@@ -10,7 +10,8 @@ from __future__ import annotations
 import argparse
 import os
 
-from modescope.app.cli.common import check_rank, error, fmt, label, level, non_negative_int
+from modescope.app.cli.common import (check_rank, error, fmt, label, level, non_negative_int,
+                                      resolve_rank)
 from modescope.app.cli.writing import check_output
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import load_model
@@ -29,10 +30,13 @@ def register(subparsers) -> None:
         description="Score every image of a saved model with the residual statistic Q and "
                     "Hotelling's T2 at rank K, compare them with control limits at the chosen "
                     "confidence level, and list the images most unusual first. An image is "
-                    "flagged when score = max(Q/Q limit, T2/T2 limit) > 1.")
+                    "flagged when score = max(Q/Q limit, T2/T2 limit) > 1. Images are "
+                    "numbered from 1 in column order, as in the desktop program. Without "
+                    "--rank, the default rank is the smallest capturing 95% of the energy.")
     p.add_argument("model", metavar="MODEL.npz", help="model file saved by modescope")
     p.add_argument("--rank", type=non_negative_int, default=None, metavar="K",
-                   help="basis images kept (default: all in the model)")
+                   help="basis images kept (default: the smallest rank capturing 95%% of "
+                        "the energy, or all in the model when they capture less)")
     p.add_argument("--level", type=level, default=0.99,
                    help="confidence level of the limits, between 0 and 1 (default 0.99)")
     p.add_argument("--top", type=non_negative_int, default=20, metavar="N",
@@ -55,7 +59,8 @@ def run(args: argparse.Namespace) -> int:
         code = check_rank("outliers", args.rank, decomposition)
         if code is not None:
             return code
-        table = score_table(decomposition, rank=args.rank, level=args.level)
+        rank, rank_line = resolve_rank(args.rank, decomposition)
+        table = score_table(decomposition, rank=rank, level=args.level)
         rows = table_rows(decomposition, table, "all")
         csv_path = None
         if args.csv is not None:
@@ -72,6 +77,7 @@ def run(args: argparse.Namespace) -> int:
     method_t2 = {"beta": "Beta", "f": "F"}[lim.t2_method]
     print(f"Model {args.model}: {table.n_images} images, rank {table.rank} of "
           f"{decomposition.rank}, level {table.level:g}")
+    print(rank_line)
     print(f"Q limit {fmt(lim.q_limit)} ({method_q}); T2 limit {fmt(lim.t2_limit)} "
           f"({method_t2}, {lim.t2_rank} modes)")
     print(f"Q limit method: {lim.q_reason}.")
@@ -80,18 +86,21 @@ def run(args: argparse.Namespace) -> int:
     if lim.note:
         print(f"Note: {lim.note}")
     shown = rows if args.top == 0 else rows[:args.top]
-    header = ("#", "path", "score", "q", "q_limit", "t2", "t2_limit", "flag")
-    body = [(str(rank + 1), label(r["path"] or f"image {r['index']}", r["page"]),
+    header = ("#", "number", "path", "score", "q", "q_limit", "t2", "t2_limit", "flag")
+    body = [(str(place + 1), str(r["number"]),
+             label(r["path"] or f"image {r['number']}", r["page"]),
              fmt(r["score"]), fmt(r["q"]), fmt(r["q_limit"]), fmt(r["t2"]),
              fmt(r["t2_limit"]), "yes" if r["flag"] else "no")
-            for rank, r in enumerate(shown)]
+            for place, r in enumerate(shown)]
     widths = [max(len(h), *(len(row[c]) for row in body)) if body else len(h)
               for c, h in enumerate(header)]
-    left = {1}
+    left = {2}
     for row in [header, *body]:
         cells = [cell.ljust(widths[c]) if c in left else cell.rjust(widths[c])
                  for c, cell in enumerate(row)]
         print("  ".join(cells).rstrip())
+    print("(# = place, most unusual first; number = the image's number, 1-based, as in the "
+          "desktop program and the CSV)")
     if len(shown) < len(rows):
         print(f"({len(shown)} of {len(rows)} images shown; --top 0 shows all)")
     if csv_path is not None:

@@ -18,18 +18,11 @@ from modescope.core.decomposition import Decomposition
 
 
 def initial_rank(decomposition: Decomposition) -> int:
-    """Return the rank a fresh view starts at: the smallest rank capturing 95% of the energy
-    (a common-practice choice with no source), at least 1; k when the k kept modes capture
-    less (a default only: nothing claims that k reaches 95%)."""
-    from modescope.core.review.rank import energy_rank
-    k = decomposition.rank
-    if k == 0:
-        return 0
-    try:
-        found = energy_rank(decomposition, 0.95).rank
-    except ValueError:
-        return k
-    return k if found is None else max(1, min(k, found))
+    """Return the rank a fresh view starts at: the one default rank of every front end,
+    :func:`modescope.core.review.rank.default_rank` (the smallest rank capturing 95% of the
+    energy, all k kept modes when they capture less, 0 without modes)."""
+    from modescope.core.review.rank import default_rank
+    return default_rank(decomposition).rank
 
 
 #: Most mark changes kept for undo (older ones are forgotten first).

@@ -40,7 +40,7 @@ NOT_REVIEWED = 0
 KEEP = 1
 EXCLUDE = 2
 MARK_NAMES = {NOT_REVIEWED: "not reviewed", KEEP: "keep", EXCLUDE: "exclude"}
-CSV_COLUMNS = ("path", "page", "score", "q", "q_limit", "t2", "t2_limit", "flag", "mark")
+CSV_COLUMNS = ("number", "path", "page", "score", "q", "q_limit", "t2", "t2_limit", "flag", "mark")
 _WHICH = ("flagged", "excluded", "all")
 
 
@@ -165,7 +165,9 @@ def table_rows(decomposition: Decomposition, table: OutlierTable, which: str = "
     Returns
     -------
     list of dict
-        Keys :data:`CSV_COLUMNS` plus ``index``; numbers as Python int/float/bool.
+        Keys :data:`CSV_COLUMNS` plus ``index`` (the 0-based column; ``number`` is
+        ``index + 1``, the 1-based image number both front ends show); numbers as Python
+        int/float/bool.
     """
     d = _check_decomposition(decomposition)
     t = _check_table(d, table)
@@ -174,7 +176,7 @@ def table_rows(decomposition: Decomposition, table: OutlierTable, which: str = "
     for i in _selected(d, t, which):
         i = int(i)
         rows.append({
-            "index": i, "path": paths[i], "page": int(d.pages[i]),
+            "index": i, "number": i + 1, "path": paths[i], "page": int(d.pages[i]),
             "score": float(t.score[i]), "q": float(t.q[i]), "q_limit": float(t.limits.q_limit),
             "t2": float(t.t2[i]), "t2_limit": float(t.limits.t2_limit),
             "flag": bool(t.flag[i]), "mark": int(d.marks[i]),
@@ -204,9 +206,10 @@ def write_csv(path, decomposition: Decomposition, table: OutlierTable, which: st
               *, overwrite: bool = False) -> Path:
     """Write the flagged, excluded or all images with their scores as CSV.
 
-    The file is UTF-8 with a header row and the columns ``path, page, score, q, q_limit, t2,
-    t2_limit, flag, mark`` (flag 1/0, mark 0/1/2, numbers written so they read back exactly),
-    rows most unusual first.
+    The file is UTF-8 with a header row and the columns ``number, path, page, score, q, q_limit,
+    t2, t2_limit, flag, mark`` (number: the image's 1-based number, its column + 1, as the
+    workbench and the command line show it; flag 1/0, mark 0/1/2, numbers written so they
+    read back exactly), rows most unusual first.
     Bytes of a file name that are not valid UTF-8 are written as ``\\xNN``
     (:func:`~modescope.core.output.tables.escape_undecodable`).
 
@@ -240,7 +243,7 @@ def write_csv(path, decomposition: Decomposition, table: OutlierTable, which: st
     writer = csv.writer(buf, lineterminator="\n")
     writer.writerow(CSV_COLUMNS)
     for row in rows:
-        writer.writerow([escape_undecodable(row["path"]), row["page"], _number(row["score"]),
+        writer.writerow([row["number"], escape_undecodable(row["path"]), row["page"], _number(row["score"]),
                          _number(row["q"]), _number(row["q_limit"]), _number(row["t2"]),
                          _number(row["t2_limit"]), int(row["flag"]), row["mark"]])
     return _atomic_write(path, buf.getvalue(), overwrite, protect=decomposition.paths)

@@ -76,7 +76,7 @@ def test_marks_csv_and_path_list_with_undecodable_names(tmp_path):
     table = score_table(d, rank=1)
     out = write_csv(tmp_path / "all.csv", d, table, "all")
     rows = list(csv.reader(io.StringIO(out.read_bytes().decode("utf-8"))))
-    assert sorted(r[0] for r in rows[1:]) == sorted(
+    assert sorted(r[1] for r in rows[1:]) == sorted(       # column 0 is the number
         ["/data/caf\\xe9_\\xff.png", GOOD_NAME, "/data/plain.png"])
     listed = write_path_list(tmp_path / "excluded.txt", d, "excluded")
     assert listed.read_bytes().decode("utf-8") == f"/data/caf\\xe9_\\xff.png\n{GOOD_NAME}\n"

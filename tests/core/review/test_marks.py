@@ -111,6 +111,7 @@ def test_flagged_indices_and_rows(model):
     assert flagged.tolist() == [i for i in table.order if table.flag[i]]
     rows = table_rows(model, table, "flagged")
     assert [r["index"] for r in rows] == flagged.tolist()
+    assert [r["number"] for r in rows] == [i + 1 for i in flagged.tolist()]
     assert all(r["flag"] for r in rows)
     assert len(table_rows(model, table, "all")) == 80
 
@@ -120,21 +121,23 @@ def test_csv_of_all_images_parses_and_matches_table(model, tmp_path):
     table = score_table(marked, rank=3)
     path = write_csv(tmp_path / "all.csv", marked, table, "all")
     rows = _read_csv(path)
-    assert tuple(rows[0]) == CSV_COLUMNS == ("path", "page", "score", "q", "q_limit", "t2",
-                                             "t2_limit", "flag", "mark")
+    assert tuple(rows[0]) == CSV_COLUMNS == ("number", "path", "page", "score", "q", "q_limit",
+                                             "t2", "t2_limit", "flag", "mark")
     body = rows[1:]
     assert len(body) == 80
     for row, i in zip(body, table.order):
-        assert row[0] == marked.paths[i]
-        assert int(row[1]) == 0
+        assert int(row[0]) == i + 1                  # 1-based image number: column + 1
+        assert row[1] == marked.paths[i]
+        assert int(row[2]) == 0
         # floats are written so they read back exactly
-        assert float(row[2]) == table.score[i]
-        assert float(row[3]) == table.q[i]
-        assert float(row[4]) == table.limits.q_limit
-        assert float(row[5]) == table.t2[i]
-        assert float(row[6]) == table.limits.t2_limit
-        assert int(row[7]) == int(table.flag[i])
-        assert int(row[8]) == int(marked.marks[i])
+        assert float(row[3]) == table.score[i]
+        assert float(row[4]) == table.q[i]
+        assert float(row[5]) == table.limits.q_limit
+        assert float(row[6]) == table.t2[i]
+        assert float(row[7]) == table.limits.t2_limit
+        assert int(row[8]) == int(table.flag[i])
+        assert int(row[9]) == int(marked.marks[i])
+    assert sorted(int(row[0]) for row in body) == list(range(1, 81))
     assert _no_temp_files(tmp_path)
 
 
@@ -142,11 +145,13 @@ def test_csv_of_flagged_and_excluded(model, tmp_path):
     marked = set_marks(model, [2, 7], EXCLUDE)
     table = score_table(marked, rank=3)
     flagged = _read_csv(write_csv(tmp_path / "flagged.csv", marked, table))[1:]
-    assert [r[0] for r in flagged] == [marked.paths[i] for i in flagged_indices(table)]
+    assert [r[1] for r in flagged] == [marked.paths[i] for i in flagged_indices(table)]
+    assert [int(r[0]) for r in flagged] == [i + 1 for i in flagged_indices(table)]
     excluded = _read_csv(write_csv(tmp_path / "excluded.csv", marked, table, "excluded"))[1:]
     # most unusual first: 7 is an outlier, 2 is not
-    assert [r[0] for r in excluded] == [marked.paths[7], marked.paths[2]]
-    assert [r[8] for r in excluded] == ["2", "2"]
+    assert [r[1] for r in excluded] == [marked.paths[7], marked.paths[2]]
+    assert [r[0] for r in excluded] == ["8", "3"]
+    assert [r[9] for r in excluded] == ["2", "2"]
 
 
 def test_exports_never_overwrite_unless_asked(model, tmp_path):

@@ -419,23 +419,27 @@ def test_cli_outliers_prints_sorted_table_and_caution(digits_model, capsys):
     out = capsys.readouterr().out
     lines = out.splitlines()
     header = next(i for i, line in enumerate(lines) if line.startswith("#"))
-    assert lines[header].split() == ["#", "path", "score", "q", "q_limit", "t2", "t2_limit",
-                                     "flag"]
+    assert lines[header].split() == ["#", "number", "path", "score", "q", "q_limit", "t2",
+                                     "t2_limit", "flag"]
     table = score_table(digits_model, rank=3)
     rows = [lines[header + 1 + j].split() for j in range(5)]
-    assert [r[1] for r in rows] == [digits_model.paths[i] for i in table.order[:5]]
-    assert [float(r[2]) for r in rows] == pytest.approx(table.score[table.order[:5]], rel=1e-3)
-    assert {r[1] for r in rows[:3]} == {f"/data/img_{i:03d}.png" for i in (60, 61, 62)}
+    assert [r[0] for r in rows] == ["1", "2", "3", "4", "5"]          # place in the ranking
+    assert [int(r[1]) for r in rows] == [i + 1 for i in table.order[:5]]  # 1-based number
+    assert [r[2] for r in rows] == [digits_model.paths[i] for i in table.order[:5]]
+    assert [float(r[3]) for r in rows] == pytest.approx(table.score[table.order[:5]], rel=1e-3)
+    assert {r[2] for r in rows[:3]} == {f"/data/img_{i:03d}.png" for i in (60, 61, 62)}
+    assert {r[1] for r in rows[:3]} == {"61", "62", "63"}
+    assert lines[1] == "Rank 3 of 20: given by --rank"
     assert lines[-1] == cli_outliers.CAUTION
     assert "5 of 63 images shown" in out
     # the header names the Q limit method and says why it was chosen
     # (here the moments of modes 4..63 give h0 just below 0: Box, and the reason says so)
     lim = table.limits
     assert lim.q_method == "box"
-    assert lines[1].startswith(f"Q limit {lim.q_limit:.4g} (Box); ")
-    assert lines[2] == f"Q limit method: {lim.q_reason}."
-    assert "because they give h0 = -0.0202 <= 0" in lines[2]
-    assert "the eigenvalues of modes 4-20 are known exactly, the modes beyond 20" in lines[2]
+    assert lines[2].startswith(f"Q limit {lim.q_limit:.4g} (Box); ")
+    assert lines[3] == f"Q limit method: {lim.q_reason}."
+    assert "because they give h0 = -0.0202 <= 0" in lines[3]
+    assert "the eigenvalues of modes 4-20 are known exactly, the modes beyond 20" in lines[3]
 
 
 def test_cli_outliers_writes_csv_matching_table(digits_model, tmp_path, capsys):
@@ -446,8 +450,15 @@ def test_cli_outliers_writes_csv_matching_table(digits_model, tmp_path, capsys):
         rows = list(csv.DictReader(fh))
     table = score_table(digits_model, rank=3)
     assert len(rows) == 63
+    assert list(rows[0])[:3] == ["number", "path", "page"]
     assert [r["path"] for r in rows] == [digits_model.paths[i] for i in table.order]
+    assert [int(r["number"]) for r in rows] == [int(i) + 1 for i in table.order]
     assert [float(r["score"]) for r in rows] == table.score[table.order].tolist()
+    # the printed table shows the same numbers in the same order as the CSV
+    out = capsys.readouterr().out.splitlines()
+    header = next(i for i, line in enumerate(out) if line.split()[:1] == ["#"])
+    printed = [line.split()[1] for line in out[header + 1:header + 21]]
+    assert printed == [r["number"] for r in rows[:20]]
     # the file exists now: a second run without --overwrite refuses, with --overwrite works
     assert cli_outliers.run(args) == 1
     assert "already exists; use --overwrite" in capsys.readouterr().err
@@ -485,7 +496,7 @@ def test_cli_outliers_through_saved_model_and_main(tmp_path, capsys):
     out = capsys.readouterr().out
     table = score_table(d, rank=3)
     assert f"Flagged: {table.n_flagged} of 200" in out
-    listed = [line.split()[1] for line in out.splitlines() if line.split()[:1] in
+    listed = [line.split()[2] for line in out.splitlines() if line.split()[:1] in
               (["1"], ["2"], ["3"], ["4"])]
     assert set(listed) == {f"/x/{i}.png" for i in planted}
     assert out.rstrip().endswith(cli_outliers.CAUTION)
