@@ -101,6 +101,8 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self._bottom_split = False
         self._closing = False
         self._previous = None       # (state snapshot, file, title) shown before the current run
+        self._installing = False    # True while a run's result is given to the state
+        self._user_picked = False   # an image was selected during the current run
 
         self.inspector = Inspector(self.state, self)
         self.setCentralWidget(self.inspector)
@@ -137,6 +139,7 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self.state.decompositionChanged.connect(self._on_state_changed)
         self.state.rankChanged.connect(self._on_state_changed)
         self.state.marksHistoryChanged.connect(self._update_undo_actions)
+        self.state.selectedChanged.connect(self._note_pick)
         # ((path, page) pairs not excluded, StoredOptions)
         self.views["outliersDock"].refitRequested.connect(self.refit_analysis)
         self.cancel_action.setEnabled(False)

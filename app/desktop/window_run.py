@@ -120,7 +120,8 @@ class RunControlMixin:
             # what is shown now comes back if the run fails or stops before any image
             self._previous = (self.state.snapshot(), self.current_file, self.windowTitle())
         self.current_file = None
-        self.state.set_decomposition(None)
+        self._install(None)
+        self._user_picked = False
         self._run_started = time.monotonic()
         self._run_key = run_key
         self._first_learn = True
@@ -174,9 +175,23 @@ class RunControlMixin:
             parts.append(f"about {format_seconds(left)} left")
         self.progress_label.setText(" · ".join(parts))
 
+    def _install(self, decomposition) -> None:
+        """Give the state ``decomposition``; the selection it clamps is not a user's pick."""
+        self._installing = True
+        try:
+            self.state.set_decomposition(decomposition)
+        finally:
+            self._installing = False
+
+    @Slot(int)
+    def _note_pick(self, _index: int) -> None:
+        """Remember that an image was selected during the run other than by the run itself."""
+        if not getattr(self, "_installing", False):
+            self._user_picked = True
+
     @Slot(object)
     def _on_partial(self, decomposition) -> None:
-        self.state.set_decomposition(decomposition)
+        self._install(decomposition)
 
     def _restore_previous(self) -> None:
         """Show again the analysis (its marks, history, file and title) shown before the run."""
@@ -193,7 +208,10 @@ class RunControlMixin:
         if key is not None and self.ingest.scanned_for(*key) is None:
             self.ingest.adopt(result.source_set, *key)
         if result.decomposition is not None:
-            self.state.set_decomposition(result.decomposition)
+            self._install(result.decomposition)
+            if not getattr(self, "_user_picked", False):
+                # nobody picked an image during the run: start the review at the worst one
+                self.views["outliersDock"].select_worst()
         self.ingest.set_problems(result.problems, result.source_set.notes)
         seconds = time.monotonic() - self._run_started
         n = result.decomposition.n_images if result.decomposition is not None else 0
@@ -215,7 +233,7 @@ class RunControlMixin:
             self.ingest.set_problems(result.problems, result.source_set.notes)
         if d is not None:
             self._previous = None
-            self.state.set_decomposition(d)
+            self._install(d)
             self.statusBar().showMessage(
                 f"Analysis cancelled: the partial result from {counted(d.n_images, 'image')} "
                 "is kept (it can be saved).", 10000)

@@ -14,6 +14,11 @@
   ``state.set_marks``; refit without the excluded images (:attr:`OutlierView.refitRequested`);
   export the excluded or flagged images as CSV or as a list of paths. Source images are never
   moved, changed or deleted.
+* A new analysis opens at the top of the ranked list: when the scores of an analysis not scored
+  before appear, the table scrolls to its first row (the highest score), whatever image is
+  selected. :meth:`OutlierView.select_worst` selects that image; the main window calls it when
+  a run finishes and the user has not picked an image during the run (a pick made during the
+  run is kept: it stays selected, highlighted where it falls in the list).
 
 Every number comes from :func:`modescope.core.review.outliers.score_table` and
 :mod:`modescope.core.review.marks`. Images are numbered from 1 for display; ``state.selected`` stays
@@ -100,6 +105,7 @@ class OutlierView(ReviewActions, ThrottledRedraw, QWidget):
         self._syncing = False
         self._shown: set[int] = set()
         self._split_set = False     # True once sized (or moved by the user)
+        self._scored_for = None     # the analysis whose scores were last shown
         self._init_review()
 
         self._build_actions()
@@ -302,6 +308,27 @@ class OutlierView(ReviewActions, ThrottledRedraw, QWidget):
         """Return (T² limit, Q limit) where the lines are drawn, in data units (not log)."""
         return self.plot_widget.limit_positions()
 
+    def select_worst(self) -> int:
+        """Show the top of the ranked list and select the image with the highest score.
+
+        Pending scores are computed first. The selection goes to the state
+        (``state.set_selected``), so every view follows.
+
+        Returns
+        -------
+        int
+            The image selected (0-based), or -1 when there are no scores (no analysis, or a
+            partial one) and nothing was changed.
+        """
+        self.flush()
+        if not self._ready() or self.scores.n_images == 0:
+            return -1
+        worst = int(self.scores.order[0])
+        self.state.set_selection_set(())
+        self.state.set_selected(worst)
+        self.table.show_top()
+        return worst
+
     def _ready(self) -> bool:
         d = self.state.decomposition
         return self.scores is not None and d is not None and d.n_images == self.scores.n_images
@@ -352,6 +379,7 @@ class OutlierView(ReviewActions, ThrottledRedraw, QWidget):
             self._show_waiting(f"No outlier scores for this analysis: {exc}")
             return
         self.scores = table
+        fresh, self._scored_for = d is not self._scored_for, d
         self._syncing = True
         try:
             self.model.set_scores(d, table)
@@ -360,6 +388,8 @@ class OutlierView(ReviewActions, ThrottledRedraw, QWidget):
         finally:
             self._syncing = False
         self.stack.setCurrentWidget(self.content)
+        if fresh:
+            self.table.show_top()       # a new analysis opens at the highest score
         self._update_labels()
         self._update_plot_selection()
         self.plot_widget.show_scores(table, self.model.marks)

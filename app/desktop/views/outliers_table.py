@@ -118,6 +118,11 @@ class OutlierTableView(QTableView):
                                      QItemSelectionModel.SelectionFlag.ClearAndSelect)
         self.move_current(current)
 
+    def show_top(self) -> None:
+        """Scroll to the first row (the highest score while sorted by score)."""
+        self.executeDelayedItemsLayout()   # a pending layout would scroll back to the current row
+        self.scrollToTop()
+
     def move_current(self, image: int) -> None:
         """Make the row of ``image`` current (without changing the selection) and show it."""
         pr = self.proxy_row(image)
