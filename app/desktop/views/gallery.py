@@ -340,7 +340,8 @@ class BasisGallery(ThrottledRedraw, QWidget):
         self.view.setGridSize(QSize(max(icon_size + 16, text_w),
                                     icon_size + 4 * fm.lineSpacing() + 14))
         self.view.setModel(self.model)
-        self.view.setToolTip("Click a tile to show that basis image in the other views.")
+        self.view.setToolTip("Click a tile to show that basis image in the other views; "
+                             "double-click it to see it large.")
 
         self.legend = _Legend(self)
         self.header = QLabel("No analysis yet.", self)
@@ -363,6 +364,7 @@ class BasisGallery(ThrottledRedraw, QWidget):
         state.rankChanged.connect(self._on_rank)
         state.focusModeChanged.connect(self._on_focus_mode)
         self.view.clicked.connect(self._on_clicked)
+        self.view.doubleClicked.connect(self._on_double_clicked)
         self.view.selectionModel().currentChanged.connect(self._on_current_changed)
 
         if state.decomposition is not None:
@@ -421,6 +423,22 @@ class BasisGallery(ThrottledRedraw, QWidget):
         if self._syncing or not index.isValid():
             return
         self.pick(index.row() - 1)
+
+    @Slot(QModelIndex)
+    def _on_double_clicked(self, index: QModelIndex) -> None:
+        d = self.state.decomposition
+        if d is None or not index.isValid():
+            return
+        self.enlarge(index.row() - 1)
+
+    def enlarge(self, mode: int):
+        """Open a window showing basis image ``mode`` (-1: the mean) large; return it."""
+        from modescope.app.desktop.dialogs.enlarged import EnlargedImage
+
+        window = EnlargedImage(self.state.decomposition, mode, self)
+        window.setAttribute(Qt.WidgetAttribute.WA_DeleteOnClose)
+        window.show()
+        return window
 
     def pick(self, mode: int) -> None:
         """Pick ``mode`` (0-based, -1 for the mean) for the other views.
