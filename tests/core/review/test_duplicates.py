@@ -17,7 +17,9 @@ from scipy.spatial.distance import pdist, squareform
 
 from modescope.app.cli import duplicates as cli_duplicates
 from modescope.core.decomposition import Decomposition, fix_signs
-from modescope.core.review.duplicates import DuplicateReport, find_duplicates, pair_distance
+from modescope.core.errors import ModescopeError
+from modescope.core.review.duplicates import (DuplicateReport, find_duplicates, pair_bounds,
+                                             pair_distance)
 
 
 def make_decomposition(X, K, image_shape=None, paths=None) -> Decomposition:
@@ -45,6 +47,11 @@ def collection_with_copies(seed=0, n=60, pixels=144):
     return np.hstack([X, exact, near]), {(5, n, n + 1), (10, n + 2)}
 
 
+def reader(X):
+    """The images as columns of X (what the analysis decoded), for ``read_image``."""
+    return lambda i: X[:, i]
+
+
 def brute_force_groups(X, threshold):
     """Groups of images within ``threshold`` of each other in the centred space (scipy)."""
     C = X - X.mean(axis=1, keepdims=True)
@@ -62,7 +69,8 @@ def brute_force_groups(X, threshold):
 def test_finds_planted_exact_and_near_copies_only():
     X, planted = collection_with_copies()
     d = make_decomposition(X, 8, paths=[f"/c/{i}.png" for i in range(X.shape[1])])
-    report = find_duplicates(d, tolerance=0.02)
+    assert find_duplicates(d, tolerance=0.02).groups == ()   # residuals: bounds straddle
+    report = find_duplicates(d, tolerance=0.02, read_image=reader(X))
     assert isinstance(report, DuplicateReport)
     assert {g.indices for g in report.groups} == planted
     assert [g.size for g in report.groups] == [3, 2]            # sorted by size
@@ -72,29 +80,39 @@ def test_finds_planted_exact_and_near_copies_only():
     assert report.threshold == pytest.approx(0.02 * report.rms_norm)
 
 
-def test_groups_agree_with_brute_force_distances_on_a_complete_model():
-    # With every mode kept the residuals are 0, so d(i, j) is the true distance (scipy pdist).
-    X, _ = collection_with_copies(seed=1)
+def test_groups_are_cliques_within_the_tolerance_on_a_complete_model():
+    # With every mode kept the residuals are 0, so both bounds are the true distance (scipy
+    # pdist): every pair of every group is within the limit, no image is in two groups, and
+    # each reported distance to the first image is the true one.
+    X, planted = collection_with_copies(seed=1)
     d = make_decomposition(X, X.shape[1])
+    _, dist = brute_force_groups(X, 0.0)
     for tolerance in (0.0, 0.02, 0.5, 0.8, 1.0):
         report = find_duplicates(d, tolerance=tolerance)
-        expected, dist = brute_force_groups(X, report.threshold + 1e-6 * report.rms_norm)
-        assert {g.indices for g in report.groups} == expected, tolerance
+        limit = report.threshold + 1e-6 * report.rms_norm
+        seen = [i for g in report.groups for i in g.indices]
+        assert len(seen) == len(set(seen)), tolerance
         for g in report.groups:
             sub = dist[np.ix_(g.indices, g.indices)]
+            assert sub.max() <= limit * (1 + 1e-9), tolerance
             assert g.max_distance == pytest.approx(sub.max(), rel=1e-6, abs=1e-9)
             assert g.max_distance_fraction == pytest.approx(g.max_distance / report.rms_norm)
+            assert g.distances[0] == 0.0
+            assert np.allclose(g.distances, dist[g.indices[0], list(g.indices)],
+                               rtol=1e-6, atol=1e-9)
+        if 0 < tolerance <= 0.02:
+            assert {g.indices for g in report.groups} == planted, tolerance
 
 
 def test_tolerance_zero_finds_exact_copies_only():
     X, _ = collection_with_copies(seed=2)
     d = make_decomposition(X, 8)
-    report = find_duplicates(d, tolerance=0.0)
+    report = find_duplicates(d, tolerance=0.0, read_image=reader(X))
     assert [g.indices for g in report.groups] == [(5, 60, 61)]
     assert report.groups[0].max_distance == pytest.approx(0.0, abs=1e-6 * report.rms_norm)
 
 
-def test_distance_is_a_lower_bound_of_the_true_distance_on_a_truncated_model():
+def test_bounds_enclose_the_true_distance_on_a_truncated_model():
     X, _ = collection_with_copies(seed=3)
     d = make_decomposition(X, 4)
     C = X - X.mean(axis=1, keepdims=True)
@@ -102,44 +120,84 @@ def test_distance_is_a_lower_bound_of_the_true_distance_on_a_truncated_model():
     for i, j in rng.integers(0, X.shape[1], size=(50, 2)):
         true = np.linalg.norm(C[:, i] - C[:, j])   # numpy
         assert pair_distance(d, int(i), int(j)) <= true * (1 + 1e-9) + 1e-12
+        lower, upper = pair_bounds(d, int(i), int(j))
+        assert lower <= true * (1 + 1e-9) + 1e-12 <= upper * (1 + 2e-9) + 2e-12
     assert pair_distance(d, 10, 62) == pytest.approx(0.0, abs=3e-3)
 
 
 def test_search_rank_does_not_change_the_result():
     X, planted = collection_with_copies(seed=4)
     d = make_decomposition(X, 10)
-    reports = [find_duplicates(d, tolerance=0.05, rank=r) for r in (0, 1, 3, 10)]
+    reports = [find_duplicates(d, tolerance=0.05, rank=r, read_image=reader(X))
+               for r in (0, 1, 3, 10)]
     for report in reports:
         assert {g.indices for g in report.groups} == planted
     assert reports[0].n_candidates >= reports[-1].n_candidates
     assert [r.rank for r in reports] == [0, 1, 3, 10]
 
 
-def test_equal_weights_and_residual_norms_are_grouped_even_when_images_differ():
-    # The documented limitation: residual parts are compared by norm only.
+def test_equal_weights_and_residual_norms_are_not_grouped_when_images_differ():
+    # Residuals are known by norm only: images 0 and 1 have equal weights and equal residual
+    # norms but residuals along e2 and e3 (true distance sqrt(2)). Their bounds straddle the
+    # limit, so without the pixels the pair is left out; read on the pixels it is refused.
     pixels = 4
     basis = np.eye(pixels, 1, dtype=np.float32)
     weights = np.array([[1.0, 1.0, -2.0]])
-    residual = np.array([1.0, 1.0, 0.0])          # images 0 and 1: residual along e2 and e3
+    residual = np.array([1.0, 1.0, 0.0])
     d = Decomposition(mean=np.zeros(pixels, np.float32), basis=basis,
                       singular_values=np.array([np.sqrt(6.0)]), weights=weights,
                       total_energy=8.0, image_shape=(2, 2, 1), residual=residual, exact=True)
     report = find_duplicates(d, tolerance=0.01)
-    assert [g.indices for g in report.groups] == [(0, 1)]
-    assert pair_distance(d, 0, 1) == 0.0            # while the true distance is sqrt(2)
+    assert report.groups == () and report.n_unsure == 1 and report.n_pairs == 0
+    assert pair_distance(d, 0, 1) == 0.0
+    assert pair_bounds(d, 0, 1) == (0.0, 2.0)
+    images = {0: [1.0, 0.0, 1.0, 0.0], 1: [1.0, 0.0, 0.0, 1.0], 2: [-2.0, 0.0, 0.0, 0.0]}
+    read = find_duplicates(d, tolerance=0.01, read_image=lambda i: np.array(images[i]))
+    assert read.groups == () and read.n_measured == 1 and read.n_unsure == 0
+    # the same pair with equal residual vectors (an exact copy) is confirmed on the pixels
+    images[1] = images[0]
+    copy = find_duplicates(d, tolerance=0.0, read_image=lambda i: np.array(images[i]))
+    assert [g.indices for g in copy.groups] == [(0, 1)]
+    assert copy.groups[0].distances == (0.0, 0.0)
 
 
-def test_chained_group_reports_its_largest_distance():
-    # Points on a line 1.0 apart and a distance limit of 1.01: one chained group whose
-    # largest distance is the end-to-end distance (numpy).
+def test_unreadable_images_leave_their_pairs_out():
+    pixels = 4
+    d = Decomposition(mean=np.zeros(pixels, np.float32), basis=np.eye(pixels, 1, dtype=np.float32),
+                      singular_values=np.array([1.0]), weights=np.array([[1.0, 1.0]]),
+                      total_energy=2.0, image_shape=(2, 2, 1), residual=np.array([1.0, 1.0]),
+                      exact=True)
+
+    def read(i):
+        raise ModescopeError(f"image {i}: the source file is missing")
+    report = find_duplicates(d, tolerance=0.01, read_image=read)
+    assert report.groups == () and report.unreadable == (0, 1) and report.n_unsure == 1
+    with pytest.raises(TypeError, match="read_image must be a callable"):
+        find_duplicates(d, read_image=3)
+
+
+def test_no_chaining_on_a_line_of_images():
+    # Points on a line 1.0 apart and a distance limit of 1.01: neighbours are within it but
+    # images two apart are not, so groups are pairs, never a chain (numpy distances).
     n = 6
     X = np.zeros((2, n))
     X[0] = np.arange(n) * 1.0
     d = make_decomposition(X, 2)
     rms = np.sqrt(d.total_energy / n)
     report = find_duplicates(d, tolerance=1.01 / rms)
-    assert [g.indices for g in report.groups] == [tuple(range(n))]
-    assert report.groups[0].max_distance == pytest.approx(n - 1.0)
+    assert [g.indices for g in report.groups] == [(0, 1), (2, 3), (4, 5)]
+    assert all(g.max_distance == pytest.approx(1.0) for g in report.groups)
+
+
+def test_greedy_clique_starts_from_the_closest_pair():
+    # 0-1 are 0.5 apart, 1-2 0.9, 0-2 1.4 (over the limit 1.0): the group is the closest pair
+    # (0, 1); image 2 is alone (its only neighbour is taken).
+    X = np.array([[0.0, 0.5, 1.4, 10.0, 20.0]])
+    d = make_decomposition(X, 1)
+    rms = np.sqrt(d.total_energy / X.shape[1])
+    report = find_duplicates(d, tolerance=1.0 / rms)
+    assert [g.indices for g in report.groups] == [(0, 1)]
+    assert report.groups[0].distances == pytest.approx((0.0, 0.5))
 
 
 def test_identical_collection_is_one_group():
@@ -147,7 +205,7 @@ def test_identical_collection_is_one_group():
     d = make_decomposition(X, 3)
     report = find_duplicates(d, tolerance=0.0)
     assert [g.indices for g in report.groups] == [(0, 1, 2, 3, 4)]
-    assert report.groups[0].max_distance_fraction == 0.0
+    assert report.groups[0].max_distance_fraction == pytest.approx(0.0, abs=1e-12)
 
 
 def test_validation():
@@ -179,14 +237,52 @@ def test_cli_duplicates_prints_groups(monkeypatch, capsys):
     X, planted = collection_with_copies()
     d = make_decomposition(X, 8, paths=[f"/c/{i}.png" for i in range(X.shape[1])])
     monkeypatch.setattr(cli_duplicates, "load_model", lambda path: d)
+    monkeypatch.setattr(cli_duplicates, "load_analysis_image", lambda dec, i: X[:, i])
     args = _parser().parse_args(["duplicates", "m.npz", "--tolerance", "0.02"])
     assert cli_duplicates.run(args) == 0
     out = capsys.readouterr().out
     assert "2 groups, 5 images" in out
     assert "group 1: 3 images" in out and "group 2: 2 images" in out
-    for i in (5, 60, 61, 10, 62):
-        assert f"  [{i}] /c/{i}.png" in out
+    lines = out.splitlines()
+    for i in (5, 60, 61, 10, 62):         # printed numbers are 1-based
+        assert any(line.split()[:1] == [str(i + 1)] and line.endswith(f"/c/{i}.png")
+                   for line in lines), i
     assert out.rstrip().endswith(cli_duplicates.CAUTION)
+    # without the pixels the truncated model cannot confirm the copies: said, not guessed
+    args = _parser().parse_args(["duplicates", "m.npz", "--tolerance", "0.02", "--bounds-only"])
+    assert cli_duplicates.run(args) == 0
+    out = capsys.readouterr().out
+    assert "No near-duplicate groups found." in out and "left out" in out
+
+
+def test_cli_duplicates_csv(monkeypatch, tmp_path, capsys):
+    import csv as csv_module
+    X, planted = collection_with_copies()
+    src = tmp_path / "5.png"
+    src.write_bytes(b"not really a png")
+    paths = [str(src) if i == 5 else f"/c/{i}.png" for i in range(X.shape[1])]
+    d = make_decomposition(X, 8, paths=paths)
+    monkeypatch.setattr(cli_duplicates, "load_model", lambda path: d)
+    monkeypatch.setattr(cli_duplicates, "load_analysis_image", lambda dec, i: X[:, i])
+    out_csv = tmp_path / "groups.csv"
+    argv = ["duplicates", "m.npz", "--tolerance", "0.02", "--csv", str(out_csv)]
+    assert cli_duplicates.run(_parser().parse_args(argv)) == 0
+    assert f"CSV written: {out_csv}" in capsys.readouterr().out
+    with open(out_csv, newline="", encoding="utf-8") as fh:
+        rows = list(csv_module.reader(fh))
+    assert rows[0] == ["group", "number", "path", "distance"]
+    assert [(r[0], r[1]) for r in rows[1:]] == [("1", "6"), ("1", "61"), ("1", "62"),
+                                               ("2", "11"), ("2", "63")]
+    assert rows[1][2] == str(src) and rows[4][2] == "/c/10.png"
+    C = X - X.mean(axis=1, keepdims=True)
+    assert float(rows[1][3]) == 0.0
+    assert float(rows[5][3]) == pytest.approx(np.linalg.norm(C[:, 62] - C[:, 10]), rel=1e-9)
+    # an existing file needs --overwrite; a source image is never replaced
+    assert cli_duplicates.run(_parser().parse_args(argv)) == 1
+    assert "already exists" in capsys.readouterr().err
+    argv_src = ["duplicates", "m.npz", "--csv", str(src), "--overwrite"]
+    assert cli_duplicates.run(_parser().parse_args(argv_src)) == 1
+    assert src.read_bytes() == b"not really a png"
 
 
 def test_cli_duplicates_no_groups_and_errors(monkeypatch, capsys):
@@ -209,8 +305,9 @@ def test_cli_duplicates_through_saved_model(tmp_path, capsys):
     from modescope.app.cli.main import main
     from modescope.core.output.model_file import save_model
     X, planted = collection_with_copies(seed=6)
-    d = make_decomposition(X, 8, paths=[f"/c/{i}.png" for i in range(X.shape[1])])
+    # every mode kept: no residual, so the bounds decide and no source file is read
+    d = make_decomposition(X, X.shape[1], paths=[f"/c/{i}.png" for i in range(X.shape[1])])
     model = save_model(tmp_path / "m.npz", d)
-    assert main(["duplicates", str(model)]) == 0
+    assert main(["duplicates", str(model), "--tolerance", "0.02"]) == 0
     out = capsys.readouterr().out
     assert "2 groups, 5 images" in out
