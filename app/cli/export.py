@@ -1,10 +1,13 @@
 """The ``export`` subcommand: write previews, basis images, tables and a compact model.
 
-``modescope export MODEL.npz --rank K --out DIR [--what previews,basis,sheet,weights,spectrum,
+``modescope export MODEL.npz [--rank K] --out DIR [--what previews,basis,sheet,weights,spectrum,
 quality,model] [--format png|jpg|webp|tiff] [--quality Q] [--images all|flagged|LIST]
 [--level 0.99] [--upsample] [--float16] [--overwrite] [--allow-source-folder]``
 
-``LIST`` is a comma list of 0-based image indices and ranges (``0,3,10-19``) or the name of a
+Without ``--rank`` the default rank of every front end is used
+(:func:`modescope.core.review.rank.default_rank`); the rank used and why is printed first.
+``LIST`` is a comma list of 1-based image numbers and ranges (``1,4,10-19``; image 1 is the
+model's first image, as in the desktop program and ``outliers``) or the name of a
 text file holding one source path per line (blank lines and lines starting with ``#`` are
 skipped; every page of a multi-page file is taken).
 
@@ -24,7 +27,8 @@ import re
 import sys
 from pathlib import Path
 
-from modescope.app.cli.common import EXIT_INTERRUPTED, CountProgress, InterruptFlag
+from modescope.app.cli.common import (EXIT_INTERRUPTED, CountProgress, InterruptFlag,
+                                      resolve_rank)
 from modescope.core.errors import ModescopeError
 
 __all__ = ["register", "run", "parse_image_list"]
@@ -55,8 +59,10 @@ def register(subparsers) -> argparse.ArgumentParser:
             "truncated to rank K into a folder. Every file is written under a temporary name "
             "and renamed when complete; existing files are never replaced without --overwrite."))
     p.add_argument("model", metavar="MODEL.npz", help="model file written by 'modescope analyze'")
-    p.add_argument("--rank", type=int, required=True, metavar="K",
-                   help="number of basis images used (1 to the model's rank)")
+    p.add_argument("--rank", type=int, default=None, metavar="K",
+                   help="number of basis images used (1 to the model's rank; default: the "
+                        "smallest rank capturing 95%% of the energy, or all in the model when "
+                        "they capture less)")
     p.add_argument("--out", required=True, metavar="DIR",
                    help="destination folder (created when missing)")
     p.add_argument("--what", default=",".join(_WHAT), metavar="PARTS",
@@ -68,8 +74,9 @@ def register(subparsers) -> argparse.ArgumentParser:
                    help="JPEG/WebP quality 1-100 (default 90)")
     p.add_argument("--images", default="all", metavar="all|flagged|LIST",
                    help="images for previews and per-image tables: all (default), flagged "
-                        "(outliers at --level), a comma list of 0-based indices and ranges "
-                        "such as 0,3,10-19, or a text file of source paths")
+                        "(outliers at --level), a comma list of 1-based image numbers and "
+                        "ranges such as 1,4,10-19 (as the desktop program and 'outliers' "
+                        "number them), or a text file of source paths")
     p.add_argument("--level", type=float, default=0.99, metavar="P",
                    help="confidence level of the outlier limits for --images flagged "
                         "(default 0.99)")
@@ -90,25 +97,27 @@ def register(subparsers) -> argparse.ArgumentParser:
 
 
 def parse_image_list(text: str, decomposition) -> list[int]:
-    """Turn a ``--images`` LIST into image indices.
+    """Turn a ``--images`` LIST of 1-based image numbers into 0-based image indices.
 
     Parameters
     ----------
     text : str
-        A comma list of 0-based indices and inclusive ranges (``"0,3,10-19"``), or the name of
-        an existing text file with one source path per line.
+        A comma list of 1-based image numbers and inclusive ranges (``"1,4,10-19"``; number
+        ``n`` is column ``n - 1``), or the name of an existing text file with one source path
+        per line.
     decomposition : Decomposition
         The model the indices refer to.
 
     Returns
     -------
     list of int
-        Indices in the order given, duplicates removed.
+        0-based indices in the order given, duplicates removed (``"1-3"`` gives
+        ``[0, 1, 2]``).
 
     Raises
     ------
     ValueError
-        If an entry is not an index or range, is out of range, or a path of the file is not a
+        If an entry is not a number or range, is out of 1..images, or a path of the file is not a
         source of the model (the message names the entries).
     """
     m = decomposition.n_images
@@ -141,16 +150,16 @@ def parse_image_list(text: str, decomposition) -> list[int]:
         match = _RANGE_RE.match(part)
         if not match:
             raise ValueError(f"--images must be all, flagged, an existing file of paths, or a "
-                             f"comma list of indices and ranges such as 0,3,10-19; "
+                             f"comma list of image numbers and ranges such as 1,4,10-19; "
                              f"{part.strip()!r} is none of these")
         lo = int(match.group(1))
         hi = int(match.group(2)) if match.group(2) is not None else lo
         if hi < lo:
             raise ValueError(f"--images range {part.strip()!r} runs backwards")
-        if hi >= m:
-            raise ValueError(f"--images {part.strip()!r}: indices must be 0..{m - 1} for this "
-                             f"model of {m} images")
-        out.extend(range(lo, hi + 1))
+        if lo < 1 or hi > m:
+            raise ValueError(f"--images {part.strip()!r}: image numbers must be 1..{m} for "
+                             f"this model of {m} images (image 1 is the first)")
+        out.extend(range(lo - 1, hi))
     if not out:
         raise ValueError(f"--images {text!r} names no image")
     return list(dict.fromkeys(out))
@@ -180,6 +189,11 @@ def run(args: argparse.Namespace) -> int:
     except ModescopeError as exc:
         print(f"modescope export: {exc}", file=err)
         return EXIT_FAILED
+    if args.rank is not None and not 1 <= args.rank <= d.rank:
+        print(f"modescope export: --rank must be 1..{d.rank} (the model has {d.rank} basis "
+              f"images), got {args.rank}", file=err)
+        return EXIT_USAGE
+    rank, rank_line = resolve_rank(args.rank, d)
     images = args.images
     if images not in ("all", "flagged"):
         try:
@@ -197,7 +211,7 @@ def run(args: argparse.Namespace) -> int:
             return EXIT_FAILED
     try:
         options = ExportOptions(
-            rank=args.rank, what=args.what, image_format=args.image_format,
+            rank=rank, what=args.what, image_format=args.image_format,
             quality=args.quality, images=images, level=args.level, upsample=args.upsample,
             float16=args.float16, sheet_count=args.sheet_count, overwrite=args.overwrite,
             allow_source_folder=args.allow_source_folder)
@@ -209,6 +223,7 @@ def run(args: argparse.Namespace) -> int:
     except (TypeError, ValueError) as exc:
         print(f"modescope export: {exc}", file=err)
         return EXIT_USAGE
+    print(rank_line, flush=True)
     progress = None if args.quiet else CountProgress(err, "export", "files")
     try:
         with InterruptFlag("export: stopping after the current file (Ctrl-C again to stop "

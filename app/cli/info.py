@@ -9,7 +9,7 @@ from modescope.app.cli.common import EXIT_OK, EXIT_UNUSABLE, positive_int
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import load_model
 from modescope.core.review.accuracy import describe_accuracy
-from modescope.core.review.rank import energy_rank, gavish_donoho
+from modescope.core.review.rank import default_rank, energy_rank, gavish_donoho
 
 __all__ = ["register", "run"]
 
@@ -61,7 +61,10 @@ def run(args: argparse.Namespace) -> int:
         print(f"  {r + 1:4d}  {d.singular_values[r]:14.6g}  {bound:>15}  {100 * shares[r]:6.2f}%  "
               f"{100 * cum[r]:9.2f}%")
     if d.rank:
-        print(f"suggested rank: {energy_rank(d, 0.9).describe()}", end="")
+        chosen, reason = default_rank(d)
+        print(f"suggested rank: {chosen}, {reason} (the default of the desktop program and of "
+              "every command's --rank)")
+        print(f"other rules:    {energy_rank(d, 0.9).describe()}", end="")
         gd = gavish_donoho(d)
         print(f"; {gd.rank} by the Gavish-Donoho hard threshold" if gd.rank is not None
               else f"; Gavish-Donoho: not applicable ({gd.note})")

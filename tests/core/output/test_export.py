@@ -280,7 +280,7 @@ def run_cli(argv):
 def test_cli_export(tmp_path, analysed, capsys):
     d, model, src = analysed
     out = tmp_path / "cli_out"
-    code = run_cli([str(model), "--rank", "2", "--out", str(out), "--images", "0,3-4",
+    code = run_cli([str(model), "--rank", "2", "--out", str(out), "--images", "1,4-5",
                     "--what", "previews,weights,spectrum,model", "--format", "tiff",
                     "--float16"])
     captured = capsys.readouterr()
@@ -293,7 +293,7 @@ def test_cli_export(tmp_path, analysed, capsys):
     assert [r[0] for r in weights[1:]] == [d.paths[0], d.paths[3], d.paths[4]]
     # again without --overwrite: refused, nothing changed
     stamp = {n: (out / n).stat().st_mtime_ns for n in names}
-    assert run_cli([str(model), "--rank", "2", "--out", str(out), "--images", "0,3-4",
+    assert run_cli([str(model), "--rank", "2", "--out", str(out), "--images", "1,4-5",
                     "--what", "previews,weights,spectrum,model", "--format", "tiff"]) == 1
     assert "already exist" in capsys.readouterr().err
     assert {n: (out / n).stat().st_mtime_ns for n in listing(out)} == stamp
@@ -307,7 +307,7 @@ def test_cli_export(tmp_path, analysed, capsys):
                     "--what", "previews", "--allow-source-folder"]) == 0
     assert len([n for n in listing(src) if n.endswith("_r1.png")]) == 2
     # usage errors
-    assert run_cli([str(model), "--rank", "2", "--out", str(out), "--images", "0,x"]) == 2
+    assert run_cli([str(model), "--rank", "2", "--out", str(out), "--images", "1,x"]) == 2
     assert run_cli([str(model), "--rank", "9", "--out", str(tmp_path / "o2")]) == 2
     assert run_cli([str(model), "--rank", "2", "--out", str(out), "--what", "nothing"]) == 2
     assert run_cli([str(tmp_path / "missing.npz"), "--rank", "2", "--out", str(out)]) == 1
@@ -316,9 +316,9 @@ def test_cli_export(tmp_path, analysed, capsys):
 def test_cli_flagged_and_parse_list(tmp_path, analysed):
     from modescope.app.cli.export import parse_image_list
     d, model, src = analysed
-    assert parse_image_list("5,1-3,2", d) == [5, 1, 2, 3]
-    with pytest.raises(ValueError, match="0..11"):
-        parse_image_list("12", d)
+    assert parse_image_list("6,2-4,3", d) == [5, 1, 2, 3]     # 1-based numbers in, 0-based out
+    with pytest.raises(ValueError, match="1..12"):
+        parse_image_list("13", d)
     lst = tmp_path / "l.txt"
     lst.write_text("/not/a/source.png\n")
     with pytest.raises(ValueError, match="not sources"):

@@ -214,3 +214,43 @@ def test_gavish_donoho_not_applicable_cases():
     assert e.rank is None and "exactly low-rank" in e.note
     with pytest.raises(TypeError, match="decomposition must be a Decomposition"):
         gavish_donoho(None)
+
+
+# ----- the default rank ----------------------------------------------------------------------
+
+def test_default_rank_is_the_95_percent_rank_whatever_k():
+    from modescope.core.review.rank import DEFAULT_ENERGY_SHARE, DefaultRank, default_rank
+    assert DEFAULT_ENERGY_SHARE == 0.95
+    rng = np.random.default_rng(5)
+    x = rng.normal(size=(30, 60)) * np.geomspace(10, 0.1, 30)[:, None]
+    c = x - x.mean(axis=1, keepdims=True)
+    s = np.linalg.svd(c, compute_uv=False)                      # LAPACK reference
+    cum = np.cumsum(s ** 2) / np.sum(s ** 2)
+    expect = int(np.searchsorted(cum, 0.95) + 1)
+    assert 1 < expect < 10
+    for k in (expect, 10, 29):                                  # the same rank for any k >= it
+        found = default_rank(decomposition_of(x, k))
+        assert isinstance(found, DefaultRank)
+        rank, reason = found
+        assert rank == expect
+        assert reason == (f"the smallest rank capturing 95% of the energy ({expect} modes "
+                          f"capture {100 * cum[expect - 1]:.1f}%)")
+    # fewer modes than that: all kept modes, and the reason says they fall short
+    short = default_rank(decomposition_of(x, expect - 1))
+    assert short.rank == expect - 1
+    assert short.reason == (f"all {expect - 1} modes of the model: together they capture "
+                            f"{100 * cum[expect - 2]:.1f}% of the energy, less than 95%")
+
+
+def test_default_rank_edge_cases():
+    from modescope.core.review.rank import default_rank
+    # one dominant mode: "1 mode captures"
+    x = np.outer(np.arange(8.0), np.linspace(-1, 1, 20)) + 1e-3 * np.random.default_rng(0) \
+        .normal(size=(8, 20))
+    one = default_rank(decomposition_of(x, 5))
+    assert one.rank == 1 and "(1 mode captures 100.0%)" in one.reason
+    # no mode at all: rank 0
+    flat = decomposition_of(np.ones((8, 5)), 0)
+    assert default_rank(flat) == (0, "the model has no basis image (the images do not vary)")
+    with pytest.raises(TypeError, match="decomposition must be a Decomposition"):
+        default_rank("model.npz")
