@@ -480,6 +480,6 @@ def test_sample_readme_lists_every_planted_frame():
     for p, row in zip(problems, rows):
         cells = [c.strip() for c in row.strip("|").split("|")]
         assert cells[0] == f"`{demo.frame_name(p.index, 240)}`"
-        assert cells[1] == str(p.index) and cells[2] == p.kind
+        assert cells[1] == str(p.index + 1) and cells[2] == p.kind    # 1-based image number
         assert cells[3] == p.description
     assert "seed 7" in text and "96 x 128" in text and "--overwrite" in text
