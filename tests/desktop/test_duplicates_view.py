@@ -43,8 +43,9 @@ def dec(make_decomposition, images):
 
 
 @pytest.fixture
-def view(qtbot, state):
-    v = DuplicatesView(state)
+def view(qtbot, state, images):
+    # the images as the analysis read them (the paths are invented, so no file is read)
+    v = DuplicatesView(state, load_image=lambda decomposition, i: images[i])
     qtbot.addWidget(v)
     v.resize(420, 500)
     v.show()
@@ -87,13 +88,17 @@ def _tree_groups(view) -> list[tuple[int, ...]]:
 
 
 def test_planted_duplicates_are_listed(qtbot, view, images):
-    assert view.tolerance_spin.value() == DEFAULT_TOLERANCE == 0.02
+    assert view.tolerance_spin.value() == DEFAULT_TOLERANCE == 0.01
     assert "fraction of the RMS image norm" in view.tolerance_spin.toolTip() == TOLERANCE_TIP
     report = _find(qtbot, view)
     expected = _pixel_groups(images, DEFAULT_TOLERANCE)
     assert expected == [(2, 7, 11), (3, 14), (5, 13)]        # the planted copies
     assert [g.indices for g in report.groups] == expected
     assert _tree_groups(view) == expected
+    x = images.reshape(N, -1).astype(np.float64)
+    limit = (DEFAULT_TOLERANCE + 1e-6) * report.rms_norm
+    for g in report.groups:                                   # every pair within (numpy)
+        assert all(np.linalg.norm(x[i] - x[j]) <= limit for i in g.indices for j in g.indices)
     first = _groups(view)[0]
     share = f"{100 * report.groups[0].max_distance_fraction:.2f} %"
     assert first.text(0) == f"1. 3 images, up to {share}"
@@ -194,7 +199,7 @@ def test_result_of_a_replaced_analysis_is_dropped(qtbot, view, state, dec, make_
 def test_search_failure_is_a_message(qtbot, view, monkeypatch):
     import modescope.app.desktop.views.duplicates as dup
 
-    def broken(decomposition, tolerance, rank):
+    def broken(decomposition, tolerance, rank, **options):
         raise MemoryError()
 
     monkeypatch.setattr(dup, "find_duplicates", broken)
@@ -213,10 +218,52 @@ def test_search_runs_off_the_gui_thread(qtbot, view, monkeypatch):
     where = []
     real = dup.find_duplicates
 
-    def recording(*args):
+    def recording(*args, **options):
         where.append(threading.current_thread() is threading.main_thread())
-        return real(*args)
+        return real(*args, **options)
 
     monkeypatch.setattr(dup, "find_duplicates", recording)
     _find(qtbot, view)
     assert where == [False]
+
+
+def test_group_strip_shows_thumbnails_and_differences(qtbot, view, state, images):
+    report = _find(qtbot, view)
+    # before any image is picked the strip shows the first group
+    assert [t.index for t in view.strip.tiles] == [2, 7, 11]
+    assert [t.caption.text() for t in view.strip.tiles] == ["image 3\nfirst",
+                                                            "image 8\nΔ 0.00 %",
+                                                            "image 12\nΔ 0.00 %"]
+    state.set_selected(14)                                     # the near copy of image 3
+    tiles = view.strip.tiles
+    assert [t.index for t in tiles] == [3, 14]
+    x = images.reshape(N, -1).astype(np.float64)
+    true = np.linalg.norm(x[14] - x[3]) / report.rms_norm     # numpy
+    shown = float(tiles[1].caption.text().split()[-2])
+    assert shown == pytest.approx(100 * true, abs=0.006)
+    assert "image 15: /data/tray/frame_14.png" in tiles[1].toolTip()
+    # the files do not exist: the pictures come from the images as the analysis read them
+    qtbot.waitUntil(lambda: all(t.picture.pixmap() is not None
+                                and not t.picture.pixmap().isNull() for t in tiles),
+                    timeout=10000)
+    size = tiles[0].picture.pixmap().size()                    # 12 x 10 enlarged to fit 96
+    assert (size.width(), size.height()) == (96, 80)
+    state.set_selected(0)                                      # in no group
+    assert view.strip.tiles == []
+
+
+def test_pairs_left_out_when_images_cannot_be_read(qtbot, state, dec):
+    from modescope.core.errors import ModescopeError
+
+    def unreadable(decomposition, i):
+        raise ModescopeError(f"image {i}: missing")
+    v = DuplicatesView(state, load_image=unreadable)
+    qtbot.addWidget(v)
+    try:
+        with qtbot.waitSignal(v.reportReady, timeout=10000) as blocker:
+            assert v.find()
+        report = blocker.args[0]
+        # the truncated model's residuals leave every planted pair undecided
+        assert report.groups == () and report.n_unsure >= 4
+    finally:
+        v.shutdown()
