@@ -25,7 +25,7 @@ from __future__ import annotations
 
 from typing import Any, Callable
 
-from PySide6.QtCore import Qt
+from PySide6.QtCore import QEvent, Qt
 from PySide6.QtGui import QCloseEvent
 from PySide6.QtWidgets import QDockWidget, QMainWindow, QMessageBox, QWidget
 
@@ -42,6 +42,7 @@ from modescope.app.desktop.views.spectrum import SpectrumView
 from modescope.app.desktop.views.weights import WeightsView
 from modescope.app.desktop.window_docks import DockLayoutMixin
 from modescope.app.desktop.window_files import FilesMixin, sample_images_dir
+from modescope.app.desktop.window_help import fill_missing_tooltips
 from modescope.app.desktop.window_menus import CAUTIONS, MenusMixin, app_version
 from modescope.app.desktop.window_run import RunControlMixin
 from modescope.app.desktop.window_status import StatusBarMixin, memory_in_use
@@ -101,6 +102,8 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self._bottom_split = False
         self._closing = False
         self._previous = None       # (state snapshot, file, title) shown before the current run
+        self.guide_dialog = None       # the Help dialogs, made on first use
+        self.shortcuts_dialog = None
         self._installing = False    # True while a run's result is given to the state
         self._user_picked = False   # an image was selected during the current run
 
@@ -125,6 +128,12 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self._default_state = self.saveState()
         self._restore_window()
         self._update_status()
+        fill_missing_tooltips(self)   # Qt's own dock, tab and table buttons
+
+    def event(self, event: QEvent) -> bool:  # noqa: D102 - Qt name
+        if event.type() == QEvent.Type.ChildPolished and isinstance(event.child(), QWidget):
+            fill_missing_tooltips(event.child())   # a tab bar made when docks are tabbed
+        return super().event(event)
 
     def _wire(self) -> None:
         self.ingest.startRequested.connect(self.start_analysis)

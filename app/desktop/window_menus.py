@@ -1,4 +1,5 @@
-"""The main window's actions and menus, the keys that step through images and ranks, and About.
+"""The main window's actions and menus, the keys that step through images and ranks, and Help
+(the guide and the shortcut list of :mod:`~modescope.app.desktop.window_help`, About).
 
 :class:`MenusMixin` is one part of :class:`~modescope.app.desktop.main_window.MainWindow`. Every
 action is also added to the window itself, so its shortcut works whichever dock has the focus.
@@ -78,6 +79,11 @@ class MenusMixin:
         self.rank_down_action = action("Rank &down", self.rank_down, ["-", "Ctrl+Down"],
                                        "Use one basis image fewer in the reconstruction")
         self.about_action = action("&About Modescope", self.show_about)
+        self.guide_action = action("&How to read this", self.show_guide, "F1",
+                                   "What basis images, weights, the residual, the rank and the "
+                                   "outlier limits mean")
+        self.shortcuts_action = action("&Keyboard shortcuts", self.show_shortcuts, "Ctrl+/",
+                                       "List every keyboard shortcut of the window")
         self.undo_marks_action = action("&Undo mark", self.undo_marks, "Ctrl+Z",
                                         "Take back the last change of review marks")
         self.redo_marks_action = action("&Redo mark", self.redo_marks, "Ctrl+Shift+Z",
@@ -126,6 +132,9 @@ class MenusMixin:
                     self.addAction(a)   # window-level shortcut (K, X, U)
 
         help_menu = bar.addMenu("&Help")
+        help_menu.addAction(self.guide_action)
+        help_menu.addAction(self.shortcuts_action)
+        help_menu.addSeparator()
         help_menu.addAction(self.about_action)
         self._rebuild_recent_menu()
 
@@ -187,6 +196,27 @@ class MenusMixin:
                 "(a mean-centred truncated SVD computed while the images stream in), and shows "
                 "basis images, weights, reconstructions and residuals.</p>"
                 f"<p><b>Please note</b></p><ul>{cautions}</ul>")
+
+    @Slot()
+    def show_guide(self) -> None:
+        """Show the short guide "How to read this" (made on first use)."""
+        from modescope.app.desktop.window_help import GuideDialog
+
+        if getattr(self, "guide_dialog", None) is None:
+            self.guide_dialog = GuideDialog(self)
+        self.guide_dialog.show()
+        self.guide_dialog.raise_()
+
+    @Slot()
+    def show_shortcuts(self) -> None:
+        """Show the keyboard shortcuts, read from the window's actions (made on first use)."""
+        from modescope.app.desktop.window_help import ShortcutsDialog
+
+        if getattr(self, "shortcuts_dialog", None) is None:
+            self.shortcuts_dialog = ShortcutsDialog(self)
+        self.shortcuts_dialog.refresh()
+        self.shortcuts_dialog.show()
+        self.shortcuts_dialog.raise_()
 
     @Slot()
     def show_about(self) -> None:

@@ -183,6 +183,8 @@ class IngestPane(QWidget):
         self.source_list.setAcceptDrops(False)   # the pane takes the drops
         self.add_folder_button = QPushButton("Add folder…", sources_box)
         self.add_files_button = QPushButton("Add files…", sources_box)
+        self.add_folder_button.setToolTip("Add a folder of images to the sources (Ctrl+D)")
+        self.add_files_button.setToolTip("Add image files to the sources (Ctrl+Shift+O)")
         self.remove_button = QPushButton("Remove", sources_box)
         self.remove_button.setToolTip("Remove the selected sources")
         buttons = QHBoxLayout()
@@ -205,11 +207,15 @@ class IngestPane(QWidget):
         self.color_combo = QComboBox(options_box)
         self.color_combo.addItem("Gray (one channel)", "gray")
         self.color_combo.addItem("RGB (three channels)", "rgb")
+        self.color_combo.setToolTip("Analyse the images as gray values (one channel) or as "
+                                    "colour (three channels, three times the memory)")
         self.downscale_spin = QSpinBox(options_box)
         self.downscale_spin.setRange(1, 32)
         self.downscale_spin.setPrefix("1/")
         self.downscale_spin.setToolTip("Average blocks of f × f pixels before the analysis")
         self.recursive_check = QCheckBox("Include subfolders", options_box)
+        self.recursive_check.setToolTip("Also look for images in the folders inside each "
+                                        "source folder")
         self.resize_check = QCheckBox("Resize images of another size", options_box)
         self.resize_check.setToolTip("Otherwise images whose size differs from the most common "
                                      "size are skipped")
@@ -238,7 +244,9 @@ class IngestPane(QWidget):
 
         self.start_button = QPushButton("Start analysis", self)
         self.start_button.setDefault(True)
+        self.start_button.setToolTip("Analyse the sources with the options shown (Ctrl+R)")
         self.cancel_button = QPushButton("Cancel", self)
+        self.cancel_button.setToolTip("Stop the analysis and keep the partial result (Esc)")
         run_row = QHBoxLayout()
         run_row.addWidget(self.start_button, 2)
         run_row.addWidget(self.cancel_button, 1)
