@@ -38,6 +38,7 @@ from modescope.app.desktop.views.image_list import ImageListView
 from modescope.app.desktop.views.inspector import Inspector
 from modescope.app.desktop.views.outliers import OutlierView
 from modescope.app.desktop.views.sources import IngestPane
+from modescope.app.desktop.views.sources_of_model import sources_of_paths
 from modescope.app.desktop.views.spectrum import SpectrumView
 from modescope.app.desktop.views.weights import WeightsView
 from modescope.app.desktop.window_docks import DockLayoutMixin
@@ -104,6 +105,7 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self._previous = None       # (state snapshot, file, title) shown before the current run
         self.guide_dialog = None       # the Help dialogs, made on first use
         self.shortcuts_dialog = None
+        self._last_run = None       # (sources, options, only, partial result) of the last run
         self._installing = False    # True while a run's result is given to the state
         self._user_picked = False   # an image was selected during the current run
 
@@ -146,14 +148,36 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self.runner.runningChanged.connect(self._on_running_changed)
         self.state.decompositionChanged.connect(self._update_export_action)
         self.state.decompositionChanged.connect(self._on_state_changed)
+        self.state.decompositionChanged.connect(self._update_finish_action)
         self.state.rankChanged.connect(self._on_state_changed)
         self.state.marksHistoryChanged.connect(self._update_undo_actions)
         self.state.selectedChanged.connect(self._note_pick)
         # ((path, page) pairs not excluded, StoredOptions)
         self.views["outliersDock"].refitRequested.connect(self.refit_analysis)
         self.cancel_action.setEnabled(False)
+        self._update_finish_action()
         self._update_export_action()
         self._update_undo_actions()
+
+    def open_analysis(self, path: str) -> bool:
+        """Open a saved analysis (see ``FilesMixin.open_analysis``) and make the Sources pane
+        describe it: its folders or files (:func:`sources_of_paths`) and its options."""
+        if not super().open_analysis(path):
+            return False
+        self._describe_sources(self.state.decomposition)
+        return True
+
+    def _describe_sources(self, d) -> None:
+        """Show the sources and options of analysis ``d`` in the Sources pane."""
+        from modescope.app.desktop.views.outliers_review import stored_options_of
+
+        if d is None or not d.paths:
+            return
+        try:
+            self.ingest.set_options(stored_options_of(d))
+        except (TypeError, ValueError):
+            pass                               # options unknown: the pane keeps its own
+        self.ingest.set_sources(sources_of_paths(d.paths))
 
     def _show_error(self, title: str, text: str) -> None:
         text = display_text(text)           # a file name may hold bytes Qt cannot show

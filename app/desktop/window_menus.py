@@ -71,6 +71,9 @@ class MenusMixin:
                                    "Analyse the sources with the options shown")
         self.cancel_action = action("&Cancel analysis", self.cancel_analysis, "Esc",
                                     "Stop the analysis and keep the partial result")
+        self.finish_action = action("&Finish the analysis", self.finish_analysis, None,
+                                    "Complete the partial result shown: add the images not "
+                                    "analysed yet and run the final passes")
         self.reset_layout_action = action("&Reset layout", self.reset_layout)
         self.prev_action = action("&Previous image", self.previous_image, ["PgUp", "Ctrl+Left"])
         self.next_action = action("&Next image", self.next_image, ["PgDown", "Ctrl+Right"])
@@ -103,6 +106,7 @@ class MenusMixin:
         file_menu.addSeparator()
         file_menu.addAction(self.start_action)
         file_menu.addAction(self.cancel_action)
+        file_menu.addAction(self.finish_action)
         file_menu.addSeparator()
         file_menu.addAction(self.quit_action)
 

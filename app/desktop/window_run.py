@@ -21,11 +21,53 @@ from modescope.app.desktop.settings import StoredOptions
 from modescope.app.desktop.views.sources import make_analysis_options
 from modescope.app.desktop.window_status import format_seconds
 
-__all__ = ["RunControlMixin", "STAGES"]
+__all__ = ["RunControlMixin", "STAGES", "finishing"]
 
 #: The words of the progress line for the stages of ``pipeline.Progress``.
 STAGES = {"scan": "Reading file headers", "learn": "Learning the basis",
           "score": "Scoring the images"}
+
+
+def finishing(partial):
+    """Return a stand-in for ``pipeline.analyze`` that completes the partial result ``partial``.
+
+    The returned callable takes the arguments the analysis worker gives ``pipeline.analyze``.
+    It runs :func:`modescope.core.engine.pipeline.update_analysis` on ``partial``: the images of
+    the sources not learned yet stream in, then the final passes run over every image (the old
+    ones read again from their files). When every image found was learned before the stop (the
+    run was stopped during its final passes) there is nothing to add, and the whole analysis
+    runs again (:func:`~modescope.core.engine.pipeline.analyze`); so does a refit (``only``),
+    which the update cannot restrict to its listed pages.
+
+    Parameters
+    ----------
+    partial : Decomposition
+        The partial result kept after a cancel (or opened from a file).
+
+    Returns
+    -------
+    callable
+        ``run(sources, options, *, progress=None, cancel=None, on_partial=None, only=None)``.
+    """
+    from modescope.core.decomposition import Decomposition
+
+    if not isinstance(partial, Decomposition):
+        raise TypeError(f"partial must be a Decomposition, got {type(partial).__name__}")
+
+    def run(sources, options, *, progress=None, cancel=None, on_partial=None, only=None):
+        from modescope.core.engine import pipeline
+        from modescope.core.errors import NoUsableImagesError
+
+        kw = dict(progress=progress, cancel=cancel, on_partial=on_partial)
+        if only is None:
+            try:
+                return pipeline.update_analysis(partial, sources, options, **kw)
+            except NoUsableImagesError:
+                pass                       # every image was learned: run the passes again
+        extra = {} if only is None else {"only": only}
+        return pipeline.analyze(sources, options, **kw, **extra)
+
+    return run
 
 
 class RunControlMixin:
@@ -35,7 +77,8 @@ class RunControlMixin:
     ``self.progress_bar``, ``self.progress_label``, ``self.start_action``,
     ``self.cancel_action`` and ``self._show_error``; keeps the start time of the run, whether
     its learning stage has begun, the (sources, options) of a run that scans for the pane,
-    and ``_previous``: what was shown before the run (the state's snapshot, the file and the
+    ``_last_run``: (sources, options, only, the partial result it left) for "Finish the
+    analysis", and ``_previous``: what was shown before the run (the state's snapshot, the file and the
     window title), shown again when the run fails or stops before its first image.
     """
 
@@ -122,6 +165,8 @@ class RunControlMixin:
         self.current_file = None
         self._install(None)
         self._user_picked = False
+        paths = list(run_key[0]) if run_key is not None else list(sources)
+        self._last_run = (paths, analysis_options, only, None)   # for "Finish the analysis"
         self._run_started = time.monotonic()
         self._run_key = run_key
         self._first_learn = True
@@ -131,6 +176,56 @@ class RunControlMixin:
         self.progress_label.setText("Starting…")
         self.progress_bar.show()
         self.progress_label.show()
+
+    def can_finish(self) -> bool:
+        """True when a partial result is shown, no run goes on, and its sources are known."""
+        d = self.state.decomposition
+        return (d is not None and not d.exact and not self.runner.is_running()
+                and self._finish_sources(d) is not None)
+
+    def _finish_sources(self, d):
+        """(sources, AnalysisOptions, only) to finish ``d`` with, or None."""
+        last = getattr(self, "_last_run", None)
+        if last is not None and last[3] is d:
+            return last[:3]
+        if d.paths and "options" in d.metadata:      # a partial result opened from a file
+            from modescope.core.engine.options import AnalysisOptions
+            try:
+                options = AnalysisOptions.from_dict(d.metadata["options"])
+            except (TypeError, ValueError):
+                return None
+            files = list(dict.fromkeys(d.paths))
+            pages = [(p, int(g)) for p, g in zip(d.paths, d.pages)]
+            return files, options, pages
+        return None
+
+    @Slot()
+    def finish_analysis(self) -> bool:
+        """Complete the partial result shown (see :func:`finishing`) in the worker thread.
+
+        Returns
+        -------
+        bool
+            False (with a message in the status bar) when there is nothing to finish.
+        """
+        d = self.state.decomposition
+        if not self.can_finish():
+            self.statusBar().showMessage("There is no partial result to finish.", 5000)
+            return False
+        sources, options, only = self._finish_sources(d)
+        title = self.windowTitle().replace(" (partial result)", "")
+        runner = self.runner
+        saved, runner._analyze = runner._analyze, finishing(d)   # this run only
+        try:
+            self._begin_run(sources, options, title, only=only)
+        finally:
+            runner._analyze = saved
+        self.progress_label.setText("Finishing the analysis…")
+        return True
+
+    @Slot()
+    def _update_finish_action(self, *_args) -> None:
+        self.finish_action.setEnabled(self.can_finish())
 
     @Slot()
     def cancel_analysis(self) -> None:
@@ -149,6 +244,10 @@ class RunControlMixin:
         if not running:
             self.progress_bar.hide()
             self.progress_label.hide()
+            if self.state.decomposition is not None:
+                self.inspector.refresh()       # its title: "in progress" becomes "partial"
+        self._update_status()
+        self._update_finish_action()
 
     @Slot(object)
     def _on_progress(self, p) -> None:
@@ -233,10 +332,17 @@ class RunControlMixin:
             self.ingest.set_problems(result.problems, result.source_set.notes)
         if d is not None:
             self._previous = None
+            if self._last_run is not None:
+                self._last_run = self._last_run[:3] + (d,)    # what finishing it starts from
             self._install(d)
+            title = self.windowTitle()
+            if not title.endswith(" (partial result)"):
+                self.setWindowTitle(f"{title} (partial result)")
             self.statusBar().showMessage(
                 f"Analysis cancelled: the partial result from {counted(d.n_images, 'image')} "
-                "is kept (it can be saved).", 10000)
+                "is kept (it can be saved; File > Finish the analysis completes it).", 10000)
+            self._update_status()
+            self._update_finish_action()
         else:
             self._restore_previous()
             self.statusBar().showMessage("Analysis cancelled before any image was analysed.",

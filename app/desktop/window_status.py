@@ -95,7 +95,8 @@ def format_seconds(seconds: float) -> str:
 class StatusBarMixin:
     """The status bar of the main window (a part of ``MainWindow``, not a widget of its own).
 
-    Uses ``self.state`` and ``self.statusBar()``; makes ``summary_label``, ``progress_label``,
+    Uses ``self.state``, ``self.runner`` (a result that is not final is "in progress" while a
+    run goes on, a "partial result" otherwise) and ``self.statusBar()``; makes ``summary_label``, ``progress_label``,
     ``progress_bar`` and ``memory_label``.
     """
 
@@ -131,14 +132,16 @@ class StatusBarMixin:
         if d is None:
             return "No analysis"
         rows, cols, channels = (tuple(d.image_shape) + (1, 1, 1))[:3]
-        r = self.state.rank
+        r = min(self.state.rank, d.rank)   # the state clamps its rank after it tells of d
         parts = [counted(d.n_images, "image"), f"{rows} × {cols} pixels"
                  + (f" × {channels}" if channels > 1 else ""), f"rank {r} of {d.rank}"]
         if r >= 1:
             parts.append(f"{100.0 * float(d.cumulative_energy()[r - 1]):.1f} % of the "
                          f"variation at rank {r}")
         if not d.exact:
-            parts.append("in progress")
+            running = getattr(self, "runner", None) is not None and self.runner.is_running()
+            parts.append("in progress" if running else
+                         "partial result (File > Finish the analysis completes it)")
         return " · ".join(parts)
 
     def _update_status(self) -> None:

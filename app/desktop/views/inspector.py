@@ -339,7 +339,8 @@ class Inspector(QWidget):
         page = int(d.pages[index])
         if page:
             name += f" (page {page})"
-        status = "" if d.exact else "  — analysis in progress"
+        status = ("" if d.exact else "  — analysis in progress" if self._running
+                  else "  — partial result")
         self.title_label.setText(f"Image {index + 1:,} of {d.n_images:,}: {name}{status}")
         self.title_label.setToolTip(path)
 
