@@ -670,3 +670,13 @@ def test_hovering_a_point_of_the_weights_plane_names_the_image(qtbot, state, gra
                                 f"weight on basis image {a + 1}: 1.25",
                                 f"weight on basis image {b + 1}: -0.5"]
     assert view.point_tip(x=0.0, y=0.0, data=gray.n_images) == ""
+
+
+def test_spectrum_suggests_the_default_rank_first(qtbot, state, gray):
+    # one rule: the pane's first suggestion is core's default rank (the workbench's start)
+    from modescope.core.review.rank import default_rank
+    sp = SpectrumView(state)
+    qtbot.addWidget(sp)
+    rank, _reason = default_rank(gray)
+    qtbot.waitUntil(lambda: sp.energy_label.text() != "energy rank: -", timeout=2000)
+    assert sp.energy_label.text() == f"energy rank: {rank}"

@@ -18,7 +18,7 @@ from PySide6.QtWidgets import (QDoubleSpinBox, QHBoxLayout, QLabel, QPushButton,
                                QWidget)
 
 from modescope.core.review.accuracy import describe_accuracy, model_tolerance
-from modescope.core.review.rank import energy_rank, gavish_donoho
+from modescope.core.review.rank import DEFAULT_ENERGY_SHARE, energy_rank, gavish_donoho
 
 from modescope.app.desktop.imaging import NO_VARIATION
 from modescope.app.words import counted
@@ -102,7 +102,9 @@ class SpectrumView(ThrottledRedraw, QWidget):
         self.threshold.setRange(1.0, 100.0)
         self.threshold.setDecimals(1)
         self.threshold.setSingleStep(1.0)
-        self.threshold.setValue(90.0)
+        # the default rank's own threshold (core.review.rank.default_rank), so the suggestion
+        # shown first is the rank the workbench opened at and the commands use
+        self.threshold.setValue(100.0 * DEFAULT_ENERGY_SHARE)
         self.threshold.setSuffix(" %")
         self.threshold.setToolTip("Energy threshold: the suggested rank is the smallest r whose "
                                   "modes capture at least this share of the total energy.")
