@@ -1,24 +1,37 @@
-"""The inspector's picture parts: an image pane, the residual legend and their layout.
+"""The inspector's picture parts: an image pane, the shared view window, the legend, the layout.
 
-:class:`ImagePane` paints one QImage scaled to fit with a caption and an optional note;
-:class:`ColorLegend` is the strip of the diverging colour map with its value range;
-:class:`PaneArea` lays three panes, the legend and the info text out so that the images are as
-large as the area allows.
+:class:`ImagePane` paints a part of one QImage (its view window, the whole image by default)
+scaled to fit with a caption and an optional note, and reports wheel turns, drags and
+double-clicks; :class:`SharedView` owns the one view window of several panes (zoom about a
+point, pan, fit) so they always show the same part of their images; :class:`ColorLegend` is
+the strip of the diverging colour map with its value range; :class:`PaneArea` lays three panes,
+the legend and the info text out so that the images are as large as the area allows.
 """
 
 from __future__ import annotations
 
-from PySide6.QtCore import QRectF, QSize, Qt, Signal
+from PySide6.QtCore import QObject, QPointF, QRectF, QSize, Qt, Signal
 from PySide6.QtGui import QColor, QImage, QPainter, QPalette
 from PySide6.QtWidgets import QSizePolicy, QWidget
 
 from modescope.app.desktop.imaging import colorbar_qimage
 
-__all__ = ["ImagePane", "ColorLegend", "PaneArea"]
+__all__ = ["ImagePane", "SharedView", "ColorLegend", "PaneArea", "MAX_ZOOM", "WHEEL_STEP"]
+
+#: The largest zoom, relative to the whole image fitted to the pane.
+MAX_ZOOM = 32.0
+
+#: The zoom factor of one wheel notch (120 eighths of a degree); partial notches zoom less.
+WHEEL_STEP = 1.25
 
 
 class ImagePane(QWidget):
-    """Paint one QImage scaled to fit with its aspect ratio kept, or a note when there is none.
+    """Paint a part of one QImage scaled to fit with its aspect ratio kept, or a note.
+
+    The part shown is the view window (:meth:`set_view`, in image pixels; the whole image by
+    default). The pane does not change its window itself: it reports a wheel turn
+    (``zoomRequested``), a drag with the left button (``panRequested``) and a double-click
+    (``fitRequested``) to the one who owns the window (:class:`SharedView`).
 
     Parameters
     ----------
@@ -29,6 +42,13 @@ class ImagePane(QWidget):
 
     #: The pixel under the mouse as (row, column) of the image shown; (-1, -1) when none.
     hovered = Signal(int, int)
+    #: A wheel turn: (factor, x, y) with x, y the image point under the mouse (in pixels,
+    #: fractional); factor > 1 zooms in.
+    zoomRequested = Signal(float, float, float)
+    #: A drag: move the view window by (dx, dy) image pixels.
+    panRequested = Signal(float, float)
+    #: A double-click: show the whole image again.
+    fitRequested = Signal()
 
     def __init__(self, title: str = "", parent: QWidget | None = None):
         super().__init__(parent)
@@ -36,6 +56,8 @@ class ImagePane(QWidget):
         self._title = title
         self._image = QImage()
         self._note = ""
+        self._view: QRectF | None = None     # None: the whole image
+        self._drag: QPointF | None = None    # the last mouse point of a drag in progress
         self.setMinimumSize(96, 96)
         self.setSizePolicy(QSizePolicy.Policy.Expanding, QSizePolicy.Policy.Expanding)
 
@@ -68,31 +90,125 @@ class ImagePane(QWidget):
         self._note = note
         self.update()
 
+    def view_rect(self) -> QRectF:
+        """Return the part of the image shown, in image pixels (x, y, width, height).
+
+        The whole image when no window is set (an empty rectangle when there is no image).
+        """
+        if self._view is not None:
+            return QRectF(self._view)
+        return QRectF(0, 0, self._image.width(), self._image.height())
+
+    def set_view(self, rect: QRectF | None) -> None:
+        """Show the part ``rect`` of the image (image pixels); None shows the whole image.
+
+        Parameters
+        ----------
+        rect : QRectF or None
+            The window, with a positive width and height.
+
+        Raises
+        ------
+        TypeError
+            When ``rect`` is neither a QRectF nor None.
+        ValueError
+            When ``rect`` has no area.
+        """
+        if rect is not None and not isinstance(rect, QRectF):
+            raise TypeError(f"rect must be a QRectF or None, got {type(rect).__name__}")
+        if rect is not None and (rect.width() <= 0 or rect.height() <= 0):
+            raise ValueError(f"rect must have a positive width and height, got "
+                             f"{rect.width()} x {rect.height()}")
+        new = None if rect is None else QRectF(rect)
+        if new != self._view:
+            self._view = new
+            self.update()
+
     def image_rect(self) -> QRectF:
-        """Return where the image is drawn, in widget coordinates."""
+        """Return where the image (its view window) is drawn, in widget coordinates."""
         fm = self.fontMetrics()
         top = fm.height() + 4
         area = QRectF(0, top, self.width(), max(1, self.height() - top))
-        if self._image.isNull():
+        view = self.view_rect()
+        if self._image.isNull() or view.width() <= 0 or view.height() <= 0:
             return area
-        iw, ih = self._image.width(), self._image.height()
+        iw, ih = view.width(), view.height()
         scale = min(area.width() / iw, area.height() / ih)
         w, h = iw * scale, ih * scale
         return QRectF(area.x() + (area.width() - w) / 2, area.y() + (area.height() - h) / 2, w, h)
 
-    def pixel_at(self, x: float, y: float) -> tuple[int, int]:
-        """Return the (row, column) of the image pixel at widget point (x, y); (-1, -1) outside."""
+    def image_point(self, x: float, y: float) -> QPointF | None:
+        """Return the image point (fractional pixels) at widget point (x, y); None outside."""
         rect = self.image_rect()
         if self._image.isNull() or not rect.contains(x, y) or rect.width() <= 0:
+            return None
+        view = self.view_rect()
+        return QPointF(view.x() + (x - rect.x()) / rect.width() * view.width(),
+                       view.y() + (y - rect.y()) / rect.height() * view.height())
+
+    def pixel_at(self, x: float, y: float) -> tuple[int, int]:
+        """Return the (row, column) of the image pixel at widget point (x, y); (-1, -1) outside.
+
+        Follows the view window: zoomed in, a widget point maps to the pixel drawn there.
+        """
+        point = self.image_point(x, y)
+        if point is None:
             return (-1, -1)
-        col = int((x - rect.x()) / rect.width() * self._image.width())
-        row = int((y - rect.y()) / rect.height() * self._image.height())
-        return (min(row, self._image.height() - 1), min(col, self._image.width() - 1))
+        row = max(0, min(int(point.y()), self._image.height() - 1))
+        col = max(0, min(int(point.x()), self._image.width() - 1))
+        return (row, col)
+
+    def mousePressEvent(self, event) -> None:  # noqa: N802 - Qt name
+        if event.button() == Qt.MouseButton.LeftButton and not self._image.isNull():
+            self._drag = event.position()
+            self.setCursor(Qt.CursorShape.ClosedHandCursor)
+            event.accept()
+            return
+        super().mousePressEvent(event)
 
     def mouseMoveEvent(self, event) -> None:  # noqa: N802 - Qt name
         pos = event.position()
+        if self._drag is not None and event.buttons() & Qt.MouseButton.LeftButton:
+            rect, view = self.image_rect(), self.view_rect()
+            if rect.width() > 0 and rect.height() > 0:
+                dx = (pos.x() - self._drag.x()) * view.width() / rect.width()
+                dy = (pos.y() - self._drag.y()) * view.height() / rect.height()
+                if dx or dy:
+                    self.panRequested.emit(-dx, -dy)    # the picture follows the mouse
+            self._drag = pos
         self.hovered.emit(*self.pixel_at(pos.x(), pos.y()))
         super().mouseMoveEvent(event)
+
+    def mouseReleaseEvent(self, event) -> None:  # noqa: N802 - Qt name
+        if event.button() == Qt.MouseButton.LeftButton and self._drag is not None:
+            self._drag = None
+            self.unsetCursor()
+            event.accept()
+            return
+        super().mouseReleaseEvent(event)
+
+    def mouseDoubleClickEvent(self, event) -> None:  # noqa: N802 - Qt name
+        if event.button() == Qt.MouseButton.LeftButton:
+            self.fitRequested.emit()
+            event.accept()
+            return
+        super().mouseDoubleClickEvent(event)
+
+    def wheelEvent(self, event) -> None:  # noqa: N802 - Qt name
+        steps = event.angleDelta().y() / 120.0
+        rect = self.image_rect()
+        if self._image.isNull() or steps == 0 or rect.width() <= 0:
+            super().wheelEvent(event)
+            return
+        pos = event.position()
+        # a point beside the picture zooms about the nearest edge point
+        x = min(max(pos.x(), rect.left()), rect.right())
+        y = min(max(pos.y(), rect.top()), rect.bottom())
+        view = self.view_rect()
+        ix = view.x() + (x - rect.x()) / rect.width() * view.width()
+        iy = view.y() + (y - rect.y()) / rect.height() * view.height()
+        self.zoomRequested.emit(WHEEL_STEP ** steps, ix, iy)
+        event.accept()
 
     def leaveEvent(self, event) -> None:  # noqa: N802 - Qt name
         self.hovered.emit(-1, -1)
@@ -109,9 +225,11 @@ class ImagePane(QWidget):
                        Qt.AlignmentFlag.AlignHCenter | Qt.AlignmentFlag.AlignTop, title)
             rect = self.image_rect()
             if not self._image.isNull():
-                small = rect.width() < self._image.width()
-                p.setRenderHint(QPainter.RenderHint.SmoothPixmapTransform, small)
-                p.drawImage(rect, self._image)
+                view = self.view_rect()
+                # smooth only when shrinking; enlarged, every image pixel is a sharp square
+                p.setRenderHint(QPainter.RenderHint.SmoothPixmapTransform,
+                                rect.width() < view.width())
+                p.drawImage(rect, self._image, view)
             else:
                 p.fillRect(rect, pal.color(QPalette.ColorRole.Base))
             if self._note:
@@ -124,6 +242,131 @@ class ImagePane(QWidget):
                 p.drawText(box, flags, self._note)
         finally:
             p.end()
+
+
+class SharedView(QObject):
+    """The one view window of several image panes of the same size: zoom, pan and fit.
+
+    The window is a rectangle in image pixels with the image's aspect ratio, inside the image;
+    zoom is the image width over the window width (1 shows the whole image, at most
+    :data:`MAX_ZOOM`). Every pane's wheel turn, drag and double-click changes it, and every
+    pane is told the new window, so all show the same part.
+
+    Parameters
+    ----------
+    panes : sequence of ImagePane
+        The panes that share the window.
+    parent : QObject, optional
+
+    Signals
+    -------
+    changed(float)
+        The window changed; the new zoom.
+    """
+
+    changed = Signal(float)
+
+    def __init__(self, panes, parent: QObject | None = None):
+        super().__init__(parent)
+        self._panes = tuple(panes)
+        for pane in self._panes:
+            if not isinstance(pane, ImagePane):
+                raise TypeError(f"panes must be ImagePane widgets, got {type(pane).__name__}")
+            pane.zoomRequested.connect(self.zoom_at)
+            pane.panRequested.connect(self.pan_by)
+            pane.fitRequested.connect(self.fit)
+        self._size = (0, 0)         # image (width, height)
+        self._view: QRectF | None = None
+
+    def image_size(self) -> tuple[int, int]:
+        """Return the (width, height) of the images shown, in pixels ((0, 0) when none)."""
+        return self._size
+
+    def set_image_size(self, width: int, height: int) -> None:
+        """Say the size of the images shown; a new size shows the whole image again.
+
+        Parameters
+        ----------
+        width, height : int
+            In pixels, not negative (0 when no image is shown).
+
+        Raises
+        ------
+        ValueError
+            When a size is negative.
+        """
+        if width < 0 or height < 0:
+            raise ValueError(f"image size must not be negative, got {width} x {height}")
+        size = (int(width), int(height))
+        if size != self._size:
+            self._size = size
+            self.fit()
+
+    def view_rect(self) -> QRectF:
+        """Return the part of the images shown, in image pixels (the whole image at fit)."""
+        if self._view is not None:
+            return QRectF(self._view)
+        return QRectF(0, 0, *self._size)
+
+    def zoom(self) -> float:
+        """Return the image width over the window width (1.0 when the whole image shows)."""
+        view = self.view_rect()
+        return self._size[0] / view.width() if view.width() > 0 else 1.0
+
+    def fit(self) -> None:
+        """Show the whole image."""
+        self._set(None)
+
+    def zoom_at(self, factor: float, x: float, y: float) -> None:
+        """Zoom by ``factor`` keeping image point (x, y) where it is (factor > 1 zooms in).
+
+        The zoom stays between 1 (the whole image) and :data:`MAX_ZOOM`.
+
+        Parameters
+        ----------
+        factor : float
+            Positive; whole or fractional.
+        x, y : float
+            The fixed image point, in pixels.
+
+        Raises
+        ------
+        ValueError
+            When ``factor`` is not a positive number.
+        """
+        if not factor > 0:
+            raise ValueError(f"factor must be a positive number, got {factor}")
+        iw, ih = self._size
+        if iw <= 0 or ih <= 0:
+            return
+        zoom = min(MAX_ZOOM, max(1.0, self.zoom() * factor))
+        if zoom == 1.0:
+            self._set(None)
+            return
+        view = self.view_rect()
+        w, h = iw / zoom, ih / zoom
+        left = x - (x - view.x()) * w / view.width()
+        top = y - (y - view.y()) * h / view.height()
+        self._set(QRectF(left, top, w, h))
+
+    def pan_by(self, dx: float, dy: float) -> None:
+        """Move the window by (dx, dy) image pixels (it stays inside the image)."""
+        if self._view is None:
+            return
+        self._set(self._view.translated(dx, dy))
+
+    def _set(self, view: QRectF | None) -> None:
+        iw, ih = self._size
+        if view is not None:
+            view = QRectF(min(max(view.x(), 0.0), iw - view.width()),
+                          min(max(view.y(), 0.0), ih - view.height()),
+                          view.width(), view.height())
+        if (view is None) == (self._view is None) and (view is None or view == self._view):
+            return
+        self._view = view
+        for pane in self._panes:
+            pane.set_view(view)
+        self.changed.emit(self.zoom())
 
 
 class ColorLegend(QWidget):

@@ -26,6 +26,7 @@ from PySide6.QtWidgets import (
     QCheckBox,
     QHBoxLayout,
     QLabel,
+    QPushButton,
     QSizePolicy,
     QSlider,
     QVBoxLayout,
@@ -40,7 +41,7 @@ from modescope.app.desktop.display import display_name
 from modescope.app.desktop.imaging import (NO_VARIATION, array_to_qimage, signed_to_qimage,
                                            symmetric_limit)
 from modescope.app.desktop.state import AppState
-from modescope.app.desktop.views.image_panes import ColorLegend, ImagePane, PaneArea
+from modescope.app.desktop.views.image_panes import ColorLegend, ImagePane, PaneArea, SharedView
 from modescope.app.desktop.workers.background import BackgroundRunner, plain_message
 
 __all__ = ["ImagePane", "ColorLegend", "Inspector", "RANK_DEBOUNCE_MS"]
@@ -102,6 +103,9 @@ class Inspector(QWidget):
         reconstruction) in the diverging colours, or a note saying why there is none.
     legend : ColorLegend
         The residual's value range.
+    view_window : SharedView
+        The part of the image the three panes show (wheel zooms about the pointed pixel, a
+        left-button drag pans, a double-click or ``fit_button`` shows the whole image).
     """
 
     sourceReady = Signal(int)
@@ -167,6 +171,11 @@ class Inspector(QWidget):
         info_layout.addStretch(1)
         self.pane_area = PaneArea((self.source_pane, self.reconstruction_pane,
                                     self.residual_pane), self.legend, info, self)
+        self.view_window = SharedView((self.source_pane, self.reconstruction_pane,
+                                       self.residual_pane), self)
+        for pane in (self.source_pane, self.reconstruction_pane, self.residual_pane):
+            pane.setWhatsThis("Wheel: zoom about the pixel under the mouse; drag: move; "
+                              "double-click: the whole image (the three panes together)")
 
         self.rank_slider = QSlider(Qt.Orientation.Horizontal, self)
         self.rank_slider.setRange(1, 1)
@@ -180,10 +189,16 @@ class Inspector(QWidget):
         self.stretch_box.setToolTip("Show the image and its reconstruction with the image's "
                                     "1% and 99% levels as black and white (for dark or bright "
                                     "images); the numbers are unchanged")
+        self.fit_button = QPushButton("Fit", self)
+        self.fit_button.setEnabled(False)
+        self.fit_button.setMinimumWidth(self.fontMetrics().horizontalAdvance("Fit (00.0×)") + 24)
+        self.fit_button.setToolTip("Show the whole image again (or double-click a pane); the "
+                                   "mouse wheel over a pane zooms, dragging moves the view")
         slider_row = QHBoxLayout()
         slider_row.addWidget(self.rank_label)
         slider_row.addWidget(self.rank_slider, 1)
         slider_row.addWidget(self.stretch_box)
+        slider_row.addWidget(self.fit_button)
         self.readout_label = QLabel(HOVER_HINT, self)
         self.readout_label.setToolTip("Values at the pixel under the mouse in any of the three "
                                       "panes (rows and columns counted from 1, values in "
@@ -205,6 +220,8 @@ class Inspector(QWidget):
         self._state.rankChanged.connect(self._on_rank)
         self.rank_slider.valueChanged.connect(self._on_slider)
         self.stretch_box.toggled.connect(self.refresh)
+        self.fit_button.clicked.connect(self.view_window.fit)
+        self.view_window.changed.connect(self._on_zoom)
         for pane in (self.source_pane, self.reconstruction_pane, self.residual_pane):
             pane.hovered.connect(self._on_hover)
 
@@ -233,6 +250,11 @@ class Inspector(QWidget):
     @Slot()
     def _push_rank(self) -> None:
         self._state.set_rank(self.rank_slider.value())
+
+    @Slot(float)
+    def _on_zoom(self, zoom: float) -> None:
+        self.fit_button.setEnabled(zoom > 1.0)
+        self.fit_button.setText("Fit" if zoom <= 1.0 else f"Fit ({zoom:.3g}×)")
 
     # ----- drawing -----------------------------------------------------------------------------
     def set_running(self, running: bool) -> None:
@@ -305,12 +327,15 @@ class Inspector(QWidget):
         if live is None or live.decomposition is not d or live.index != index:
             live = self._live = LiveReconstruction(d, index)
         self._show_images(live, rank)
+        rows, cols = (tuple(d.image_shape) + (1, 1))[:2]
+        self.view_window.set_image_size(cols, rows)      # a new size shows the whole image
         self.pane_area.rearrange()
         self._show_texts(d, index, rank)
 
     def _show_nothing(self, d) -> None:
         """No image to show: say why (no analysis, no variation, nothing selected)."""
         self._shown = None
+        self.view_window.set_image_size(0, 0)
         self.readout_label.setText(HOVER_HINT)
         if d is None:
             title = "Analysis starting…" if self._running else "No analysis yet"
