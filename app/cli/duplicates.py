@@ -15,6 +15,7 @@ import os
 
 from modescope.app.cli.common import check_rank, error, fmt, label, non_negative_int, tolerance
 from modescope.app.cli.writing import check_output
+from modescope.app.words import counted
 from modescope.core.engine.pipeline import load_analysis_image
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import load_model
@@ -56,16 +57,17 @@ def register(subparsers) -> None:
 
 
 def _print_report(args, decomposition, report) -> None:
-    print(f"Model {args.model}: {decomposition.n_images} images; tolerance "
+    print(f"Model {args.model}: {counted(decomposition.n_images, 'image')}; tolerance "
           f"{report.tolerance:g} of the RMS image norm {fmt(report.rms_norm)} "
           f"(distance <= {fmt(report.threshold)})")
     if not report.groups:
         print("No near-duplicate groups found.")
     else:
-        print(f"{len(report.groups)} groups, {report.n_duplicates} images "
+        print(f"{counted(len(report.groups), 'group')}, "
+              f"{counted(report.n_duplicates, 'image')} "
               "(numbers from 1; distance to the group's first image):")
         for g, group in enumerate(report.groups, start=1):
-            print(f"group {g}: {group.size} images, largest distance "
+            print(f"group {g}: {counted(group.size, 'image')}, largest distance "
                   f"{fmt(group.max_distance)} ({group.max_distance_fraction:.3g} of the RMS "
                   "norm)")
             width = len(str(max(group.indices) + 1))
@@ -74,12 +76,12 @@ def _print_report(args, decomposition, report) -> None:
                 name = label(path or f"image {index + 1}", page)
                 print(f"  {index + 1:>{width}}  {fmt(dist):>10}  {name}")
     if report.n_measured:
-        print(f"{report.n_measured} pairs measured on the source images.")
+        print(f"{counted(report.n_measured, 'pair')} measured on the source images.")
     if report.n_unsure:
         why = ("--bounds-only" if args.bounds_only
-               else f"{len(report.unreadable)} images could not be read")
-        print(f"{report.n_unsure} pairs left out: their bounds straddle the tolerance and "
-              f"their images were not compared ({why}).")
+               else f"{counted(len(report.unreadable), 'image')} could not be read")
+        print(f"{counted(report.n_unsure, 'pair')} left out: their bounds straddle the "
+              f"tolerance and their images were not compared ({why}).")
 
 
 def run(args: argparse.Namespace) -> int:

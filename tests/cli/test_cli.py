@@ -54,10 +54,14 @@ def test_info_lists_energy_per_rank(folder, tmp_path, capsys):
     assert main(["info", str(out)]) == 0
     text = capsys.readouterr().out
     d = load_model(out)
-    assert "images:       30" in text and "10 rows x 12 cols, gray" in text
+    assert "images:       30 images" in text and "10 rows x 12 cols, gray" in text
     cum = d.cumulative_energy()
+    lines = text.splitlines()
+    top = lines.index("  rank  singular value  certified error  share %  cumulative %")
     for r in range(5):
-        assert f"{100 * cum[r]:9.2f}%" in text
+        # every number right-aligned under its header: the cumulative share ends the line
+        assert lines[top + 1 + r].endswith(f"  {100 * cum[r]:12.2f}")
+        assert len(lines[top + 1 + r]) == len(lines[top])
 
 
 def test_exit_codes(tmp_path, capsys):
