@@ -1,4 +1,5 @@
-"""The main window's status bar: the analysis summary, the run's progress and the memory in use.
+"""The main window's status bar: the analysis summary, the size of the selection, the run's
+progress and the memory in use.
 
 :class:`StatusBarMixin` is one part of :class:`~modescope.app.desktop.main_window.MainWindow`;
 it reads ``self.state`` and fills the status bar. The number formatting shared with the run
@@ -16,7 +17,7 @@ from PySide6.QtWidgets import QLabel, QProgressBar
 from modescope.app.words import counted
 
 __all__ = ["StatusBarMixin", "memory_in_use", "format_bytes", "format_seconds",
-           "MEMORY_INTERVAL_MS"]
+           "selection_text", "MEMORY_INTERVAL_MS"]
 
 #: How often the memory figure in the status bar is refreshed.
 MEMORY_INTERVAL_MS = 2000
@@ -92,12 +93,29 @@ def format_seconds(seconds: float) -> str:
     return f"{hours} h {minutes:02d} min"
 
 
+def selection_text(indices) -> str:
+    """Return the size of a selection as status text ("3 images selected"; "" when empty).
+
+    Parameters
+    ----------
+    indices : sequence of int
+        The images picked together (the state's selection set).
+
+    Returns
+    -------
+    str
+    """
+    n = len(indices)
+    return f"{counted(n, 'image')} selected" if n else ""
+
+
 class StatusBarMixin:
     """The status bar of the main window (a part of ``MainWindow``, not a widget of its own).
 
     Uses ``self.state``, ``self.runner`` (a result that is not final is "in progress" while a
-    run goes on, a "partial result" otherwise) and ``self.statusBar()``; makes ``summary_label``, ``progress_label``,
-    ``progress_bar`` and ``memory_label``.
+    run goes on, a "partial result" otherwise) and ``self.statusBar()``; makes ``summary_label``,
+    ``selection_label`` (the size of the selection, on every change of the state's selection
+    set), ``progress_label``, ``progress_bar`` and ``memory_label``.
     """
 
     def _build_status_bar(self) -> None:
@@ -112,7 +130,12 @@ class StatusBarMixin:
         self.progress_label.hide()
         self.memory_label = QLabel("", self)
         self.memory_label.setToolTip("Memory this program uses now")
+        self.selection_label = QLabel("", self)
+        self.selection_label.setToolTip("How many images are selected together (a box in the "
+                                        "weights plane, several rows of a list)")
+        self.selection_label.hide()
         sb.addWidget(self.summary_label, 1)
+        sb.addPermanentWidget(self.selection_label)
         sb.addPermanentWidget(self.progress_label)
         sb.addPermanentWidget(self.progress_bar)
         sb.addPermanentWidget(self.memory_label)
@@ -121,6 +144,14 @@ class StatusBarMixin:
         self._memory_timer.timeout.connect(self._update_memory)
         self._memory_timer.start()
         self._update_memory()
+        self.state.selectionSetChanged.connect(self._update_selection)
+        self._update_selection(self.state.selection_set)
+
+    @Slot(object)
+    def _update_selection(self, indices) -> None:
+        text = selection_text(indices)
+        self.selection_label.setText(text)
+        self.selection_label.setVisible(bool(text))
 
     @Slot()
     def _on_state_changed(self, *_args) -> None:
