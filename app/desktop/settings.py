@@ -12,6 +12,11 @@ Keys
     The analysis options last used in the sources pane.
 ``files/recent``
     Analysis files (``.npz``) opened or saved, most recent first.
+``session/folders``, ``session/last``
+    The sources (folders or image files) of the last run started on them, and which of the
+    two was opened last: ``"file"`` (the first recent file) or ``"folders"``. A new start with
+    no path reopens it (see :func:`modescope.app.desktop.launch.remembered_paths`); with
+    neither key the program has never run, and the bundled sample is opened.
 ``dialogs/last_dir``
     The folder a file dialog opens in.
 ``window/geometry``, ``window/state``
@@ -26,13 +31,15 @@ from typing import Any, Iterable
 
 from PySide6.QtCore import QByteArray, QSettings
 
-__all__ = ["Settings", "StoredOptions", "ORGANIZATION", "APPLICATION", "MAX_RECENT"]
+__all__ = ["Settings", "StoredOptions", "ORGANIZATION", "APPLICATION", "MAX_RECENT",
+           "LAST_KINDS"]
 
 ORGANIZATION = "Modescope"
 APPLICATION = "Modescope"
 MAX_RECENT = 10
 
 _COLORS = ("gray", "rgb")
+LAST_KINDS = ("file", "folders")
 
 
 @dataclass(frozen=True)
@@ -184,16 +191,57 @@ class Settings:
         self._store.setValue("files/recent", unique[:MAX_RECENT])
 
     def add_recent_file(self, path: str) -> list[str]:
-        """Put ``path`` first in the recent files (absolute path) and return the new list."""
+        """Put ``path`` first in the recent files (absolute path) and return the new list.
+
+        The file also becomes what was opened last (:meth:`last_opened` is ``"file"``).
+        """
         path = os.path.abspath(os.fspath(path))
         files = [path] + [p for p in self.recent_files() if p != path]
         self.set_recent_files(files)
+        self._store.setValue("session/last", "file")
         return self.recent_files()
 
     def remove_recent_file(self, path: str) -> list[str]:
         """Drop ``path`` from the recent files and return the new list."""
         self.set_recent_files(p for p in self.recent_files() if p != path)
         return self.recent_files()
+
+    def last_folders(self) -> list[str]:
+        """Return the sources of the last run started on folders or image files ([] when
+        none)."""
+        return _to_str_list(self._store.value("session/folders", []))
+
+    def set_last_folders(self, paths: Iterable[str]) -> None:
+        """Remember the sources a run starts on (absolute paths) as what was opened last.
+
+        Parameters
+        ----------
+        paths : iterable of str or path-like
+            Folders and/or image files; an empty iterable forgets them.
+
+        Raises
+        ------
+        TypeError
+            If ``paths`` is a single string or holds something that is not a path.
+        """
+        if isinstance(paths, (str, bytes)):
+            raise TypeError(f"paths must be an iterable of paths, not a single string: "
+                            f"{paths!r}")
+        unique: list[str] = []
+        for p in paths:
+            if not isinstance(p, (str, os.PathLike)):
+                raise TypeError(f"paths must hold str paths, got {type(p).__name__}")
+            p = os.path.abspath(os.fspath(p))
+            if p not in unique:
+                unique.append(p)
+        self._store.setValue("session/folders", unique)
+        self._store.setValue("session/last", "folders" if unique else "")
+
+    def last_opened(self) -> str:
+        """Return what was opened last: ``"file"`` (the first of :meth:`recent_files`),
+        ``"folders"`` (:meth:`last_folders`) or ``""`` when nothing is remembered."""
+        value = self._store.value("session/last", "")
+        return value if isinstance(value, str) and value in LAST_KINDS else ""
 
     def last_dir(self) -> str:
         """Return the folder file dialogs open in ("" when unknown)."""

@@ -107,6 +107,7 @@ class RunControlMixin:
         if [os.path.abspath(s) for s in sources] != self.ingest.sources():
             self.ingest.set_sources(sources)
         self.settings.set_options(options)
+        self.settings.set_last_folders(sources)     # what a start with no path reopens
         # reuse the pane's finished scan of the same sources and options; otherwise stop the
         # pane's scan so the two do not compete, and let the run's scan fill the pane later
         scanned = self.ingest.scanned_for(sources, options)
