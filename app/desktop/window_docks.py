@@ -3,8 +3,10 @@
 :class:`DockLayoutMixin` is one part of :class:`~modescope.app.desktop.main_window.MainWindow`.
 Fresh layout: "Sources" and "Images" as tabs on the left, full height; "Basis images" right of
 the inspector; "Weights" and "Singular values" at the bottom, side by side in a window at least
-:data:`SPLIT_BOTTOM_WIDTH` pixels wide and as tabs in a smaller one; "Outliers" and
-"Near-duplicates" as tabs beside "Weights" and "Images".
+:data:`SPLIT_BOTTOM_WIDTH` pixels wide (and wide enough for both docks' smallest widths beside the
+left column) and as tabs in a smaller one; "Outliers" and "Near-duplicates" as tabs beside
+"Weights" and "Images". A first start (no remembered geometry) fills the screen's available
+area (not the maximised state: restoring a layout saved from it crashed Qt offscreen).
 """
 
 from __future__ import annotations
@@ -15,8 +17,12 @@ from PySide6.QtWidgets import QApplication, QDockWidget, QWidget
 __all__ = ["DockLayoutMixin", "DEFAULT_SIZE", "SPLIT_BOTTOM_WIDTH"]
 
 DEFAULT_SIZE = (1280, 800)
-#: Below this window width "Weights" and "Singular values" share the bottom area as tabs.
-SPLIT_BOTTOM_WIDTH = 1600
+#: Below this window width "Weights" and "Singular values" share the bottom area as tabs. The
+#: Singular values pane's controls alone need about 810 pixels once an analysis is shown, the
+#: Outliers table (tabbed with Weights) about 580 and the left column about 300.
+SPLIT_BOTTOM_WIDTH = 1800
+#: Room for the dock separators and frames in a row of docks.
+_SEPARATORS = 24
 
 
 class DockLayoutMixin:
@@ -55,7 +61,7 @@ class DockLayoutMixin:
         self.addDockWidget(Qt.DockWidgetArea.BottomDockWidgetArea, d["weightsDock"])
         self.addDockWidget(Qt.DockWidgetArea.BottomDockWidgetArea, d["spectrumDock"])
         width = max(self.width(), DEFAULT_SIZE[0])
-        self._bottom_split = width >= SPLIT_BOTTOM_WIDTH
+        self._bottom_split = width >= max(SPLIT_BOTTOM_WIDTH, self._split_needs())
         if self._bottom_split:
             self.splitDockWidget(d["weightsDock"], d["spectrumDock"], Qt.Orientation.Horizontal)
         else:
@@ -67,6 +73,16 @@ class DockLayoutMixin:
         d["sourcesDock"].raise_()
         self._size_docks(width, max(self.height(), DEFAULT_SIZE[1]))
 
+    def _split_needs(self) -> int:
+        """Return the window width the bottom docks need side by side, from their minimums."""
+        d = self.docks
+
+        def least(*names: str) -> int:
+            return max(d[n].minimumSizeHint().width() for n in names)
+
+        return (least("sourcesDock", "imagesDock", "duplicatesDock")
+                + least("weightsDock", "outliersDock") + least("spectrumDock") + _SEPARATORS)
+
     def _size_docks(self, width: int, height: int) -> None:
         d = self.docks
         left = max(290, int(width * 0.23))
@@ -74,23 +90,25 @@ class DockLayoutMixin:
         self.resizeDocks([d["sourcesDock"], d["basisDock"]], [left, right],
                          Qt.Orientation.Horizontal)
         if self._bottom_split:
-            bottom = width - left
+            bottom = width - left - _SEPARATORS
+            spectrum = max(int(bottom * 0.5), d["spectrumDock"].minimumSizeHint().width())
             self.resizeDocks([d["weightsDock"], d["spectrumDock"]],
-                             [int(bottom * 0.5), int(bottom * 0.5)], Qt.Orientation.Horizontal)
+                             [bottom - spectrum, spectrum], Qt.Orientation.Horizontal)
         self.resizeDocks([d["weightsDock"]], [max(220, int(height * 0.36))],
                          Qt.Orientation.Vertical)
 
     def _restore_window(self) -> None:
         geometry = self.settings.window_geometry()
         restored = not geometry.isEmpty() and self.restoreGeometry(geometry)
-        if not restored:
+        if not restored:            # a first start: fill the screen, as a workbench should
             screen = QApplication.primaryScreen()
             w, h = DEFAULT_SIZE
             if screen is not None:
                 avail = screen.availableGeometry()
-                w, h = min(w, avail.width()), min(h, avail.height())
+                w, h = avail.width(), avail.height()
+                self.move(avail.topLeft())
             self.resize(w, h)
-            self._size_docks(w, h)
+            self._place_docks()     # tabs or side by side for this width
         state = self.settings.window_state()
         if not state.isEmpty():
             self.restoreState(state)

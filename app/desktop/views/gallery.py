@@ -335,10 +335,8 @@ class BasisGallery(ThrottledRedraw, QWidget):
         self.view.setWordWrap(True)
         self.view.setSelectionMode(QListView.SelectionMode.SingleSelection)
         self.view.setIconSize(QSize(icon_size, icon_size))
-        fm = self.view.fontMetrics()
-        text_w = fm.horizontalAdvance("singular value 0000.00") + 12
-        self.view.setGridSize(QSize(max(icon_size + 16, text_w),
-                                    icon_size + 4 * fm.lineSpacing() + 14))
+        self._icon_size = icon_size
+        self._fit_grid(["singular value 0000.00", "cumulative 100.0 %"])
         self.view.setModel(self.model)
         self.view.setToolTip("Click a tile to show that basis image in the other views; "
                              "double-click it to see it large.")
@@ -384,9 +382,21 @@ class BasisGallery(ThrottledRedraw, QWidget):
                 kind = "final" if d.exact else "snapshot during the run"
                 self.header.setText(f"Mean image and {d.rank} basis images ({kind})")
                 self.legend.set_rgb(d.image_shape[2] == 3)
+                self._fit_grid(self.model.label(row)
+                               for row in range(self.model.rowCount()))
             self._select_row(self.state.focus_mode + 1)
         finally:
             self._syncing = False
+
+    def _fit_grid(self, labels) -> None:
+        """Size the grid cells so the longest caption line shown fits unwrapped, four lines high."""
+        fm = self.view.fontMetrics()
+        lines = [line for label in labels for line in str(label).split("\n")]
+        text_w = max((fm.horizontalAdvance(line) for line in lines), default=0)
+        # the view lays the text out in the cell less its spacing and the item's own margins
+        width = max(self._icon_size + 16, text_w + 2 * self.view.spacing() + 20)
+        height = self._icon_size + 4 * fm.lineSpacing() + 2 * self.view.spacing() + 16
+        self.view.setGridSize(QSize(width, height))
 
     @Slot(int)
     def _on_rank(self, rank: int) -> None:

@@ -275,7 +275,9 @@ class ImageListView(ThrottledRedraw, QWidget):
         fm = self.table.fontMetrics()
         hh.resizeSection(COL_NUMBER, fm.horizontalAdvance("00000") + 10)
         hh.resizeSection(COL_RESIDUAL, fm.horizontalAdvance("residual") + 28)
-        self.table.setTextElideMode(Qt.TextElideMode.ElideMiddle)
+        # cut file names at the start: the end (frame number, time) tells frames apart; the
+        # full path is in each row's tooltip
+        self.table.setTextElideMode(Qt.TextElideMode.ElideLeft)
         self.table.setToolTip("Click to select an image; Shift/Ctrl + click to pick several. "
                               "Click a column title to sort.")
 
