@@ -18,9 +18,10 @@ __all__ = ["DockLayoutMixin", "DEFAULT_SIZE", "SPLIT_BOTTOM_WIDTH"]
 
 DEFAULT_SIZE = (1280, 800)
 #: Below this window width "Weights" and "Singular values" share the bottom area as tabs. The
-#: Singular values pane's controls alone need about 810 pixels once an analysis is shown, the
-#: Outliers table (tabbed with Weights) about 580 and the left column about 300.
-SPLIT_BOTTOM_WIDTH = 1800
+#: Singular values pane's controls alone need about 810 pixels once an analysis is shown and the
+#: Weights pane's three plots about 900 to be read; the left column takes about a quarter. At
+#: 1920 pixels side by side squeezed the Weights plots out of their dock, so tabs up to there.
+SPLIT_BOTTOM_WIDTH = 2200
 #: Room for the dock separators and frames in a row of docks.
 _SEPARATORS = 24
 

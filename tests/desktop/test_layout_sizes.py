@@ -63,14 +63,16 @@ def test_every_dock_within_the_window_after_reset(qtbot, analysed, size):
 
 def test_bottom_docks_side_by_side_only_when_both_fit(qtbot, analysed):
     w = analysed
-    w.resize(1920, 1080)
+    w.resize(2560, 1440)
     _settle(qtbot)
     w.reset_layout()
     _settle(qtbot)
     weights, spectrum = w.docks["weightsDock"], w.docks["spectrumDock"]
     assert spectrum not in w.tabifiedDockWidgets(weights)
     assert weights.geometry().right() < spectrum.geometry().left()
-    w.resize(1600, 1000)
+    assert spectrum.geometry().right() <= w.width() - 1
+    assert weights.width() >= 900                  # its three plots readable
+    w.resize(1920, 1080)
     _settle(qtbot)
     w.reset_layout()
     _settle(qtbot)

@@ -144,11 +144,12 @@ class SpectrumView(ThrottledRedraw, QWidget):
                 p.getAxis(ax).setTextPen(fg)
                 p.getAxis(ax).setPen(fg)
             p.setMenuEnabled(False)
-        self.sv_plot.setTitle("singular value (log scale)", size="9pt")   # horizontal: two
-        # vertical titles taller than these short plots drew over each other
+        # short axis titles: longer ones than these short plots drew over each other (the dock's
+        # title says "Singular values")
+        self.sv_plot.setLabel("left", "value (log)", **{"font-size": "8pt"})
         self.sv_plot.setLogMode(x=False, y=True)
         self.sv_plot.getAxis("bottom").setStyle(showValues=False)
-        self.en_plot.setTitle("cumulative energy (%)", size="9pt")
+        self.en_plot.setLabel("left", "energy %", **{"font-size": "8pt"})
         self.en_plot.setLabel("bottom", "mode / rank r")
         self.en_plot.setXLink(self.sv_plot)
         self.en_plot.setYRange(0, 100, padding=0.1)
