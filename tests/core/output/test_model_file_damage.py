@@ -263,7 +263,7 @@ def test_the_good_file_with_every_metadata_field_loads(good, tmp_path, capsys):
     assert cli_main(["info", str(good)]) == 0
     out = capsys.readouterr().out
     assert f"images:       {N}" in out
-    assert "skipped files: 2 (first: /data/broken.png: cannot be decoded)" in out
+    assert "skipped files: 2 files (first: /data/broken.png: cannot be decoded)" in out
     # a deflated copy (numpy's savez_compressed layout) inflates a few times only: accepted
     packed = rewrite(good, tmp_path / "packed.npz", compress=zipfile.ZIP_DEFLATED)
     assert packed.stat().st_size < good.stat().st_size

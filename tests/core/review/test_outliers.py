@@ -420,7 +420,7 @@ def test_cli_outliers_prints_sorted_table_and_caution(digits_model, capsys):
     lines = out.splitlines()
     header = next(i for i, line in enumerate(lines) if line.startswith("#"))
     assert lines[header].split() == ["#", "number", "path", "score", "q", "q_limit", "t2",
-                                     "t2_limit", "flag"]
+                                     "t2_limit", "beyond", "mark"]
     table = score_table(digits_model, rank=3)
     rows = [lines[header + 1 + j].split() for j in range(5)]
     assert [r[0] for r in rows] == ["1", "2", "3", "4", "5"]          # place in the ranking
