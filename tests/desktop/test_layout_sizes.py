@@ -108,3 +108,15 @@ def test_gallery_grid_fits_the_longest_caption_line(analysed):
     grid = g.view.gridSize()
     assert grid.width() >= longest + 2 * g.view.spacing() + 20
     assert grid.height() >= g.view.iconSize().height() + 4 * fm.lineSpacing()
+
+
+def test_every_list_of_files_elides_names_at_the_start(analysed):
+    # the end of a name (the frame number) tells files apart: every view listing files keeps it
+    from modescope.app.desktop.views.duplicates import DuplicatesView
+    from modescope.app.desktop.views.outliers_table import OutlierTableView
+
+    tables = analysed.findChildren(OutlierTableView)
+    trees = [v.tree for v in analysed.findChildren(DuplicatesView)]
+    assert tables and trees
+    for view in tables + trees:
+        assert view.textElideMode() == Qt.TextElideMode.ElideLeft

@@ -166,7 +166,7 @@ class DuplicatesView(QWidget):
         self.tree.setSelectionMode(QAbstractItemView.SelectionMode.SingleSelection)
         self.tree.setUniformRowHeights(True)
         self.tree.setAlternatingRowColors(True)
-        self.tree.setTextElideMode(Qt.TextElideMode.ElideMiddle)
+        self.tree.setTextElideMode(Qt.TextElideMode.ElideLeft)
         hh = self.tree.header()
         hh.setStretchLastSection(False)
         hh.setSectionResizeMode(0, QHeaderView.ResizeMode.Stretch)

@@ -58,7 +58,7 @@ class OutlierTableView(QTableView):
         self.setWordWrap(False)
         self.setShowGrid(False)
         self.setAlternatingRowColors(False)
-        self.setTextElideMode(Qt.TextElideMode.ElideMiddle)
+        self.setTextElideMode(Qt.TextElideMode.ElideLeft)
         self.setVerticalScrollMode(QAbstractItemView.ScrollMode.ScrollPerPixel)
         vh = self.verticalHeader()
         vh.hide()
