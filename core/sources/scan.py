@@ -49,7 +49,8 @@ from collections import Counter
 from dataclasses import dataclass
 from typing import Callable, Iterable
 
-from modescope.core.sources.headers import not_regular_reason, read_headers, short_message
+from modescope.core.sources.headers import (not_regular_reason, read_headers, short_message,
+                                            warning_capture)
 
 from modescope.core.validation import check_bool, check_callable, check_choice
 from modescope.core.errors import AnalysisCancelled, NoUsableImagesError
@@ -300,7 +301,7 @@ def _list_folder(folder: str, recursive: bool,
 
 
 def _probe(path: str, problems: list[Problem], sizes: dict | None = None,
-           notes: list[Problem] | None = None) -> list[ImageRef]:
+           notes: list[Problem] | None = None, caught: list | None = None) -> list[ImageRef]:
     """Open ``path`` (header only) and return one ImageRef per usable page.
 
     ``sizes`` shares one tuple per distinct size among the refs of a scan (a large collection
@@ -310,7 +311,7 @@ def _probe(path: str, problems: list[Problem], sizes: dict | None = None,
     """
     said: list[str] = []
     try:
-        pages = read_headers(path, said, SUPPORTED_MODES)
+        pages = read_headers(path, said, SUPPORTED_MODES, caught)
     except MemoryError:
         raise
     except Exception as exc:  # noqa: BLE001 - Pillow plugins raise many types on bad files
@@ -433,12 +434,13 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
     found: list[ImageRef] = []
     sizes: dict = {}
     notes: list[Problem] = []
-    for done, path in enumerate(files, start=1):
-        if cancel is not None and cancel():
-            raise AnalysisCancelled("scan of the image sources was cancelled")
-        found.extend(_probe(path, problems, sizes, notes))
-        if progress is not None:
-            progress(done, total)
+    with warning_capture() as caught:        # one capture for every header read
+        for done, path in enumerate(files, start=1):
+            if cancel is not None and cancel():
+                raise AnalysisCancelled("scan of the image sources was cancelled")
+            found.extend(_probe(path, problems, sizes, notes, caught))
+            if progress is not None:
+                progress(done, total)
 
     multi_page = {ref.path for ref in found if ref.page > 0}
     usable: list[ImageRef] = []
