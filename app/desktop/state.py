@@ -207,6 +207,23 @@ class AppState(QObject):
             self._selected = index
             self.selectedChanged.emit(index)
 
+    def select_from_view(self, images: Iterable[int], current: int) -> None:
+        """Take a view's selection: ``images`` selected (0-based) and its ``current`` one.
+
+        The selected image is ``current`` when it is part of the selection (or nothing is
+        selected), else the first selected image; several images also become the selection
+        set (one image or none clears it). Views call this instead of each deciding the rule.
+        """
+        images = sorted({int(i) for i in images})
+        current = int(current)
+        if current < 0 and images:
+            current = images[0]
+        if current >= 0 and (not images or current in images):
+            self.set_selected(current)
+        elif images:
+            self.set_selected(images[0])
+        self.set_selection_set(images if len(images) > 1 else ())
+
     def set_selection_set(self, indices: Iterable[int]) -> None:
         """Pick several images at once (the first becomes the selected image)."""
         new = tuple(sorted({int(i) for i in indices}))

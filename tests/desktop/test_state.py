@@ -80,3 +80,16 @@ def test_final_result_rechooses_rank_unless_the_user_moved_it(qtbot):
     state.set_rank(2)                     # the user moves the slider
     state.set_decomposition(d)
     assert state.rank == 2
+
+
+def test_select_from_view_one_rule_for_every_view(qtbot):
+    s = AppState()
+    s.set_decomposition(make())
+    s.select_from_view([4, 2, 7], 7)           # current inside the selection: it is selected
+    assert s.selected == 7 and s.selection_set == (2, 4, 7)
+    s.select_from_view([4, 2], 9)              # current outside: the first selected image
+    assert s.selected == 2 and s.selection_set == (2, 4)
+    s.select_from_view([5], -1)                # one image: no selection set
+    assert s.selected == 5 and s.selection_set == ()
+    s.select_from_view([], 3)                  # nothing selected, a current row: that one
+    assert s.selected == 3 and s.selection_set == ()

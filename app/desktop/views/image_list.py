@@ -418,14 +418,8 @@ class ImageListView(ThrottledRedraw, QWidget):
         rows = sorted({self.proxy.mapToSource(i).row() for i in sm.selectedRows()})
         current = sm.currentIndex()
         cur = self.proxy.mapToSource(current).row() if current.isValid() else -1
-        if cur < 0 and rows:
-            cur = rows[0]
         self._syncing = True
         try:
-            if cur >= 0 and (not rows or cur in rows):
-                self.state.set_selected(cur)
-            elif rows:
-                self.state.set_selected(rows[0])
-            self.state.set_selection_set(rows if len(rows) > 1 else ())
+            self.state.select_from_view(rows, cur)
         finally:
             self._syncing = False

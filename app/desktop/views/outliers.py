@@ -504,15 +504,9 @@ class OutlierView(ReviewActions, ThrottledRedraw, QWidget):
         if self._syncing:
             return
         images, cur = self.table.selected_images()
-        if cur < 0 and images:
-            cur = images[0]
         self._syncing = True
         try:
-            if cur >= 0 and (not images or cur in images):
-                self.state.set_selected(cur)
-            elif images:
-                self.state.set_selected(images[0])
-            self.state.set_selection_set(images if len(images) > 1 else ())
+            self.state.select_from_view(images, cur)
         finally:
             self._syncing = False
         self._update_plot_selection()
