@@ -38,6 +38,12 @@ GUIDE = (
      "first basis images: the image minus the reconstruction. Where the residual is bright or "
      "dark, the image holds something the kept basis images do not describe, such as a "
      "scratch, a passing object or a change of light."),
+    ("Looking closely",
+     "Turn the mouse wheel over the image, the reconstruction or the residual to zoom all "
+     "three about the same spot; drag to pan, double-click (or Fit) to see the whole image "
+     "again. Point at a pixel to read its value, its reconstruction and its residual under the "
+     "panes. Stretch contrast shows a dark or bright image with its own darkest and brightest "
+     "levels as black and white; the numbers do not change."),
     ("The rank slider",
      "The rank is the number of basis images used for the reconstruction and the outlier "
      "scores. A low rank keeps only the broad, shared patterns and leaves more in the "
