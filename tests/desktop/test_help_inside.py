@@ -78,11 +78,13 @@ def test_guide_has_each_part_and_the_screening_caution(qtbot, window):
     dialog = window.guide_dialog
     qtbot.waitExposed(dialog)
     text = dialog.text.toPlainText()
-    for title in ("Basis images", "Weights", "The residual", "The rank slider",
-                  "The outlier limits"):
+    for title in ("Basis images", "Weights", "The residual", "Looking closely",
+                  "The rank slider", "The outlier limits"):
         assert title in text
     assert [t for t, _ in GUIDE] == ["Basis images", "Weights", "The residual",
-                                     "The rank slider", "The outlier limits"]
+                                     "Looking closely", "The rank slider",
+                                     "The outlier limits"]
+    assert "zoom" in text and "Stretch contrast" in text
     assert "screening aid for a person to review, not a verdict" in text
 
 
