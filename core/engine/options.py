@@ -14,6 +14,8 @@ from typing import Callable
 import numpy as np
 
 from modescope.core.decomposition import Decomposition
+from modescope.core.sources.frames import (FrameRange, check_frame_rate, parse_frames,
+                                           sampled_rate)
 from modescope.core.sources.scan import SourceSet
 from modescope.core.validation import check_choice, check_int
 
@@ -77,6 +79,16 @@ class AnalysisOptions:
         command line sets it to the number of cores; the desktop program keeps 0, because
         changing OpenBLAS's thread count while the GUI thread may be inside a BLAS call is
         risky (from memory of OpenBLAS reports, not verified here).
+    frames : FrameRange or None
+        Frames taken from each video or array file (numbered from 0, ``stop`` excluded, as a
+        Python slice; see :mod:`modescope.core.sources.frames`); None takes every frame. A
+        dict ``{"start", "stop", "step"}`` (as stored in a model file) or text
+        ``"START:STOP[:STEP]"`` is accepted too.
+    frame_rate : float or None
+        Frames per second of the sources in Hz, overriding the rate a video file states (and
+        the only rate of a folder of frames or an array stack). None: the videos' own rate,
+        when they state one. The model stores the rate of its columns,
+        ``frame_rate / frames.step``, as ``metadata["frame_rate"]``.
     """
 
     rank: int = 20
@@ -92,8 +104,18 @@ class AnalysisOptions:
     pass_blas_threads: int = 0
     tolerance: float = 1e-4
     max_passes: int = 4
+    frames: FrameRange | None = None
+    frame_rate: float | None = None
 
     def __post_init__(self):
+        if isinstance(self.frames, str):
+            object.__setattr__(self, "frames", parse_frames(self.frames))
+        elif isinstance(self.frames, dict):
+            object.__setattr__(self, "frames", FrameRange(**self.frames))
+        elif self.frames is not None and not isinstance(self.frames, FrameRange):
+            raise TypeError(f"frames must be a FrameRange, text START:STOP[:STEP] or None, got "
+                            f"{type(self.frames).__name__} {self.frames!r}")
+        object.__setattr__(self, "frame_rate", check_frame_rate("frame_rate", self.frame_rate))
         check_int("rank", self.rank, minimum=1, maximum=10_000)
         check_choice("color", self.color, ("gray", "rgb"))
         check_int("downscale", self.downscale, minimum=1, maximum=1024)
@@ -226,7 +248,7 @@ def metadata_for(options: AnalysisOptions, source_set: SourceSet, problems, stag
                  internal: int) -> dict:
     """Return the JSON metadata of a model made with ``options`` from ``source_set``."""
     import scipy
-    return {
+    meta = {
         "format": "modescope-model",
         "format_version": 1,
         "created": _dt.datetime.now(_dt.timezone.utc).isoformat(timespec="seconds"),
@@ -240,3 +262,8 @@ def metadata_for(options: AnalysisOptions, source_set: SourceSet, problems, stag
         "stage": stage,
         "problems": [{"path": p.path, "page": p.page, "reason": p.reason} for p in problems],
     }
+    # the time axis: columns per second (the rate given, else the videos' own, over the step)
+    rate = sampled_rate(options.frame_rate or source_set.frame_rate, source_set.frame_step)
+    if rate is not None:
+        meta["frame_rate"] = rate
+    return meta

@@ -52,7 +52,7 @@ def scan(sources, options: AnalysisOptions = AnalysisOptions(), *, progress=None
         clock.total = total
         clock.report(done)
     return scan_sources(sources, recursive=options.recursive, color=options.color,
-                        resize_mismatched=options.resize_mismatched,
+                        resize_mismatched=options.resize_mismatched, frames=options.frames,
                         progress=scan_progress if progress else None, cancel=cancel)
 
 
@@ -160,6 +160,8 @@ class _Run:
                             self.engine.internal)
         if self.base is not None:
             meta["problems"] = list(self.base.metadata.get("problems", [])) + meta["problems"]
+            if "frame_rate" not in meta and "frame_rate" in self.base.metadata:
+                meta["frame_rate"] = self.base.metadata["frame_rate"]   # the time axis stays
         return meta
 
     def _old(self):

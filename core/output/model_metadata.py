@@ -116,6 +116,11 @@ def _updated_from(value) -> None:
         _text("updated_from.created", value["created"], none_ok=True)
 
 
+def _frame_rate(value) -> None:
+    if not (_is_number(value) and 0 < value < float("inf")):
+        raise _fail("frame_rate", "a positive number of frames per second", value)
+
+
 _CHECKS = {
     "created": lambda v: _text("created", v),
     "versions": _versions,
@@ -128,6 +133,7 @@ _CHECKS = {
     "problems": _problems,
     "refinement": _refinement,
     "updated_from": _updated_from,
+    "frame_rate": _frame_rate,
 }
 
 

@@ -53,6 +53,9 @@ Every image becomes a float32 array of shape ``(rows, cols, channels)`` with val
    half-resolution colour planes of most JPEG files and the reduced decode does not. Files
    resized in step 5 are decoded at full size.
 
+Frames of videos and ``.npy`` stacks are read by :mod:`.video` and :mod:`.arrays` (their value
+and colour rules are written there) and then follow steps 5 and 6.
+
 The pixel vector of an image (a column of the data matrix) is the C-order ravel of its
 ``(rows', cols', channels)`` array: for RGB the three values of a pixel are adjacent.
 """
@@ -74,6 +77,8 @@ from modescope.core.sources.headers import orientation, pillow_notes, short_mess
 from modescope.core.sources.pixels import (_DecodeFailure, _downscale, _jpeg_draft, _native,
                                            _open_reduced, _resize, _to_float)
 from modescope.core.sources.scan import ImageRef, Problem, SourceSet
+from modescope.core.sources.sequences import (SequenceError, decode_frame, frame_preview,
+                                              is_sequence)
 
 __all__ = ["analysis_shape", "load_image", "load_preview", "Block", "iter_blocks"]
 
@@ -203,6 +208,8 @@ def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
     downscale); those values are then also copied into ``raw_out`` (same shape, uint8) when it
     is given.
     """
+    if is_sequence(ref.path):                    # a frame of a video or array stack
+        return decode_frame(ref, source_set, f, out, raw_out)
     reference = source_set.reference_size
     try:
         with _quiet(ref):
@@ -341,6 +348,11 @@ def load_preview(path, page: int = 0, *, max_side: int = 64,
     if color is not None:
         check_choice("color", color, ("gray", "rgb"))
     where = f"{name} (page {page})" if page else name
+    if is_sequence(name):
+        try:
+            return frame_preview(name, page, max_side, color)
+        except SequenceError as exc:
+            raise SourceError(f"{where}: {exc.reason}") from None
     try:
         with pillow_notes([], name):
             img = Image.open(name)

@@ -24,8 +24,13 @@ Rules
   occurrence.
 * Inside a folder the files are ordered by :func:`natural_key` over their path relative to the
   folder ("frame_2" before "frame_10", case-insensitive); the order of the sources given is kept.
-* Every page of a multi-page TIFF is one image (pages are numbered from 0). Other formats
+* Every page of a multi-page TIFF is one image (pages are numbered from 0). Other image formats
   contribute their first frame only.
+* Videos and NumPy ``.npy`` stacks (:data:`SEQUENCE_SUFFIXES`, found in folders like images)
+  contribute one image per frame, the page being the frame number from 0 in time order; the
+  ``frames`` range of :func:`scan_sources` selects which (see
+  :mod:`modescope.core.sources.frames`, :mod:`.video` and :mod:`.arrays`). A video or stack
+  that cannot be used is a problem with a plain reason, as a damaged image is.
 * Sizes are ``(rows, cols)`` after the EXIF orientation of the file is applied (orientations 5-8
   swap rows and cols), which is how an image viewer shows them. For TIFF files Pillow itself
   reports the oriented size and applies the Orientation tag while decoding. The orientation is
@@ -52,6 +57,9 @@ from typing import Callable, Iterable
 from modescope.core.sources.headers import (not_regular_reason, read_headers, short_message,
                                             warning_capture)
 
+from modescope.core.sources.frames import FrameRange
+from modescope.core.sources.sequences import (SEQUENCE_SUFFIXES, SequenceError, is_sequence,
+                                              probe_sequence)
 from modescope.core.validation import check_bool, check_callable, check_choice
 from modescope.core.errors import AnalysisCancelled, NoUsableImagesError
 
@@ -60,6 +68,7 @@ __all__ = [
     "ImageRef",
     "SourceSet",
     "SUPPORTED_SUFFIXES",
+    "SEQUENCE_SUFFIXES",
     "SUPPORTED_MODES",
     "scan_sources",
     "natural_key",
@@ -145,6 +154,13 @@ class SourceSet:
     notes : tuple of Problem
         Files that are used but drew a warning from Pillow (a very large image, damaged EXIF
         metadata), each with a sentence; empty by default.
+    frame_rate : float or None
+        Frames per second stated by the video files of the set (None when there is none, or
+        when they disagree; see :mod:`modescope.core.sources.video`).
+    frame_step : int
+        Frames of each video or array file between two of its images in the set (the step of
+        the frame range applied by the scan; 1 when none was applied or the set holds no such
+        file).
     """
 
     images: tuple[ImageRef, ...]
@@ -153,6 +169,8 @@ class SourceSet:
     resize_mismatched: bool
     problems: tuple[Problem, ...]
     notes: tuple[Problem, ...] = ()
+    frame_rate: float | None = None
+    frame_step: int = 1
 
     @property
     def n_images(self) -> int:
@@ -241,7 +259,8 @@ def _is_hidden(name: str) -> bool:
 
 
 def _has_supported_suffix(name: str) -> bool:
-    return os.path.splitext(name)[1].lower() in SUPPORTED_SUFFIXES
+    suffix = os.path.splitext(name)[1].lower()
+    return suffix in SUPPORTED_SUFFIXES or suffix in SEQUENCE_SUFFIXES
 
 
 def _report_irregular(path: str, problems: list[Problem]) -> None:
@@ -300,8 +319,24 @@ def _list_folder(folder: str, recursive: bool,
     return found
 
 
+def _probe_sequence(path: str, problems: list[Problem], sizes: dict,
+                    frames: FrameRange | None, rates: dict | None) -> list[ImageRef]:
+    """Return one ImageRef per selected frame of a video or array stack (see _probe)."""
+    try:
+        numbers, mode, rows, cols, rate = probe_sequence(path, frames)
+    except SequenceError as exc:
+        problems.append(Problem(path, exc.reason))
+        return []
+    if rates is not None:
+        rates[path] = rate
+    size = sizes.setdefault((rows, cols), (rows, cols))
+    mode = sys.intern(mode)
+    return [ImageRef(path=path, page=n, size=size, mode=mode) for n in numbers]
+
+
 def _probe(path: str, problems: list[Problem], sizes: dict | None = None,
-           notes: list[Problem] | None = None, caught: list | None = None) -> list[ImageRef]:
+           notes: list[Problem] | None = None, caught: list | None = None,
+           frames: FrameRange | None = None, rates: dict | None = None) -> list[ImageRef]:
     """Open ``path`` (header only) and return one ImageRef per usable page.
 
     ``sizes`` shares one tuple per distinct size among the refs of a scan (a large collection
@@ -309,6 +344,8 @@ def _probe(path: str, problems: list[Problem], sizes: dict | None = None,
     Pillow's warnings on a file that is kept go to ``notes``; on a file that is refused they
     are part of its problem.
     """
+    if is_sequence(path):
+        return _probe_sequence(path, problems, {} if sizes is None else sizes, frames, rates)
     said: list[str] = []
     try:
         pages = read_headers(path, said, SUPPORTED_MODES, caught)
@@ -340,7 +377,7 @@ def _probe(path: str, problems: list[Problem], sizes: dict | None = None,
 
 
 def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
-                 resize_mismatched: bool = False,
+                 resize_mismatched: bool = False, frames: FrameRange | None = None,
                  progress: Callable[[int, int], None] | None = None,
                  cancel: Callable[[], bool] | None = None) -> SourceSet:
     """Find the images in folders and files and check that they can be analysed together.
@@ -356,6 +393,9 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
     resize_mismatched : bool, default False
         Keep images whose size differs from the reference size (the reader resizes them)
         instead of skipping them with a problem.
+    frames : FrameRange, optional
+        Frames taken from each video or array stack (numbered from 0, ``stop`` excluded);
+        None takes every frame. Image files and TIFF pages are not affected.
     progress : callable(done, total), optional
         Called after each file header is read; ``total`` is the number of files found.
     cancel : callable() -> bool, optional
@@ -390,6 +430,8 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
     check_bool("resize_mismatched", resize_mismatched)
     check_callable("progress", progress)
     check_callable("cancel", cancel)
+    if frames is not None and not isinstance(frames, FrameRange):
+        raise TypeError(f"frames must be a FrameRange or None, got {type(frames).__name__}")
 
     problems: list[Problem] = []
     files: list[str] = []
@@ -434,15 +476,16 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
     found: list[ImageRef] = []
     sizes: dict = {}
     notes: list[Problem] = []
+    rates: dict = {}                         # video or stack -> its frame rate (or None)
     with warning_capture() as caught:        # one capture for every header read
         for done, path in enumerate(files, start=1):
             if cancel is not None and cancel():
                 raise AnalysisCancelled("scan of the image sources was cancelled")
-            found.extend(_probe(path, problems, sizes, notes, caught))
+            found.extend(_probe(path, problems, sizes, notes, caught, frames, rates))
             if progress is not None:
                 progress(done, total)
 
-    multi_page = {ref.path for ref in found if ref.page > 0}
+    multi_page = {ref.path for ref in found if ref.page > 0 or ref.path in rates}
     usable: list[ImageRef] = []
     reference_size = (0, 0)
     if found:
@@ -480,4 +523,11 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
 
     return SourceSet(images=tuple(usable), reference_size=reference_size, color=color,
                      resize_mismatched=resize_mismatched, problems=tuple(problems),
-                     notes=tuple(notes))
+                     notes=tuple(notes), frame_rate=_common_rate(rates),
+                     frame_step=frames.step if frames is not None and rates else 1)
+
+
+def _common_rate(rates: dict) -> float | None:
+    """The frame rate the videos of a scan agree on (None: none stated, or they differ)."""
+    stated = {round(rate, 9) for rate in rates.values() if rate is not None}
+    return stated.pop() if len(stated) == 1 and None not in rates.values() else None
