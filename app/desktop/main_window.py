@@ -30,6 +30,7 @@ from PySide6.QtGui import QCloseEvent
 from PySide6.QtWidgets import QDockWidget, QMainWindow, QMessageBox, QWidget
 
 from modescope.app.desktop.display import display_text
+from modescope.app.desktop.icon import app_icon
 from modescope.app.desktop.settings import Settings
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.views.duplicates import DuplicatesView
@@ -89,6 +90,7 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         super().__init__(parent)
         self.setObjectName("modescopeMainWindow")
         self.setWindowTitle("Modescope")
+        self.setWindowIcon(app_icon())
         self.setAcceptDrops(True)
         self.settings = settings if settings is not None else Settings()
         self.state = AppState(self)
