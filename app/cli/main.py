@@ -27,7 +27,8 @@ __all__ = ["VERBS", "VERB_NAMES", "build_parser", "main"]
 EXIT_UNUSABLE, EXIT_USAGE, EXIT_INTERRUPTED = 1, 2, 130   # as in common.py (not imported here)
 
 #: The verbs, in the order ``--help`` lists them; each is the module ``modescope.app.cli.<verb>``.
-VERB_NAMES = ("analyze", "update", "info", "outliers", "duplicates", "export", "demo")
+VERB_NAMES = ("analyze", "update", "info", "outliers", "duplicates", "frequencies", "export",
+              "demo")
 
 
 def _interrupted_quietly(kind, value, traceback) -> None:
@@ -50,8 +51,10 @@ if sys.excepthook is sys.__excepthook__:     # leave a hook someone else install
 def _load_verbs() -> dict:
     """Import every verb module explicitly (a broken one fails at start-up, never vanishes)."""
     from modescope.app.cli import analyze, demo, duplicates, export, info, outliers, update
+    from modescope.app.cli import frequencies
     return {"analyze": analyze, "update": update, "info": info, "outliers": outliers,
-            "duplicates": duplicates, "export": export, "demo": demo}
+            "duplicates": duplicates, "frequencies": frequencies, "export": export,
+            "demo": demo}
 
 
 def __getattr__(name: str):
