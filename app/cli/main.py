@@ -28,7 +28,7 @@ EXIT_UNUSABLE, EXIT_USAGE, EXIT_INTERRUPTED = 1, 2, 130   # as in common.py (not
 
 #: The verbs, in the order ``--help`` lists them; each is the module ``modescope.app.cli.<verb>``.
 VERB_NAMES = ("analyze", "update", "info", "outliers", "duplicates", "frequencies", "export",
-              "demo")
+              "check", "demo")
 
 
 def _interrupted_quietly(kind, value, traceback) -> None:
@@ -52,9 +52,10 @@ def _load_verbs() -> dict:
     """Import every verb module explicitly (a broken one fails at start-up, never vanishes)."""
     from modescope.app.cli import analyze, demo, duplicates, export, info, outliers, update
     from modescope.app.cli import frequencies
+    from modescope.app.cli import check
     return {"analyze": analyze, "update": update, "info": info, "outliers": outliers,
             "duplicates": duplicates, "frequencies": frequencies, "export": export,
-            "demo": demo}
+            "check": check, "demo": demo}
 
 
 def __getattr__(name: str):

@@ -10,7 +10,7 @@ import pytest
 from modescope.app.cli import main as cli_main
 
 EXPECTED = ["analyze", "update", "info", "outliers", "duplicates", "frequencies", "export",
-            "demo"]
+            "check", "demo"]
 
 
 def test_every_verb_is_registered_and_listed_in_help(capsys):
