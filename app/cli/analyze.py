@@ -40,6 +40,15 @@ def register(subparsers) -> None:
     a.add_argument("--resize-mismatched", action="store_true",
                    help="resize images of another size to the most common size instead of "
                         "skipping them")
+    a.add_argument("--frames", type=_frames, default=None, metavar="START:STOP[:STEP]",
+                   help="frames taken from each video or .npy stack, numbered from 0 as in the "
+                        "page column of the tables, STOP excluded (like a Python slice): "
+                        "0:100:2 takes frames 0, 2, ..., 98; ::5 every fifth frame "
+                        "(default: every frame)")
+    a.add_argument("--frame-rate", type=_frame_rate, default=None, metavar="HZ",
+                   help="frames per second of the sources (a folder of frames, a .npy stack, "
+                        "or a video whose own rate is wrong); default: the video's own rate. "
+                        "The model stores HZ divided by the --frames step")
     a.add_argument("--block-size", type=positive_int, default=128, metavar="B",
                    help="images per streaming update (default 128)")
     add_accuracy_options(a)
@@ -61,7 +70,8 @@ def run(args: argparse.Namespace) -> int:
                                   block_size=args.block_size, oversample=args.oversample,
                                   refine=not args.no_refine, workers=args.workers,
                                   tolerance=args.tolerance, max_passes=args.max_passes,
-                                  pass_blas_threads=cores())
+                                  pass_blas_threads=cores(), frames=args.frames,
+                                  frame_rate=args.frame_rate)
     except (TypeError, ValueError) as exc:
         print(f"modescope analyze: {exc}", file=sys.stderr)
         return EXIT_USAGE
@@ -124,9 +134,30 @@ def run(args: argparse.Namespace) -> int:
     print(f"analysed {counted(d.n_images, 'image')} of {rows}x{cols} "
           f"({'gray' if ch == 1 else 'rgb'}) in {elapsed:.1f} s; {captured}", file=sys.stderr)
     print(f"singular values: {describe_accuracy(d)}", file=sys.stderr)
+    if "frame_rate" in d.metadata:
+        print(f"time axis: {d.metadata['frame_rate']:g} images per second", file=sys.stderr)
     print(f"wrote {written}", file=sys.stderr)
     print_problems(result.problems, result.source_set.notes)
     return EXIT_OK
+
+
+def _frames(text: str):
+    """argparse type of ``--frames``."""
+    from modescope.core.sources.frames import parse_frames
+    try:
+        return parse_frames(text)
+    except ValueError as exc:
+        raise argparse.ArgumentTypeError(str(exc)) from None
+
+
+def _frame_rate(text: str) -> float:
+    """argparse type of ``--frame-rate``: a positive finite number of frames per second."""
+    from modescope.core.sources.frames import check_frame_rate
+    try:
+        return check_frame_rate("--frame-rate", float(text))
+    except ValueError as exc:
+        message = str(exc) if "frame" in str(exc) else f"expected a number, got {text!r}"
+        raise argparse.ArgumentTypeError(message) from None
 
 
 def resume_command(args: argparse.Namespace, written) -> str:

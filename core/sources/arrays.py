@@ -43,6 +43,7 @@ __all__ = ["ARRAY_SUFFIXES", "ArrayInfo", "ArrayFileError", "probe_array", "read
 
 ARRAY_SUFFIXES = (".npy",)
 
+_MAGIC = b"\x93NUMPY"                # numpy's .npy format specification
 _LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
 _MODES = {1: "L", 3: "RGB", 4: "RGBA"}
 _LOCAL = threading.local()          # one open mapping per thread and file (see _mapping)
@@ -81,6 +82,14 @@ class ArrayInfo:
 
 def _open(path: str) -> np.memmap | np.ndarray:
     """Open ``path`` memory-mapped, or raise ArrayFileError with a plain reason."""
+    try:
+        with open(path, "rb") as handle:
+            magic = handle.read(len(_MAGIC))
+    except OSError as exc:
+        raise ArrayFileError(f"cannot be read ({exc.strerror or exc})") from None
+    if magic != _MAGIC:
+        raise ArrayFileError("is not a NumPy array file Modescope can read (it does not start "
+                             "with the .npy signature; .npz archives are not frame stacks)")
     try:
         return np.load(path, mmap_mode="r", allow_pickle=False)
     except ValueError as exc:

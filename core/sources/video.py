@@ -117,7 +117,8 @@ def _open(path: str):
     except MemoryError:
         raise
     except _failures() as exc:
-        raise VideoFileError(f"not a video Modescope can read ({_plain(exc)})") from None
+        raise VideoFileError(f"not a video Modescope can read (FFmpeg says: {_plain(exc)}; "
+                             "the file may be damaged, truncated or of another kind)") from None
     if not container.streams.video:
         container.close()
         raise VideoFileError("holds no video stream")
