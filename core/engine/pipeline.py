@@ -29,7 +29,9 @@ from modescope.core.engine.streaming import StreamingSVD
 from modescope.core.errors import (AnalysisCancelled, ModescopeError, NoUsableImagesError,
                                    SourceError)
 from modescope.core.sources.decode import analysis_shape, load_image
+from modescope.core.sources.frames import FrameRange
 from modescope.core.sources.scan import Problem, SourceSet, scan_sources
+from modescope.core.sources.sequences import is_sequence
 from modescope.core.validation import check_int
 
 __all__ = ["AnalysisOptions", "Progress", "AnalysisResult", "scan", "analyze", "update_analysis",
@@ -278,7 +280,9 @@ def load_analysis_image(decomposition: Decomposition, index: int) -> np.ndarray:
         raise SourceError(f"{path}: the source file is missing (moved or deleted since the "
                           f"analysis)")
     try:
-        found = scan_sources([path], color=color, resize_mismatched=True)
+        # one frame of a video or stack is looked for, not a reference per frame of the file
+        frames = FrameRange(page, page + 1) if is_sequence(path) else None
+        found = scan_sources([path], color=color, resize_mismatched=True, frames=frames)
     except ModescopeError as exc:
         raise SourceError(f"{path}: cannot be read again: {exc}") from None
     refs = [r for r in found.images if r.page == page]

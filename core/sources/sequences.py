@@ -11,6 +11,7 @@ rules after the frame is read (resize, downscale) are those of image files.
 from __future__ import annotations
 
 import os
+import threading
 
 import numpy as np
 
@@ -23,6 +24,8 @@ from modescope.core.sources.video import (VIDEO_SUFFIXES, VideoFileError, probe_
 
 SEQUENCE_SUFFIXES = VIDEO_SUFFIXES + ARRAY_SUFFIXES
 _LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
+_PROBED: dict = {}                      # path -> (size, mtime, inode), probe result
+_PROBED_LOCK = threading.Lock()
 
 
 class SequenceError(ValueError):
@@ -53,20 +56,41 @@ def probe_sequence(path: str, frames: FrameRange | None):
     SequenceError
         If the file cannot be used, or ``frames`` selects none of its frames.
     """
-    try:
-        if _is_array(path):
-            info = probe_array(path)
-            n, mode, rows, cols, rate = info.n_frames, info.mode, info.rows, info.cols, None
-        else:
-            info = probe_video(path)
-            n, mode, rows, cols, rate = info.n_frames, "RGB", info.rows, info.cols, info.rate
-    except (ArrayFileError, VideoFileError) as exc:
-        raise SequenceError(exc.reason) from None
+    n, mode, rows, cols, rate = _probe_cached(path)
     numbers = range(n) if frames is None else frames.numbers(n)
     if len(numbers) == 0:
         raise SequenceError(f"the frame range {frames} selects none of its {n} frames "
                             "(frames are numbered from 0)")
     return numbers, mode, rows, cols, rate
+
+
+def _probe_cached(path: str) -> tuple:
+    """``(frames, mode, rows, cols, rate)`` of ``path``, remembered while the file is unchanged
+    (reading one frame again, as the workbench does, need not count a long video's frames)."""
+    try:
+        info = os.stat(path)
+        stamp = (info.st_size, info.st_mtime_ns, info.st_ino)
+    except OSError:
+        stamp = None
+    with _PROBED_LOCK:
+        held = _PROBED.get(path)
+    if held is not None and stamp is not None and held[0] == stamp:
+        return held[1]
+    try:
+        if _is_array(path):
+            a = probe_array(path)
+            found = (a.n_frames, a.mode, a.rows, a.cols, None)
+        else:
+            v = probe_video(path)
+            found = (v.n_frames, "RGB", v.rows, v.cols, v.rate)
+    except (ArrayFileError, VideoFileError) as exc:
+        raise SequenceError(exc.reason) from None
+    if stamp is not None:
+        with _PROBED_LOCK:
+            if len(_PROBED) >= 64:
+                _PROBED.pop(next(iter(_PROBED)))
+            _PROBED[path] = (stamp, found)
+    return found
 
 
 def _read(path: str, frame: int, color: str) -> tuple[np.ndarray, np.ndarray | None]:

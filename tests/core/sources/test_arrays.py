@@ -214,3 +214,13 @@ def test_bad_frame_rates_are_refused():
     from modescope.core.output.model_metadata import check_metadata
     with pytest.raises(ValueError, match="'frame_rate' must be a positive number"):
         check_metadata({"frame_rate": -2}, 1, "modescope-model", 1)
+
+
+def test_an_analysed_frame_is_read_again_by_its_number(tmp_path):
+    from modescope.core.engine.pipeline import load_analysis_image
+    frames = low_rank_frames(n=12)
+    np.save(tmp_path / "s.npy", frames)
+    d = analyze([tmp_path / "s.npy"], AnalysisOptions(rank=2, frames="3::4")).decomposition
+    assert d.pages.tolist() == [3, 7, 11]
+    np.testing.assert_array_equal(load_analysis_image(d, 1)[:, :, 0],
+                                  frames[7].astype(np.float32) / np.float32(255))
