@@ -14,6 +14,7 @@ from modescope.app.cli.common import (EXIT_INTERRUPTED, EXIT_OK, EXIT_UNUSABLE, 
 from modescope.app.cli.writing import check_output, model_name
 from modescope.core.review.accuracy import describe_accuracy
 from modescope.app.words import counted
+from modescope.core.engine.cluster import ClusterError
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import save_model
 from modescope.core.engine.pipeline import AnalysisOptions, analyze
@@ -57,6 +58,12 @@ def register(subparsers) -> None:
                         "and no certificate")
     a.add_argument("--workers", type=int, default=0,
                    help="decoding threads (default 0: chosen from the image size)")
+    a.add_argument("--engine", choices=("local", "dask"), default="local",
+                   help="where the analysis runs: this machine (local, default) or a Dask "
+                        "cluster (dask; needs pip install 'modescope[cluster]')")
+    a.add_argument("--scheduler", metavar="ADDRESS", default=None,
+                   help="with --engine dask: address of a running Dask scheduler, such as "
+                        "tcp://10.0.0.5:8786 (default: start a local cluster on this machine)")
     a.add_argument("--quiet", action="store_true", help="no progress display")
     a.set_defaults(func=run)
 
@@ -75,6 +82,9 @@ def run(args: argparse.Namespace) -> int:
     except (TypeError, ValueError) as exc:
         print(f"modescope analyze: {exc}", file=sys.stderr)
         return EXIT_USAGE
+    if getattr(args, "scheduler", None) is not None and getattr(args, "engine", "local") != "dask":
+        print("modescope analyze: --scheduler needs --engine dask", file=sys.stderr)
+        return EXIT_USAGE
     output = Path(args.output)
     if output.exists() and output.is_dir():
         print(f"modescope analyze: {output}: is a folder; give a file name such as "
@@ -90,7 +100,9 @@ def run(args: argparse.Namespace) -> int:
                          "write nothing)")
     try:
         with stop:
-            result = analyze(args.sources, options, progress=progress, cancel=stop)
+            result = _analyze(args, options, progress, stop)
+    except ClusterError as exc:               # the cluster, not the images: no "nothing usable"
+        return failed("analyze", exc)
     except (ModescopeError, MemoryError, OSError, KeyboardInterrupt) as exc:
         return failed("analyze", exc, unusable="nothing usable: ",
                        memory_hint="; try --downscale 2 (or more) or a smaller --block-size")
@@ -158,6 +170,15 @@ def _frame_rate(text: str) -> float:
     except ValueError as exc:
         message = str(exc) if "frame" in str(exc) else f"expected a number, got {text!r}"
         raise argparse.ArgumentTypeError(message) from None
+
+
+def _analyze(args: argparse.Namespace, options: AnalysisOptions, progress, cancel):
+    """Run the analysis on the engine asked for (``--engine``, ``--scheduler``)."""
+    if getattr(args, "engine", "local") == "dask":
+        from modescope.core.engine.cluster import analyze_on_cluster
+        return analyze_on_cluster(args.sources, options, scheduler=args.scheduler,
+                                  progress=progress, cancel=cancel)
+    return analyze(args.sources, options, progress=progress, cancel=cancel)
 
 
 def resume_command(args: argparse.Namespace, written) -> str:
