@@ -34,6 +34,7 @@ from modescope.app.desktop.icon import app_icon
 from modescope.app.desktop.settings import Settings
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.views.duplicates import DuplicatesView
+from modescope.app.desktop.views.frequencies import FrequenciesView
 from modescope.app.desktop.views.gallery import BasisGallery
 from modescope.app.desktop.views.image_list import ImageListView
 from modescope.app.desktop.views.inspector import Inspector
@@ -61,6 +62,7 @@ VIEW_SPECS = (
     ("weightsDock", "Weights", WeightsView),
     ("outliersDock", "Outliers", OutlierView),
     ("duplicatesDock", "Near-duplicates", DuplicatesView),
+    ("frequenciesDock", "Frequencies", FrequenciesView),
 )
 
 #: Longest wait for each worker (analysis, scan, views, export) when the window closes.

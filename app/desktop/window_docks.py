@@ -52,7 +52,8 @@ class DockLayoutMixin:
         for dock in d.values():
             dock.setFloating(False)
             dock.show()
-        tabs = (("outliersDock", "weightsDock"), ("duplicatesDock", "imagesDock"))
+        tabs = (("outliersDock", "weightsDock"), ("duplicatesDock", "imagesDock"),
+                ("frequenciesDock", "weightsDock"))
         for name, _beside in tabs:   # out of the way, so no row of docks wider than the window
             self.removeDockWidget(d[name])
         self.addDockWidget(Qt.DockWidgetArea.LeftDockWidgetArea, d["sourcesDock"])
@@ -82,7 +83,8 @@ class DockLayoutMixin:
             return max(d[n].minimumSizeHint().width() for n in names)
 
         return (least("sourcesDock", "imagesDock", "duplicatesDock")
-                + least("weightsDock", "outliersDock") + least("spectrumDock") + _SEPARATORS)
+                + least("weightsDock", "outliersDock", "frequenciesDock") + least("spectrumDock")
+                + _SEPARATORS)
 
     def _size_docks(self, width: int, height: int) -> None:
         d = self.docks
