@@ -78,7 +78,7 @@ from modescope.core.sources.pixels import (_DecodeFailure, _downscale, _jpeg_dra
                                            _open_reduced, _resize, _to_float)
 from modescope.core.sources.scan import ImageRef, Problem, SourceSet
 from modescope.core.sources.sequences import (SequenceError, decode_frame, frame_preview,
-                                              is_sequence)
+                                              hold_videos, is_sequence, is_video)
 
 __all__ = ["analysis_shape", "load_image", "load_preview", "Block", "iter_blocks"]
 
@@ -390,12 +390,13 @@ def _decode_chunk(jobs, source_set: SourceSet, f: int, buffer: np.ndarray,
     """
     failures = []
     exact8 = True
-    for row, ref in jobs:
-        try:
-            exact8 &= _decode(ref, source_set, f, buffer[row].reshape(shape),
-                              None if raw is None else raw[row].reshape(shape), draft)
-        except _DecodeFailure as failure:
-            failures.append((row, failure.reason))
+    with hold_videos(ref.path for _, ref in jobs):   # a video's frames in one run, in order
+        for row, ref in jobs:
+            try:
+                exact8 &= _decode(ref, source_set, f, buffer[row].reshape(shape),
+                                  None if raw is None else raw[row].reshape(shape), draft)
+            except _DecodeFailure as failure:
+                failures.append((row, failure.reason))
     return failures, exact8
 
 
@@ -469,7 +470,8 @@ def _generate_blocks(source_set: SourceSet, block_size: int, f: int, workers: in
         buffer = np.empty((stop - start, pixels), dtype=np.float32)
         raw = np.empty((stop - start, pixels), dtype=np.uint8) if keep_raw else None
         jobs = [(row, images[start + row]) for row in range(stop - start)]
-        n_chunks = min(workers, len(jobs))
+        # a video decodes forward in one run (FFmpeg threads inside); split, it would seek
+        n_chunks = 1 if any(is_video(ref.path) for _, ref in jobs) else min(workers, len(jobs))
         step = -(-len(jobs) // n_chunks)
         futures: list[Future] = [
             executor.submit(_decode_chunk, jobs[i:i + step], source_set, f, buffer, shape, raw,

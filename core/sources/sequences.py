@@ -19,7 +19,7 @@ from modescope.core.sources.arrays import (ARRAY_SUFFIXES, ArrayFileError, array
                                            probe_array, read_array_frame)
 from modescope.core.sources.frames import FrameRange
 from modescope.core.sources.pixels import _DecodeFailure, _downscale, _fit, _resize
-from modescope.core.sources.video import (VIDEO_SUFFIXES, VideoFileError, probe_video,
+from modescope.core.sources.video import (VIDEO_SUFFIXES, VideoFileError, hold, probe_video,
                                           read_video_frame)
 
 SEQUENCE_SUFFIXES = VIDEO_SUFFIXES + ARRAY_SUFFIXES
@@ -39,6 +39,17 @@ class SequenceError(ValueError):
 def is_sequence(path: str) -> bool:
     """Return True when ``path``'s suffix is a video's or an array stack's."""
     return os.path.splitext(path)[1].lower() in SEQUENCE_SUFFIXES
+
+
+def is_video(path: str) -> bool:
+    """Return True when ``path``'s suffix is a video's."""
+    return os.path.splitext(path)[1].lower() in VIDEO_SUFFIXES
+
+
+def hold_videos(paths):
+    """Context that keeps other threads off the video readers of ``paths`` for a run of
+    frames (see :func:`modescope.core.sources.video.hold`)."""
+    return hold(paths)
 
 
 def _is_array(path: str) -> bool:

@@ -16,9 +16,11 @@ converted by FFmpeg to 8-bit RGB (``rgb24``) and then follows the rules of image
 divided by 255; ``color="gray"`` takes the BT.601 luma of the RGB values). A rotation stored in
 the file's metadata (phone videos) is not applied: frames are analysed as stored.
 
-Reading a frame: each decoding thread keeps the file open and decodes forward, so frames asked
-for in order are decoded once each. A frame far ahead of, or behind, the last one decoded is
-reached by seeking to the key frame before it; the frame number of a decoded frame is then
+Reading a frame: one reader per file is kept open for the process, and it decodes forward, so
+frames asked for in order are decoded once each. A decoding thread holds the file's lock for a
+whole run of frames (:func:`hold`), so two threads never interleave their frames and the reader
+keeps going forward. A frame far ahead of, or behind, the last one decoded is reached by seeking
+to the key frame before it; the frame number of a decoded frame is then
 ``round((pts - start_time) * time_base * rate)``, which assumes a constant frame rate (the
 common case for cameras and simulations; a variable-rate file may then have a frame read
 twice or skipped near a seek).
@@ -31,21 +33,26 @@ guess from the time stamps when the file states none; None when neither is known
 
 from __future__ import annotations
 
+import contextlib
 import os
 import threading
 from dataclasses import dataclass
+from typing import Iterator
 
 import numpy as np
 
 __all__ = ["VIDEO_SUFFIXES", "VideoInfo", "VideoFileError", "probe_video", "read_video_frame",
-           "video_available"]
+           "video_available", "hold"]
 
 VIDEO_SUFFIXES = (".mp4", ".m4v", ".mov", ".avi", ".mkv", ".webm")
 
 # a frame at most this far ahead of the last one decoded is reached by decoding forward
 # (cheaper than a seek to the key frame before it: our choice, no published source)
-_FORWARD_LIMIT = 48
-_LOCAL = threading.local()
+_FORWARD_LIMIT = 64
+_MAX_OPEN = 4                     # readers kept open at once (least recently used closed first)
+_READERS: dict = {}               # path -> _Reader, in order of use
+_LOCKS: dict = {}                 # path -> RLock held while a reader of that path is used
+_GUARD = threading.Lock()         # guards the two dicts
 
 
 class VideoFileError(ValueError):
@@ -247,24 +254,58 @@ class _Reader:
                 return frame.to_ndarray(format="rgb24")
 
 
+def _lock(path: str) -> threading.RLock:
+    with _GUARD:
+        lock = _LOCKS.get(path)
+        if lock is None:
+            lock = _LOCKS[path] = threading.RLock()
+        return lock
+
+
+@contextlib.contextmanager
+def hold(paths) -> Iterator[None]:
+    """Hold the readers of the video files among ``paths`` for a run of frames.
+
+    The locks are taken in sorted order (no two holders can wait for each other); a thread
+    that holds them reads its frames without another thread moving the readers in between.
+    """
+    wanted = sorted({p for p in paths if os.path.splitext(p)[1].lower() in VIDEO_SUFFIXES})
+    with contextlib.ExitStack() as stack:
+        for path in wanted:
+            stack.enter_context(_lock(path))
+        yield
+
+
 def _reader(path: str) -> _Reader:
-    cache = getattr(_LOCAL, "videos", None)
-    if cache is None:
-        cache = _LOCAL.videos = {}
+    """Return the open reader of ``path`` (the caller holds the file's lock)."""
     try:
         info = os.stat(path)
     except OSError as exc:
         raise VideoFileError(f"cannot be read ({exc.strerror or exc})") from None
     stamp = (info.st_size, info.st_mtime_ns, info.st_ino)
-    held = cache.get(path)
-    if held is not None and held.stamp == stamp:
-        return held
+    with _GUARD:
+        held = _READERS.pop(path, None)
+        if held is not None and held.stamp == stamp:
+            _READERS[path] = held            # most recently used last
+            return held
     if held is not None:
-        cache.pop(path).close()
-    if len(cache) >= 2:                   # a decoding thread rarely moves between videos
-        cache.pop(next(iter(cache))).close()
-    cache[path] = _Reader(path, stamp)
-    return cache[path]
+        held.close()
+    reader = _Reader(path, stamp)
+    closing = []
+    with _GUARD:
+        _READERS[path] = reader
+        while len(_READERS) > _MAX_OPEN:
+            old_path = next(iter(_READERS))
+            lock = _LOCKS.get(old_path)
+            if lock is None or not lock.acquire(blocking=False):
+                break                        # in use by another thread: closed later
+            try:
+                closing.append(_READERS.pop(old_path))
+            finally:
+                lock.release()
+    for old in closing:
+        old.close()
+    return reader
 
 
 def read_video_frame(path: str, frame: int) -> np.ndarray:
@@ -287,21 +328,23 @@ def read_video_frame(path: str, frame: int) -> np.ndarray:
         If PyAV is missing, the file cannot be opened, or the frame cannot be decoded or lies
         past the end of the stream.
     """
-    reader = _reader(path)
-    try:
-        return reader.read(frame)
-    except MemoryError:
-        raise
-    except VideoFileError:
-        _drop(path)
-        raise
-    except _failures() as exc:
-        _drop(path)
-        raise VideoFileError(f"frame {frame} cannot be decoded ({_plain(exc)})") from None
+    with _lock(path):
+        reader = _reader(path)
+        try:
+            return reader.read(frame)
+        except MemoryError:
+            raise
+        except VideoFileError:
+            _drop(path)
+            raise
+        except _failures() as exc:
+            _drop(path)
+            raise VideoFileError(f"frame {frame} cannot be decoded ({_plain(exc)})") from None
 
 
 def _drop(path: str) -> None:
-    cache = getattr(_LOCAL, "videos", {})
-    held = cache.pop(path, None)
+    """Close the reader of ``path`` (after a failure: the next read opens the file anew)."""
+    with _GUARD:
+        held = _READERS.pop(path, None)
     if held is not None:
         held.close()

@@ -194,3 +194,18 @@ def test_preview_of_a_frame(lossless):
     np.testing.assert_allclose(small, expected, atol=1e-6)
     with pytest.raises(SourceError, match="past the end"):
         load_preview(path, page=99)
+
+
+def test_blocks_decoded_by_two_threads_hold_the_right_frames(tmp_path):
+    frames = smooth_frames(90, 16, 24)
+    path = tmp_path / "many.mkv"
+    write_video(path, frames, "ffv1", rate=30, pix_fmt="bgr0", options={"g": "8"})
+    sset = scan_sources([path], color="rgb")
+    from modescope.core.sources.decode import iter_blocks
+    for block in iter_blocks(sset, block_size=16, workers=2):
+        for column, index in zip(block.data.T, block.indices):
+            expected = frames[sset.images[index].page].astype(np.float32) / np.float32(255)
+            np.testing.assert_array_equal(column, expected.ravel())
+    # and through the whole analysis: the mean image is the frames' mean (numpy, float64)
+    d = analyze([path], AnalysisOptions(rank=2, color="rgb", block_size=16, workers=2)).decomposition
+    np.testing.assert_allclose(d.mean.reshape(16, 24, 3), frames.mean(axis=0) / 255, atol=1e-5)
