@@ -51,7 +51,7 @@ def _table(columns, tip: str, parent: QWidget) -> QTableWidget:
     table.setEditTriggers(QAbstractItemView.EditTrigger.NoEditTriggers)
     table.setSelectionBehavior(QAbstractItemView.SelectionBehavior.SelectRows)
     table.horizontalHeader().setSectionResizeMode(QHeaderView.ResizeMode.ResizeToContents)
-    table.horizontalHeader().setStretchLastSection(True)
+    table.verticalHeader().setDefaultSectionSize(table.fontMetrics().height() + 6)
     table.setToolTip(tip)
     return table
 
