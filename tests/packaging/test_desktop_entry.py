@@ -64,8 +64,9 @@ def test_metainfo_passes_appstreamcli_validate():
     done = subprocess.run([tool, "validate", "--no-net", str(METAINFO)], capture_output=True,
                           text=True, timeout=60)
     assert done.returncode == 0, done.stdout + done.stderr
-    # no error, warning or info line: only the final verdict (and pedantic notes elsewhere)
-    flagged = [line for line in done.stdout.splitlines() if line[:2] in ("E:", "W:", "I:")]
+    # no error or warning line. Info lines are allowed: AppStream 1.0 calls <developer_name>
+    # deprecated (an info) while 0.16, Debian 12's, does not know its successor <developer>
+    flagged = [line for line in done.stdout.splitlines() if line[:2] in ("E:", "W:")]
     assert flagged == []
 
 
