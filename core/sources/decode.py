@@ -1,7 +1,7 @@
 """Decode the images of a :class:`~modescope.core.sources.scan.SourceSet` into float32 columns.
 
 :func:`load_image` decodes one image; :func:`iter_blocks` streams the whole collection as blocks
-of columns of the data matrix, decoding on a small thread pool one block ahead of the caller.
+of columns of the data matrix, decoding on a small thread pool two blocks ahead of the caller.
 
 Decoding rules
 --------------
@@ -64,6 +64,7 @@ from __future__ import annotations
 
 import contextlib
 import math
+from collections import deque
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Callable, Iterator
@@ -404,7 +405,7 @@ def iter_blocks(source_set: SourceSet, *, block_size: int = 64, downscale: int =
                 workers: int = 2,
                 cancel: Callable[[], bool] | None = None,
                 keep_raw: bool = False, jpeg_draft: bool = True) -> Iterator[Block]:
-    """Decode the collection in blocks of columns, one block ahead of the caller.
+    """Decode the collection in blocks of columns, two blocks ahead of the caller.
 
     Parameters
     ----------
@@ -456,6 +457,10 @@ def iter_blocks(source_set: SourceSet, *, block_size: int = 64, downscale: int =
                             bool(keep_raw), draft)
 
 
+#: Blocks being decoded ahead of the one the caller works on.
+_AHEAD = 2
+
+
 def _generate_blocks(source_set: SourceSet, block_size: int, f: int, workers: int,
                      cancel: Callable[[], bool] | None,
                      shape: tuple[int, int, int], keep_raw: bool = False,
@@ -502,21 +507,20 @@ def _generate_blocks(source_set: SourceSet, block_size: int, f: int, workers: in
         return Block(start=start, indices=ok + start, data=kept.T, problems=problems,
                      exact8=exact8, raw8=raw)
 
-    pending = None
+    pending: deque = deque()
     try:
-        if n == 0:
-            return
-        pending = submit(0)
-        next_start = block_size
-        while pending is not None:
+        next_start = 0
+        while next_start < n or pending:
             if cancel is not None and cancel():
                 return
-            upcoming = submit(next_start) if next_start < n else None
-            next_start += block_size
-            current, pending = pending, upcoming
-            yield collect(current)
+            # _AHEAD blocks in flight: the decoding threads keep working while the caller's
+            # update of one block takes longer than decoding the next
+            while next_start < n and len(pending) < _AHEAD:
+                pending.append(submit(next_start))
+                next_start += block_size
+            yield collect(pending.popleft())
     finally:
-        if pending is not None:
-            for fut in pending[4]:
+        for waiting in pending:
+            for fut in waiting[4]:
                 fut.cancel()
         executor.shutdown(wait=True, cancel_futures=True)
