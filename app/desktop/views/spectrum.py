@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import Qt, QTimer, Slot
+from PySide6.QtCore import Qt, Slot
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QDoubleSpinBox, QHBoxLayout, QLabel, QPushButton, QVBoxLayout,
                                QWidget)
@@ -23,6 +23,7 @@ from modescope.core.review.rank import DEFAULT_ENERGY_SHARE, energy_rank, gavish
 from modescope.app.desktop.imaging import NO_VARIATION
 from modescope.app.words import counted
 from modescope.app.desktop.redraw import ThrottledRedraw
+from modescope.app.desktop.views.drag_line import SnapDrag
 from modescope.app.desktop.state import AppState
 
 __all__ = ["SpectrumView", "log_ticks"]
@@ -77,7 +78,6 @@ class SpectrumView(ThrottledRedraw, QWidget):
             raise TypeError(f"state must be an AppState, got {type(state).__name__}")
         self.state = state
         self._syncing = False
-        self._pending_rank: int | None = None
         self.energy_suggestion: int | None = None
         self.gd_suggestion = None  # core.rank.RankSuggestion
 
@@ -88,7 +88,8 @@ class SpectrumView(ThrottledRedraw, QWidget):
         self._build_suggestion_lines()
         self._build_layout(rows)
         self._init_redraw_timer()
-        self._build_drag_timer()
+        self.rank_drag = SnapDrag(self.rank_lines, self._rank_bounds, self._write_rank,
+                                  self.DRAG_MS, self)
         self._wire()
 
         if state.decomposition is not None:
@@ -215,20 +216,10 @@ class SpectrumView(ThrottledRedraw, QWidget):
             lay.addLayout(row)
         lay.addWidget(self.plots, 1)
 
-    def _build_drag_timer(self) -> None:
-        """A rank line drag writes the rank at most every DRAG_MS."""
-        self._drag_timer = QTimer(self)
-        self._drag_timer.setSingleShot(True)
-        self._drag_timer.setInterval(self.DRAG_MS)
-
     def _wire(self) -> None:
         """Every connection of the view, in one place."""
         self.state.decompositionChanged.connect(self._schedule)
         self.state.rankChanged.connect(self._on_rank)
-        for line in self.rank_lines:
-            line.sigPositionChanged.connect(self._on_line_moved)
-            line.sigPositionChangeFinished.connect(self._on_line_finished)
-        self._drag_timer.timeout.connect(self._push_rank)
         self.threshold.valueChanged.connect(self._update_suggestions)
         self.use_energy.clicked.connect(self._use_energy)
         self.use_gd.clicked.connect(self._use_gd)
@@ -341,41 +332,18 @@ class SpectrumView(ThrottledRedraw, QWidget):
         self._update_summary()
 
     def _set_lines(self, rank: int) -> None:
-        self._syncing = True
-        try:
-            for line in self.rank_lines:
-                if line.value() != rank:
-                    line.setValue(rank)
-        finally:
-            self._syncing = False
+        self.rank_drag.set_value(rank)
 
     # ----- view -> state ---------------------------------------------------------------------
-    @Slot(object)
-    def _on_line_moved(self, line) -> None:
-        if self._syncing:
-            return
+    def _rank_bounds(self) -> tuple[int, int] | None:
+        """The ranks a drag of the rank line may reach (None when there is no analysis)."""
         d = self.state.decomposition
         if d is None or d.rank == 0:
-            return
-        r = int(min(max(round(line.value()), 1), d.rank))
-        self._set_lines(r)  # snap both lines to the whole number
-        self._pending_rank = r
-        if not self._drag_timer.isActive():
-            self._drag_timer.start()
+            return None
+        return 1, d.rank
 
-    @Slot(object)
-    def _on_line_finished(self, line) -> None:
-        if self._syncing:
-            return
-        self._on_line_moved(line)
-        self._drag_timer.stop()
-        self._push_rank()
-
-    @Slot()
-    def _push_rank(self) -> None:
-        if self._pending_rank is None:
-            return
-        r, self._pending_rank = self._pending_rank, None
+    def _write_rank(self, r: int) -> None:
+        """Write the rank a drag of the rank line reached (called by ``rank_drag``)."""
         self._syncing = True
         try:
             self.state.set_rank(r)

@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import numpy as np
 import pyqtgraph as pg
-from PySide6.QtCore import QRectF, QSignalBlocker, Qt, QTimer, Signal, Slot
+from PySide6.QtCore import QRectF, QSignalBlocker, Qt, Signal, Slot
 from PySide6.QtGui import QColor
 from PySide6.QtWidgets import (QComboBox, QGraphicsRectItem, QHBoxLayout, QLabel, QSplitter,
                                QVBoxLayout, QWidget)
@@ -29,6 +29,7 @@ from modescope.app.desktop.imaging import NO_VARIATION
 from modescope.app.words import counted
 from modescope.app.desktop.display import display_name, display_path
 from modescope.app.desktop.redraw import ThrottledRedraw
+from modescope.app.desktop.views.drag_line import SnapDrag
 from modescope.app.desktop.state import AppState
 
 __all__ = ["WeightsView", "POINT_COLOURS"]
@@ -113,7 +114,6 @@ class WeightsView(ThrottledRedraw, QWidget):
             raise TypeError(f"state must be an AppState, got {type(state).__name__}")
         self.state = state
         self._syncing = False
-        self._pending_selected: int | None = None
 
         self._build_brushes()
         top = self._build_controls()
@@ -122,7 +122,8 @@ class WeightsView(ThrottledRedraw, QWidget):
         self._build_sequence()
         self._build_layout(top)
         self._init_redraw_timer()
-        self._build_drag_timer()
+        self.seq_drag = SnapDrag((self.seq_line,), self._seq_bounds, self._select_number,
+                                 self.DRAG_MS, self)
         self._wire()
 
         if state.decomposition is not None:
@@ -177,6 +178,11 @@ class WeightsView(ThrottledRedraw, QWidget):
                                            brush=None, symbol="o")
         self.plane.addItem(self.set_marks)
         self.plane.addItem(self.sel_mark)
+        # new images checked against the analysis (views/checked.py): diamonds over the cloud
+        self._checked_weights = None
+        self.checked_points = pg.ScatterPlotItem(size=10, symbol="d", pen=pg.mkPen(90, 20, 0),
+                                                 brush=pg.mkBrush(240, 80, 20, 220))
+        self.plane.addItem(self.checked_points)
         self.plane.addItem(pg.InfiniteLine(0, angle=90, pen=_ZERO_PEN), ignoreBounds=True)
         self.plane.addItem(pg.InfiniteLine(0, angle=0, pen=_ZERO_PEN), ignoreBounds=True)
         self.colour_bar = pg.ColorBarItem(values=(0, 1), colorMap=self._cmap,
@@ -237,12 +243,6 @@ class WeightsView(ThrottledRedraw, QWidget):
         lay.addLayout(top)
         lay.addWidget(self.splitter, 1)
 
-    def _build_drag_timer(self) -> None:
-        """A drag of the sequence line selects an image at most every DRAG_MS."""
-        self._drag_timer = QTimer(self)
-        self._drag_timer.setSingleShot(True)
-        self._drag_timer.setInterval(self.DRAG_MS)
-
     def _wire(self) -> None:
         """Every connection of the view, in one place."""
         state = self.state
@@ -256,9 +256,6 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.scatter.sigClicked.connect(self._on_points_clicked)
         self.plane_vb.sigBoxSelected.connect(self._on_box_selected)
         self.seq_widget.scene().sigMouseClicked.connect(self._on_seq_scene_click)
-        self.seq_line.sigPositionChanged.connect(self._on_seq_line_moved)
-        self.seq_line.sigPositionChangeFinished.connect(self._on_seq_line_finished)
-        self._drag_timer.timeout.connect(self._push_selected)
 
     # ----- helpers ------------------------------------------------------------------------
     def _modes(self, d: Decomposition) -> tuple[int, int]:
@@ -285,6 +282,23 @@ class WeightsView(ThrottledRedraw, QWidget):
 
     # ----- state -> view ---------------------------------------------------------------------
     @Slot()
+    def show_checked(self, weights) -> None:
+        """Draw new images checked against the analysis as diamonds in the weights plane.
+
+        ``weights`` has shape (K, m): their coordinates along every basis image (from
+        :class:`~modescope.core.review.check.CheckResult`); None removes them.
+        """
+        self._checked_weights = None if weights is None else np.asarray(weights, np.float64)
+        d = self.state.decomposition
+        self._draw_checked(*(self._modes(d) if d is not None and d.rank else (-1, -1)))
+
+    def _draw_checked(self, a: int, b: int) -> None:
+        w = self._checked_weights
+        if w is None or w.ndim != 2 or min(a, b) < 0 or max(a, b) >= w.shape[0]:
+            self.checked_points.setData(x=[], y=[])
+            return
+        self.checked_points.setData(x=w[a], y=w[b])
+
     def _redraw(self) -> None:
         self._timed_redraw(self._draw)
 
@@ -292,6 +306,7 @@ class WeightsView(ThrottledRedraw, QWidget):
         d = self.state.decomposition
         if d is None or d.rank == 0 or d.n_images == 0:
             self.scatter.setData(x=[], y=[])
+            self.checked_points.setData(x=[], y=[])
             self.seq_a.setData([], [])
             self.seq_b.setData([], [])
             self.info.setText("No analysis yet." if d is None or not d.n_images else NO_VARIATION)
@@ -312,6 +327,7 @@ class WeightsView(ThrottledRedraw, QWidget):
         idx = np.clip(np.rint((values - lo) / (hi - lo) * (POINT_COLOURS - 1)), 0,
                       POINT_COLOURS - 1).astype(np.intp)
         self.scatter.setData(x=x, y=y, brush=self._brushes[idx], data=np.arange(d.n_images))
+        self._draw_checked(a, b)
         self.colour_bar.setLevels((lo, hi))
         self.colour_bar.getAxis("left").setLabel(meaning)
         if d.residual is not None:
@@ -402,11 +418,7 @@ class WeightsView(ThrottledRedraw, QWidget):
         name = display_path(d.paths[i]) if d.paths else ""
         self.bars_widget.setToolTip(f"Weights of image {i + 1} {name} on each basis image (the "
                                     f"two modes of the weights plane in colour).")
-        self._syncing = True
-        try:
-            self.seq_line.setValue(i + 1)
-        finally:
-            self._syncing = False
+        self.seq_drag.set_value(i + 1)
 
     def _update_set_marks(self) -> None:
         d = self.state.decomposition
@@ -475,35 +487,13 @@ class WeightsView(ThrottledRedraw, QWidget):
             return
         self.select_nearest(vb.mapSceneToView(pos).x())
 
-    @Slot(object)
-    def _on_seq_line_moved(self, line) -> None:
-        if self._syncing:
-            return
+    def _seq_bounds(self) -> tuple[int, int] | None:
+        """The image numbers a drag of the sequence line may reach (None with no images)."""
         d = self.state.decomposition
         if d is None or d.n_images == 0:
-            return
-        number = int(min(max(round(line.value()), 1), d.n_images))
-        self._syncing = True
-        try:
-            if line.value() != number:
-                line.setValue(number)
-        finally:
-            self._syncing = False
-        self._pending_selected = number - 1
-        if not self._drag_timer.isActive():
-            self._drag_timer.start()
+            return None
+        return 1, d.n_images
 
-    @Slot(object)
-    def _on_seq_line_finished(self, line) -> None:
-        if self._syncing:
-            return
-        self._on_seq_line_moved(line)
-        self._drag_timer.stop()
-        self._push_selected()
-
-    @Slot()
-    def _push_selected(self) -> None:
-        if self._pending_selected is None:
-            return
-        i, self._pending_selected = self._pending_selected, None
-        self.state.set_selected(i)
+    def _select_number(self, number: int) -> None:
+        """Select image ``number`` (1-based) reached by a drag of the sequence line."""
+        self.state.set_selected(number - 1)
