@@ -26,7 +26,8 @@ Rules
   folder ("frame_2" before "frame_10", case-insensitive); the order of the sources given is kept.
 * Every page of a multi-page TIFF is one image (pages are numbered from 0). Other image formats
   contribute their first frame only.
-* Videos and NumPy ``.npy`` stacks (:data:`SEQUENCE_SUFFIXES`, found in folders like images)
+* Videos, NumPy ``.npy`` stacks and HDF5 files holding one stack (:data:`SEQUENCE_SUFFIXES`,
+  found in folders like images)
   contribute one image per frame, the page being the frame number from 0 in time order; the
   ``frames`` range of :func:`scan_sources` selects which (see
   :mod:`modescope.core.sources.frames`, :mod:`.video` and :mod:`.arrays`). A video or stack

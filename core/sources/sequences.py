@@ -1,10 +1,11 @@
-"""Files that hold many frames in time order (videos, ``.npy`` stacks), for the scan and reader.
+"""Files that hold many frames in time order (videos, ``.npy`` and HDF5 stacks), for the scan
+and the reader.
 
 Internal module (no public API): :mod:`.scan` and :mod:`.decode` ask it whether a path is such
 a file (by its suffix: :data:`SEQUENCE_SUFFIXES`), what its frames are (:func:`probe_sequence`)
 and for one frame's pixels (:func:`decode_frame`, :func:`frame_preview`). Each frame is one image
 of the collection, like a page of a multi-page TIFF: ``ImageRef(path=<the file>, page=<frame
-number from 0>)``. The readers themselves are :mod:`.video` and :mod:`.arrays`; the decoding
+number from 0>)``. The readers themselves are :mod:`.video`, :mod:`.arrays` and :mod:`.hdf5`; the decoding
 rules after the frame is read (resize, downscale) are those of image files.
 """
 
@@ -18,11 +19,12 @@ import numpy as np
 from modescope.core.sources.arrays import (ARRAY_SUFFIXES, ArrayFileError, array_to_float,
                                            probe_array, read_array_frame)
 from modescope.core.sources.frames import FrameRange
+from modescope.core.sources.hdf5 import HDF5_SUFFIXES, probe_hdf5, read_hdf5_frame
 from modescope.core.sources.pixels import _DecodeFailure, _downscale, _fit, _resize
 from modescope.core.sources.video import (VIDEO_SUFFIXES, VideoFileError, hold, probe_video,
                                           read_video_frame)
 
-SEQUENCE_SUFFIXES = VIDEO_SUFFIXES + ARRAY_SUFFIXES
+SEQUENCE_SUFFIXES = VIDEO_SUFFIXES + ARRAY_SUFFIXES + HDF5_SUFFIXES
 _LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
 _PROBED: dict = {}                      # path -> (size, mtime, inode), probe result
 _PROBED_LOCK = threading.Lock()
@@ -53,7 +55,16 @@ def hold_videos(paths):
 
 
 def _is_array(path: str) -> bool:
-    return os.path.splitext(path)[1].lower() in ARRAY_SUFFIXES
+    """True for a stack of numbers (.npy or HDF5), False for a video."""
+    return os.path.splitext(path)[1].lower() in ARRAY_SUFFIXES + HDF5_SUFFIXES
+
+
+def _is_hdf5(path: str) -> bool:
+    return os.path.splitext(path)[1].lower() in HDF5_SUFFIXES
+
+
+def _probe_stack(path: str):
+    return probe_hdf5(path) if _is_hdf5(path) else probe_array(path)
 
 
 def probe_sequence(path: str, frames: FrameRange | None):
@@ -89,7 +100,7 @@ def _probe_cached(path: str) -> tuple:
         return held[1]
     try:
         if _is_array(path):
-            a = probe_array(path)
+            a = _probe_stack(path)
             found = (a.n_frames, a.mode, a.rows, a.cols, None)
         else:
             v = probe_video(path)
@@ -108,7 +119,7 @@ def _read(path: str, frame: int, color: str) -> tuple[np.ndarray, np.ndarray | N
     """Return frame ``frame`` as float32 (rows, cols, channels) and its 8-bit values when the
     float values are exactly ``v / 255`` of them (else None)."""
     if _is_array(path):
-        stored = read_array_frame(path, frame)
+        stored = (read_hdf5_frame if _is_hdf5(path) else read_array_frame)(path, frame)
         values = array_to_float(stored, frame, color)
         luma = color == "gray" and stored.shape[2] >= 3
         if stored.dtype == np.uint8 and not luma:
@@ -159,7 +170,7 @@ def frame_preview(path: str, page: int, max_side: int, color: str | None) -> np.
     """
     try:
         if color is None:               # a file's own kind: videos are decoded as RGB
-            color = "gray" if _is_array(path) and probe_array(path).mode == "L" else "rgb"
+            color = "gray" if _is_array(path) and _probe_stack(path).mode == "L" else "rgb"
         values, _ = _read(path, page, color)
     except (ArrayFileError, VideoFileError) as exc:
         raise SequenceError(exc.reason) from None

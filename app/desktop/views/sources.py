@@ -45,7 +45,7 @@ __all__ = ["IngestPane", "make_analysis_options", "scan_collection", "describe_s
            "IMAGE_FILE_FILTER", "MODEL_FILE_FILTER"]
 
 IMAGE_FILE_FILTER = ("Images (*.png *.jpg *.jpeg *.tif *.tiff *.bmp *.webp);;"
-                     "Videos and frame stacks (*.mp4 *.m4v *.mov *.avi *.mkv *.webm *.npy);;"
+                     "Videos and frame stacks (*.mp4 *.m4v *.mov *.avi *.mkv *.webm *.npy *.h5 *.hdf5);;"
                      "All files (*)")
 MODEL_FILE_FILTER = "Modescope analysis (*.npz);;All files (*)"
 #: Start of the reason of a file that was used but drew a warning (a row of the skipped table).
