@@ -94,7 +94,11 @@ def open_client(scheduler: str | None = None, client=None, *, connect_timeout: f
         cluster = LocalCluster(n_workers=local_workers, threads_per_worker=1,
                                processes=local_processes, host="127.0.0.1", protocol="tcp://",
                                dashboard_address=None, memory_limit=memory_limit,
-                               silence_logs=logging.CRITICAL)
+                               silence_logs=logging.CRITICAL,
+                               # no dashboard; the scheduler's small HTTP server (health,
+                               # metrics) on a free loopback port instead of 8787, which
+                               # another cluster on this machine may hold
+                               scheduler_kwargs={"dashboard_address": "127.0.0.1:0"})
     except (OSError, TimeoutError, RuntimeError) as exc:
         raise ClusterError(f"cannot start a local Dask cluster on 127.0.0.1: "
                            f"{_short(exc)}") from None

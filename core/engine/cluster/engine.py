@@ -188,13 +188,16 @@ class _ClusterRun:
         """Run every pass; return the result (partial when cancelled)."""
         if self.start == "tree":
             used, mean, basis = self._tree_start()
-            mean_future = (None if used is None else
-                           self.client.scatter(mean.astype(np.float32), broadcast=True))
         else:
             used, mean = self._mean_pass()
-            mean_future = (None if used is None else
-                           self.client.scatter(mean.astype(np.float32), broadcast=True))
-            basis = None if used is None else self._start_basis(used, mean_future)
+            basis = None
+        if used is None:
+            return AnalysisResult(None, self.source_set, tuple(self.problems), True)
+        # a fresh key each time (hash=False): a scatter of equal data under the key of a
+        # future just released can be dropped by the scheduler with its dependents
+        mean_future = self.client.scatter(mean.astype(np.float32), broadcast=True, hash=False)
+        if basis is None:
+            basis = self._start_basis(used, mean_future)
         if basis is None:
             return AnalysisResult(None, self.source_set, tuple(self.problems), True)
         refined, kept = self._refine(basis, mean, mean_future, used)
@@ -319,7 +322,7 @@ class _ClusterRun:
         parts = _parts(used, self.block)
         tag = self._tag("score")
         basis32 = np.asfortranarray(basis, dtype=np.float32)
-        basis_future = self.client.scatter(basis32, broadcast=True)
+        basis_future = self.client.scatter(basis32, broadcast=True, hash=False)
         blocks = self.client.map(tasks.project_block_sums, parts, downscale=options.downscale,
                                  basis=basis_future, mean=mean_future, want_y=options.refine,
                                  tag=tag, pure=False)
