@@ -46,12 +46,13 @@ def test_pair_marks_draw_one_bracket_per_pair(qtbot, make_decomposition):
     assert marks.update(d) == ((0, 1), (2, 3))
     x, y = marks.curve.getOriginalDataset()
     s = d.singular_values
-    # segments: up from mode a, across to mode b, down to b, for each pair (modes from 1)
+    # segments: down from mode a, across to mode b, up to b, for each pair (modes from 1)
     np.testing.assert_array_equal(x, [1, 1, 1, 2, 2, 2, 3, 3, 3, 4, 4, 4])
     assert y[0] == s[0] and y[5] == s[1] and y[6] == s[2] and y[11] == s[3]
-    assert y[1] == pytest.approx(1.6 * max(s[0], s[1]))
+    assert y[1] == pytest.approx(min(s[0], s[1]) / 1.25)
     assert [lab.toPlainText() for lab in marks.labels] == ["pair 2 Hz", "pair 4.5 Hz"]
-    assert marks.labels[0].pos().y() == pytest.approx(np.log10(1.6 * s[0]))
+    assert marks.labels[1].pos().y() == pytest.approx(np.log10(s[3] / 1.25))
+    assert plot.getViewBox().viewRange()[1][0] < np.log10(s[3] / 1.25)   # room for the label
     assert marks.update(None) == () and marks.labels == []
     x, _ = marks.curve.getOriginalDataset()
     assert x is None or len(x) == 0
@@ -65,3 +66,27 @@ def test_time_axis_labels_numbers_with_seconds(make_decomposition):
     assert axis.tickStrings([1, 21, 41], 1.0, 20) == ["0", "1", "2"]  # (number - 1) / rate
     axis.set_frame_rate(d.replace(metadata={}))
     assert axis.frame_rate is None
+
+
+def test_singular_values_view_marks_the_pairs(qtbot, make_decomposition):
+    from modescope.app.desktop.state import AppState
+    from modescope.app.desktop.views.spectrum import SpectrumView
+
+    state = AppState()
+    view = SpectrumView(state)
+    qtbot.addWidget(view)
+    state.set_decomposition(make_decomposition(waves(), 5, metadata={"frame_rate": FS}))
+    view._redraw()
+    assert view.pair_marks.pairs == ((0, 1), (2, 3))
+    assert [lab.toPlainText() for lab in view.pair_marks.labels] == ["pair 2 Hz", "pair 4.5 Hz"]
+    state.set_decomposition(None)
+    view._redraw()
+    assert view.pair_marks.pairs == () and view.pair_marks.labels == []
+
+
+def test_weights_that_are_not_finite_give_a_note_not_an_error(make_decomposition):
+    d = make_decomposition(waves(n=40), 3)
+    w = d.weights.copy()
+    w[0, 5] = np.nan
+    result = sequence_report(d.replace(weights=w), 3)
+    assert result.frequencies is None and "finite" in result.note

@@ -75,7 +75,10 @@ def sequence_report(decomposition: Decomposition | None, rank: int) -> SequenceR
         _CACHE.update(ref=weakref.ref(decomposition), results={})
     results = _CACHE["results"]
     if r not in results:
-        freq = frequencies_of(decomposition, r)
+        try:
+            freq = frequencies_of(decomposition, r)
+        except ValueError as exc:       # e.g. weights that are not finite in a snapshot
+            return SequenceResult(None, None, f"No spectrum: {exc}.")
         try:
             dyn, note = dynamics_of(decomposition, r), ""
         except ValueError as exc:       # e.g. weights all zero: say so, keep the spectra
@@ -119,21 +122,36 @@ class PairMarks:
         xs, ys = [], []
         for p in report.pairs:
             a, b = p.modes
-            # a bracket above the two points: up from a, across, down to b (segment pairs);
-            # the curve takes data values (a log plot logs them), the label view coordinates
-            top = max(s[a], s[b]) * (1.6 if self.log_y else 1.08)
+            # a bracket under the two points: down from a, across, up to b (segment pairs),
+            # the label under it (below a pair the plot is mostly empty: the curve falls to
+            # the right); the curve takes data values (a log plot logs them), the label view
+            # coordinates
+            low = min(s[a], s[b]) / (1.25 if self.log_y else 1.0) - (
+                0.0 if self.log_y else 0.05 * max(s[a], s[b]))
             xs += [a + 1, a + 1, a + 1, b + 1, b + 1, b + 1]
-            ys += [s[a], top, top, top, top, s[b]]
+            ys += [s[a], low, low, low, low, s[b]]
             label = pg.TextItem(f"pair {p.frequency:.3g} {report.unit}", color=PAIR_COLOUR,
-                                anchor=(0.5, 1.0))
-            label.setPos(0.5 * (a + b) + 1, np.log10(top) if self.log_y else top)
+                                anchor=(0.5, 0.0))
+            label.setPos(0.5 * (a + b) + 1, np.log10(low) if self.log_y else low)
             label.setToolTip(f"Modes {a + 1} and {b + 1} form a pair: nearly equal singular "
                              f"values, weights a quarter period apart (phase "
                              f"{p.phase_lag:+.0f} degrees, coherence {p.coherence:.2f}).")
             self.plot.addItem(label)
             self.labels.append(label)
         self.curve.setData(np.asarray(xs, float), np.asarray(ys, float))
+        self._make_room(min(ys))
         return self.pairs
+
+    def _make_room(self, bottom: float) -> None:
+        """Lower the bottom of the plot's vertical range so the lowest label fits under its
+        bracket (18 pixels of text; a third of a decade before the plot has a size)."""
+        vb = self.plot.getViewBox()
+        y0, y1 = vb.viewRange()[1]
+        pixel = vb.viewPixelSize()[1]
+        text = 18 * pixel if np.isfinite(pixel) and 0 < pixel < (y1 - y0) else 0.3
+        need = (np.log10(bottom) if self.log_y else bottom) - text
+        if need < y0:
+            self.plot.setYRange(need, y1, padding=0)
 
 
 class TimeAxis(pg.AxisItem):

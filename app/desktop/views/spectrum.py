@@ -24,6 +24,7 @@ from modescope.app.desktop.imaging import NO_VARIATION
 from modescope.app.words import counted
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.views.drag_line import SnapDrag
+from modescope.app.desktop.views.frequency_parts import PairMarks
 from modescope.app.desktop.state import AppState
 
 __all__ = ["SpectrumView", "log_ticks"]
@@ -167,6 +168,7 @@ class SpectrumView(ThrottledRedraw, QWidget):
         self.energy_curve = self.en_plot.plot(
             [], [], pen=pg.mkPen(_ENERGY_COLOUR, width=2), symbol="o", symbolSize=4,
             symbolBrush=_ENERGY_COLOUR, symbolPen=None, name="cumulative energy")
+        self.pair_marks = PairMarks(self.sv_plot, log_y=True)   # pairs of a sequence's modes
 
     def _build_rank_lines(self) -> None:
         """The draggable rank line, once in each plot."""
@@ -235,6 +237,7 @@ class SpectrumView(ThrottledRedraw, QWidget):
                                  else NO_VARIATION)
             for item in (self.energy_line, self.threshold_line, self.gd_line, self.gd_tau_line):
                 item.setVisible(False)
+            self.pair_marks.update(None)
             return
         k = d.rank
         x = np.arange(1, k + 1, dtype=np.float64)
@@ -253,6 +256,7 @@ class SpectrumView(ThrottledRedraw, QWidget):
         self._set_lines(self.state.rank)
         self._update_suggestions()
         self._update_summary()
+        self.pair_marks.update(d)
 
     def _update_summary(self) -> None:
         d = self.state.decomposition
