@@ -33,6 +33,7 @@ from modescope.app.desktop.display import display_text
 from modescope.app.desktop.icon import app_icon
 from modescope.app.desktop.settings import Settings
 from modescope.app.desktop.state import AppState
+from modescope.app.desktop.views.checked import CheckedView
 from modescope.app.desktop.views.duplicates import DuplicatesView
 from modescope.app.desktop.views.frequencies import FrequenciesView
 from modescope.app.desktop.views.gallery import BasisGallery
@@ -62,6 +63,7 @@ VIEW_SPECS = (
     ("weightsDock", "Weights", WeightsView),
     ("outliersDock", "Outliers", OutlierView),
     ("duplicatesDock", "Near-duplicates", DuplicatesView),
+    ("checkedDock", "Checked images", CheckedView),
     ("frequenciesDock", "Frequencies", FrequenciesView),
 )
 
@@ -158,6 +160,8 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self.state.selectedChanged.connect(self._note_pick)
         # ((path, page) pairs not excluded, StoredOptions)
         self.views["outliersDock"].refitRequested.connect(self.refit_analysis)
+        self.views["checkedDock"].attach(self.views["weightsDock"],
+                                         self.views["outliersDock"].plot_widget)
         self.cancel_action.setEnabled(False)
         self._update_finish_action()
         self._update_export_action()

@@ -53,6 +53,7 @@ class DockLayoutMixin:
             dock.setFloating(False)
             dock.show()
         tabs = (("outliersDock", "weightsDock"), ("duplicatesDock", "imagesDock"),
+                ("checkedDock", "outliersDock"),
                 ("frequenciesDock", "weightsDock"))
         for name, _beside in tabs:   # out of the way, so no row of docks wider than the window
             self.removeDockWidget(d[name])

@@ -66,6 +66,10 @@ class MenusMixin:
         self.export_action = action("&Export…", self.show_export_dialog, "Ctrl+E",
                                     "Write previews, basis images, tables or a compact model "
                                     "to a folder")
+        self.check_action = action("Chec&k new images against this analysis…",
+                                   self.views["checkedDock"].choose_and_check, None,
+                                   "Score new images against the analysis shown (Phase II "
+                                   "limits) without changing it")
         self.quit_action = action("&Quit", self.close, K.Quit)
         self.start_action = action("S&tart analysis", self._start_from_pane, "Ctrl+R",
                                    "Analyse the sources with the options shown")
@@ -101,6 +105,7 @@ class MenusMixin:
         file_menu.addAction(self.open_action)
         file_menu.addAction(self.save_action)
         file_menu.addAction(self.export_action)
+        file_menu.addAction(self.check_action)
         self.recent_menu = file_menu.addMenu("&Recent analyses")
         self.recent_menu.triggered.connect(self._on_recent)
         file_menu.addSeparator()

@@ -82,6 +82,7 @@ class OutlierPlot(pg.PlotWidget):
         self._build_axes()
         self._build_points()
         self._build_limit_lines()
+        self._build_checked()
         self.setToolTip(_TOOLTIP)
         self._wire()
 
@@ -125,6 +126,58 @@ class OutlierPlot(pg.PlotWidget):
         for line in (self.q_line, self.t2_line):
             line.setZValue(-5)
             self.plot_item.addItem(line)
+
+    def _build_checked(self) -> None:
+        """New images checked against the analysis (views/checked.py): diamonds, and their
+        Phase II T² limit as a dotted line (the Q limit is the same for them)."""
+        self._checked: OutlierTable | None = None
+        self.checked_scatter = pg.ScatterPlotItem(size=10, symbol="d", pen=pg.mkPen(90, 20, 0),
+                                                  brush=pg.mkBrush(240, 80, 20, 220),
+                                                  hoverable=True, tip=self._checked_tip)
+        self.plot_item.addItem(self.checked_scatter)
+        self.t2_new_line = pg.InfiniteLine(
+            0, angle=90, pen=pg.mkPen(_LIMIT_COLOUR, width=1.5, style=Qt.PenStyle.DotLine),
+            label="T² limit, new images",
+            labelOpts={"color": _LIMIT_COLOUR, "movable": False, "position": 0.3,
+                       "rotateAxis": (1, 0), "anchors": [(1, 1), (1, 1)],
+                       "fill": pg.mkBrush(255, 255, 255, 200)})
+        self.t2_new_line.setZValue(-5)
+        self.plot_item.addItem(self.t2_new_line)
+        self.t2_new_line.hide()
+
+    def show_checked(self, table: OutlierTable | None) -> None:
+        """Draw the scores of new images checked against the analysis (Phase II limits,
+        from :func:`modescope.core.review.check.check_images`); None removes them."""
+        self._checked = table
+        self._draw_checked()
+
+    def _checked_tip(self, x, y, data) -> str:
+        c = self._checked
+        i = -1 if data is None else int(data)
+        if c is None or not 0 <= i < c.n_images:
+            return ""
+        return (f"checked image {i + 1} (diamond: a new image, not in the analysis)\n"
+                f"Q = {c.q[i]:.4g}, T² = {c.t2[i]:.4g}, score {c.score[i]:.3g}")
+
+    def checked_values(self) -> tuple[np.ndarray, np.ndarray]:
+        """Return (T², Q) of the checked images drawn, in data units (not log)."""
+        x, y = (np.asarray(v, dtype=np.float64) for v in self.checked_scatter.getData())
+        return (10.0 ** x, 10.0 ** y) if self._log else (x, y)
+
+    def _draw_checked(self) -> None:
+        t, c = self._table, self._checked
+        if t is None or c is None or c.n_images == 0:
+            self.checked_scatter.setData(x=[], y=[])
+            self.t2_new_line.hide()
+            return
+        t2, q = np.asarray(c.t2, dtype=np.float64), np.asarray(c.q, dtype=np.float64)
+        if self._log:   # the reference points' floors, so both sets share the axes
+            lim = t.limits
+            t2 = self._log10(t2, self._floor(np.asarray(t.t2, np.float64), lim.t2_limit))
+            q = self._log10(q, self._floor(np.asarray(t.q, np.float64), lim.q_limit))
+        self.checked_scatter.setData(x=t2, y=q, data=np.arange(c.n_images))
+        self._draw_limit(self.t2_new_line, c.limits.t2_limit, c.limits.t2_informative,
+                         "T² limit, new images", "F, Phase II", c.limits.level)
 
     def _wire(self) -> None:
         self.scatter.sigClicked.connect(self._on_points_clicked)
@@ -179,6 +232,7 @@ class OutlierPlot(pg.PlotWidget):
             self.q_line.hide()
             self.t2_line.hide()
             self._draw_selection()
+            self._draw_checked()
             return
         q = np.asarray(t.q, dtype=np.float64)
         t2 = np.asarray(t.t2, dtype=np.float64)
@@ -195,6 +249,7 @@ class OutlierPlot(pg.PlotWidget):
         self._draw_limit(self.t2_line, lim.t2_limit, lim.t2_informative, "T² limit",
                          T2_METHODS.get(lim.t2_method, lim.t2_method), lim.level)
         self._draw_selection()
+        self._draw_checked()
         self.plot_item.enableAutoRange()
         self._update_ticks()
 

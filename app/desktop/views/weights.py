@@ -289,6 +289,9 @@ class WeightsView(ThrottledRedraw, QWidget):
         :class:`~modescope.core.review.check.CheckResult`); None removes them.
         """
         self._checked_weights = None if weights is None else np.asarray(weights, np.float64)
+        self.plane.setTitle("Weights plane" + ("" if weights is None else
+                                               " · ◆ new images checked"), color="#222",
+                            size="10pt")
         d = self.state.decomposition
         self._draw_checked(*(self._modes(d) if d is not None and d.rank else (-1, -1)))
 
