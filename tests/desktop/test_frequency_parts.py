@@ -90,3 +90,23 @@ def test_weights_that_are_not_finite_give_a_note_not_an_error(make_decomposition
     w[0, 5] = np.nan
     result = sequence_report(d.replace(weights=w), 3)
     assert result.frequencies is None and "finite" in result.note
+
+
+def test_weights_sequence_plot_reads_time_when_the_rate_is_known(qtbot, make_decomposition):
+    from modescope.app.desktop.state import AppState
+    from modescope.app.desktop.views.weights import WeightsView
+
+    state = AppState()
+    view = WeightsView(state)
+    qtbot.addWidget(view)
+    d = make_decomposition(waves(n=40), 3, metadata={"frame_rate": FS})
+    state.set_decomposition(d)
+    view._redraw()
+    assert "against time (s)" in view.seq_plot.titleLabel.text
+    assert view.seq_time_axis.tickStrings([1, 21], 1.0, 20) == ["0", "1"]
+    x, _ = view.seq_a.getOriginalDataset()
+    assert x[0] == 1 and x[-1] == 40            # still image numbers: selection unchanged
+    state.set_decomposition(d.replace(metadata={}))
+    view._redraw()
+    assert "against image number" in view.seq_plot.titleLabel.text
+    assert view.seq_time_axis.tickStrings([1, 21], 1.0, 20) == ["1", "21"]

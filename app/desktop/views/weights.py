@@ -31,6 +31,7 @@ from modescope.app.desktop.display import display_name, display_path
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.views.drag_line import SnapDrag
 from modescope.app.desktop.state import AppState
+from modescope.app.desktop.views.frequency_parts import TimeAxis
 
 __all__ = ["WeightsView", "POINT_COLOURS"]
 
@@ -213,6 +214,8 @@ class WeightsView(ThrottledRedraw, QWidget):
         """Weights of the two plane modes against image number, with the selection line."""
         self.seq_widget = pg.PlotWidget(self, background="w")
         self.seq_plot = self.seq_widget.getPlotItem()
+        self.seq_time_axis = TimeAxis("bottom")    # seconds when the frame rate is known
+        self.seq_plot.setAxisItems({"bottom": self.seq_time_axis})
         _style(self.seq_plot)
         # the title says what the x axis counts (no axis title: the short plot keeps room for
         # its tick labels)
@@ -344,13 +347,15 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.plane_widget.setToolTip(self._plane_tip + "\n" + why)
         self.plane.setLabel("bottom", f"weight on basis image {a + 1}")
         self.plane.setLabel("left", f"weight on basis image {b + 1}")
+        self.seq_time_axis.set_frame_rate(d)
+        along = "time (s)" if self.seq_time_axis.frame_rate else "image number"
         n_idx = np.arange(1, d.n_images + 1, dtype=np.float64)
         self.seq_a.setData(n_idx, x)
         self.seq_b.setData(n_idx, y)
         self.seq_plot.setTitle(
             f"Weights on <span style='color:{_A_COLOUR.name()}'>&#9644; {a + 1}</span>&nbsp;"
-            f"and <span style='color:{_B_COLOUR.name()}'>&#9644; {b + 1}</span> against image "
-            f"number", color="#222", size="9pt")
+            f"and <span style='color:{_B_COLOUR.name()}'>&#9644; {b + 1}</span> against "
+            f"{along}", color="#222", size="9pt")
         self.bars_plot.setXRange(0.4, d.rank + 0.6, padding=0)
         self.seq_line.setBounds((1, d.n_images))
         kind = "final" if d.exact else "snapshot during the run"
