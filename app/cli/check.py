@@ -59,6 +59,10 @@ def register(subparsers) -> None:
     p.add_argument("--maps", default=None, metavar="FOLDER",
                    help="write the residual maps of the flagged images, each image's T2 "
                         "contributions and the per-pixel spread maps into this folder")
+    p.add_argument("--exact-spread", action="store_true",
+                   help="with --maps: read the model's own images once more so that the "
+                        "spread maps are exact (without it the energy beyond the model's modes "
+                        "is spread evenly over the pixels)")
     p.add_argument("--fail-on-flag", action="store_true",
                    help=f"exit with code {EXIT_FLAGGED} when any image is flagged (for "
                         "scripts and pipelines)")
@@ -110,11 +114,27 @@ def _write(args, d, result) -> list[str]:
                                protect=[args.model, *d.paths])
         lines.append(f"CSV written: {path} ({CSV_NOTE})")
     if args.maps is not None:
-        files = write_check_maps(args.maps, d, result, overwrite=bool(args.overwrite),
+        files = write_check_maps(args.maps, d, result, spread=_spread(args, d, result.rank),
+                                 overwrite=bool(args.overwrite),
                                  protect=[args.model, *args.sources])
         lines.append(f"Maps written: {counted(len(files), 'file')} in {args.maps} (maps.txt "
                      "says what each is)")
     return lines
+
+
+def _spread(args, d, rank: int):
+    """The spread maps from one pass over the model's images (None: from the model alone)."""
+    if not args.exact_spread:
+        return None
+    from modescope.core.review.maps import pixel_energy_pass, pixel_spread
+    energy, n_read, problems = pixel_energy_pass(d, progress=None if args.quiet else
+                                                 ProgressLine(sys.stderr))
+    if energy is None or n_read != d.n_images:
+        print(f"modescope check: {d.n_images - n_read} of the model's images could not be read "
+              "again; the spread maps are made from the model alone", file=sys.stderr)
+        print_problems(problems)
+        return None
+    return pixel_spread(d, rank, energy)
 
 
 def run(args: argparse.Namespace) -> int:

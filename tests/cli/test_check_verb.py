@@ -103,6 +103,15 @@ def test_maps_are_written_for_the_flagged_images(setup, capsys):
     assert resid.shape == (12, 16, 1)
     assert np.unravel_index(np.argmax(np.abs(resid[..., 0])), (12, 16)) == (3, 4)
     assert "Maps written" in capsys.readouterr().out
+    assert "spread evenly over the pixels" in (maps / "maps.txt").read_text()
+    # --exact-spread reads the model's images again: numpy.std (ddof=1) of those images
+    assert main(["check", str(model), str(tmp / "bad"), "--rank", "2", "--maps", str(maps),
+                 "--overwrite", "--exact-spread", "--quiet"]) == 0
+    assert "per-pixel energy of the images" in (maps / "maps.txt").read_text()
+    ref = np.stack([np.asarray(Image.open(p), dtype=np.float64) / 255
+                    for p in sorted((tmp / "ref").iterdir())])
+    std = np.load(maps / "std_collection.npy", allow_pickle=False)[..., 0]
+    np.testing.assert_allclose(std, np.std(ref, axis=0, ddof=1), rtol=1e-4, atol=1e-6)
 
 
 def test_bad_input_gives_a_message_and_no_traceback(setup, capsys):
