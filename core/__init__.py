@@ -20,6 +20,7 @@ from modescope.core.errors import (AnalysisCancelled, ModelFileError, ModescopeE
                                    NoUsableImagesError, SourceError)
 from modescope.core.output.model_file import load_model, save_model
 from modescope.core.review.accuracy import describe_accuracy
+from modescope.core.review.check import CheckResult, check_images, score_columns
 from modescope.core.review.duplicates import find_duplicates
 from modescope.core.review.outliers import score_table
 from modescope.core.sources.scan import SourceSet, scan_sources
@@ -32,5 +33,6 @@ __all__ = [
     "AnalysisCancelled",
     "load_model", "save_model",
     "describe_accuracy", "find_duplicates", "score_table",
+    "CheckResult", "check_images", "score_columns",
     "SourceSet", "scan_sources",
 ]
