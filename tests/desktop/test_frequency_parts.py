@@ -64,6 +64,9 @@ def test_time_axis_labels_numbers_with_seconds(make_decomposition):
     assert axis.tickStrings([1, 21], 1.0, 20) == ["1", "21"]        # no rate: the numbers
     axis.set_frame_rate(d)
     assert axis.tickStrings([1, 21, 41], 1.0, 20) == ["0", "1", "2"]  # (number - 1) / rate
+    levels = axis.tickValues(1, 201, 400)            # frames 1..201 = 0..10 s at 20 Hz
+    assert levels[0][1] == pytest.approx([1 + FS * t for t in (0, 2, 4, 6, 8, 10)])
+    assert axis.tickStrings(levels[0][1], 1.0, levels[0][0]) == ["0", "2", "4", "6", "8", "10"]
     axis.set_frame_rate(d.replace(metadata={}))
     assert axis.frame_rate is None
 

@@ -168,7 +168,15 @@ class TimeAxis(pg.AxisItem):
         self.picture = None
         self.update()
 
+    def tickValues(self, minVal, maxVal, size):  # noqa: N802 - pyqtgraph name
+        if not self.frame_rate:
+            return super().tickValues(minVal, maxVal, size)
+        rate = self.frame_rate        # round times, placed at their image numbers
+        levels = super().tickValues((minVal - 1) / rate, (maxVal - 1) / rate, size)
+        return [(spacing * rate, [v * rate + 1 for v in values]) for spacing, values in levels]
+
     def tickStrings(self, values, scale, spacing):  # noqa: N802 - pyqtgraph name
         if not self.frame_rate:
             return super().tickStrings(values, scale, spacing)
-        return [f"{(v - 1) / self.frame_rate:.4g}" for v in values]
+        # round away the float error of the mapping (1.0000000002 -> 1)
+        return [f"{round((v - 1) / self.frame_rate, 9):.6g}" for v in values]
