@@ -47,7 +47,7 @@ from typing import Callable
 import numpy as np
 
 from modescope.core.decomposition import Decomposition
-from modescope.core.engine.options import Clock
+from modescope.core.engine.options import Clock, blas_limit
 from modescope.core.engine.refine import project_block
 from modescope.core.errors import AnalysisCancelled, NoUsableImagesError, SourceError
 from modescope.core.output.atomic import atomic_write_bytes
@@ -341,7 +341,8 @@ def check_images(decomposition: Decomposition, sources, rank: int | None = None,
         raise SourceError(f"the model's images were {tuple(d.image_shape)} but its recorded "
                           f"source size {reading['source_size']} and downscale "
                           f"{reading['downscale']} give {shape}: the model file is inconsistent")
-    return _pass(d, k, level, source_set, problems, block_size, workers, progress, cancel)
+    with blas_limit(1):   # the decoding threads have the other core (see AnalysisOptions)
+        return _pass(d, k, level, source_set, problems, block_size, workers, progress, cancel)
 
 
 def _pass(d, k, level, source_set, problems, block_size, workers, progress, cancel):
