@@ -106,6 +106,12 @@ def open_client(scheduler: str | None = None, client=None, *, connect_timeout: f
         yield made
 
 
+def _where(exc) -> str:
+    """The address of the worker a KilledWorker error names."""
+    worker = getattr(exc, "last_worker", None)
+    return getattr(worker, "address", None) or "a worker"
+
+
 def _short(exc: BaseException) -> str:
     text = str(exc).strip().splitlines()
     return f"{type(exc).__name__}: {text[0]}" if text else type(exc).__name__
@@ -201,14 +207,14 @@ class Waiter:
                 time.sleep(0.05)
         except KilledWorker as exc:
             raise ClusterError(f"a Dask worker died during {what} (the task {exc.task!r} "
-                               f"failed on {exc.last_worker.address if exc.last_worker else 'a worker'}"
-                               "; often out of memory: try --downscale or a smaller "
-                               "--block-size); nothing written") from None
+                               f"failed on {_where(exc)}; a common cause is a worker running "
+                               "out of memory: a larger downscale or a smaller block size "
+                               "helps); nothing written") from None
         except (OSError, TimeoutError) as exc:
             raise ClusterError(f"lost the Dask scheduler during {what} ({_short(exc)}); "
                                "nothing written") from None
         finally:
-            leftover = [f for f in pending.values()]
+            leftover = list(pending.values())
             if leftover:
                 with contextlib.suppress(Exception):
                     self.client.cancel(leftover)
