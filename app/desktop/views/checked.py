@@ -210,13 +210,15 @@ class CheckedView(QWidget):
     def _ready(self) -> bool:
         d = self.state.decomposition
         if d is None:
-            self._say("Open or run an analysis first: new images are checked against it.")
-            return False
-        if d.residual is None or not d.exact:
-            self._say("This analysis is not finished (a partial result); finish it before "
-                      "checking new images against it.")
-            return False
-        return True
+            why = "Open or run an analysis first: new images are checked against it."
+        elif d.residual is None or not d.exact:
+            why = ("This analysis is not finished (a partial result); finish it before "
+                   "checking new images against it.")
+        else:
+            return True
+        self._say(why)
+        self._raise_dock()
+        return False
 
     def check_sources(self, sources) -> bool:
         """Check the images of ``sources`` (folders and files) in the background.

@@ -57,7 +57,8 @@ def jackson_mudholkar(lam, level):
     t1, t2, t3 = (float(np.sum(lam ** i)) for i in (1, 2, 3))
     h0 = 1 - 2 * t1 * t3 / (3 * t2 ** 2)
     c = stats.norm.ppf(level)
-    return t1 * (c * math.sqrt(2 * t2 * h0 ** 2) / t1 + 1 + t2 * h0 * (h0 - 1) / t1 ** 2) ** (1 / h0)
+    base = c * math.sqrt(2 * t2 * h0 ** 2) / t1 + 1 + t2 * h0 * (h0 - 1) / t1 ** 2
+    return t1 * base ** (1 / h0)
 
 
 # ----- limits against outside formulas -------------------------------------------------------
