@@ -137,3 +137,15 @@ def test_unknown_rate_and_too_few_frames(qtbot, make_decomposition):
 def test_state_must_be_appstate():
     with pytest.raises(TypeError, match="state must be an AppState"):
         FrequenciesView(object())
+
+
+def test_hidden_view_redraws_when_shown(qtbot, make_decomposition):
+    s = AppState()
+    view = FrequenciesView(s)
+    qtbot.addWidget(view)
+    s.set_decomposition(make_decomposition(waves(n=64), 4, metadata={"frame_rate": FS}))
+    qtbot.wait(3 * view.REDRAW_MS)
+    assert view.modes_table.rowCount() == 0              # hidden: nothing computed yet
+    view.show()
+    qtbot.waitUntil(lambda: view.modes_table.rowCount() == s.rank, timeout=2000)
+    assert "frame rate 25 Hz" in view.summary.text()

@@ -26,6 +26,8 @@ def test_sequence_report_is_shared_and_follows_the_analysis(make_decomposition):
     d = make_decomposition(waves(), 5, metadata={"frame_rate": FS})
     first = sequence_report(d, 5)
     assert sequence_report(d, 5) is first                   # computed once per analysis+rank
+    assert first.dynamics is not None
+    assert sequence_report(d, 3, dynamics=False).dynamics is None
     assert sequence_report(d, 9).frequencies.rank == 5      # clipped to k
     assert sequence_report(d, 2).frequencies.rank == 2
     assert [p.modes for p in first.frequencies.pairs] == [(0, 1), (2, 3)]
@@ -53,6 +55,9 @@ def test_pair_marks_draw_one_bracket_per_pair(qtbot, make_decomposition):
     assert [lab.toPlainText() for lab in marks.labels] == ["pair 2 Hz", "pair 4.5 Hz"]
     assert marks.labels[1].pos().y() == pytest.approx(np.log10(s[3] / 1.25))
     assert plot.getViewBox().viewRange()[1][0] < np.log10(s[3] / 1.25)   # room for the label
+    assert marks.update(d.replace(exact=False)) == ()       # a snapshot during a run
+    assert marks.labels == []
+    assert marks.update(d) == ((0, 1), (2, 3))
     assert marks.update(None) == () and marks.labels == []
     x, _ = marks.curve.getOriginalDataset()
     assert x is None or len(x) == 0

@@ -15,7 +15,7 @@ Every number comes from :mod:`modescope.core.review.frequencies` and
 :mod:`modescope.core.review.dynamics` (through
 :func:`~modescope.app.desktop.views.frequency_parts.sequence_report`). The computation runs
 in the GUI thread: a periodogram and a small SVD of a k x frames array take milliseconds for
-thousands of frames.
+thousands of frames, and only while the view is shown (a hidden view redraws when shown).
 """
 
 from __future__ import annotations
@@ -100,6 +100,7 @@ class FrequenciesView(ThrottledRedraw, QWidget):
             raise TypeError(f"state must be an AppState, got {type(state).__name__}")
         self.state = state
         self._syncing = False
+        self._stale = False
         self._result = SequenceResult(None, None, "No analysis yet.")
         self.spectrum_curves: list = []
         self.series_curves: list = []
@@ -163,6 +164,19 @@ class FrequenciesView(ThrottledRedraw, QWidget):
         self.modes_table.itemSelectionChanged.connect(self._on_rows_selected)
 
     # ----- state -> view -----------------------------------------------------------------
+    def _schedule(self, *_) -> None:
+        """Redraw soon when shown; when hidden (a tab behind another), once it is shown."""
+        if self.isVisible():
+            super()._schedule()
+        else:
+            self._stale = True
+
+    def showEvent(self, event) -> None:  # noqa: N802 - Qt name
+        super().showEvent(event)
+        if self._stale:
+            self._stale = False
+            super()._schedule()
+
     @property
     def result(self) -> SequenceResult:
         """The frequencies and dynamics shown."""

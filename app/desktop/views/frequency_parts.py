@@ -50,15 +50,18 @@ class SequenceResult:
 _CACHE: dict = {"ref": lambda: None, "results": {}}
 
 
-def sequence_report(decomposition: Decomposition | None, rank: int) -> SequenceResult:
-    """Return the frequencies and dynamics of the first ``rank`` modes (remembered for the last
-    analysis, so several views share one computation).
+def sequence_report(decomposition: Decomposition | None, rank: int, *,
+                    dynamics: bool = True) -> SequenceResult:
+    """Return the frequencies (and dynamics) of the first ``rank`` modes, remembered for the
+    last analysis so several views share one computation.
 
     Parameters
     ----------
     decomposition : Decomposition or None
     rank : int
         Leading modes to read; clipped to 1..k.
+    dynamics : bool, default True
+        Also fit the linear model (False leaves ``dynamics`` None unless already known).
 
     Returns
     -------
@@ -76,15 +79,17 @@ def sequence_report(decomposition: Decomposition | None, rank: int) -> SequenceR
     results = _CACHE["results"]
     if r not in results:
         try:
-            freq = frequencies_of(decomposition, r)
+            results[r] = SequenceResult(frequencies_of(decomposition, r), None)
         except ValueError as exc:       # e.g. weights that are not finite in a snapshot
             return SequenceResult(None, None, f"No spectrum: {exc}.")
+    result = results[r]
+    if dynamics and result.dynamics is None and not result.note:
         try:
-            dyn, note = dynamics_of(decomposition, r), ""
+            result = SequenceResult(result.frequencies, dynamics_of(decomposition, r))
         except ValueError as exc:       # e.g. weights all zero: say so, keep the spectra
-            dyn, note = None, f"No linear model: {exc}."
-        results[r] = SequenceResult(freq, dyn, note)
-    return results[r]
+            result = SequenceResult(result.frequencies, None, f"No linear model: {exc}.")
+        results[r] = result
+    return result
 
 
 class PairMarks:
@@ -108,11 +113,18 @@ class PairMarks:
         self.pairs: tuple = ()
 
     def update(self, decomposition: Decomposition | None) -> tuple:
-        """Mark the pairs found among all modes of ``decomposition``; return them (0-based)."""
+        """Mark the pairs found among all modes of ``decomposition``; return them (0-based).
+
+        Only a final result is read (a snapshot during a run is left unmarked: the search
+        would run in the GUI thread at every snapshot).
+        """
         for label in self.labels:
             self.plot.removeItem(label)
         self.labels = []
-        result = sequence_report(decomposition, decomposition.rank if decomposition else 0)
+        if decomposition is not None and not decomposition.exact:
+            decomposition = None
+        result = sequence_report(decomposition, decomposition.rank if decomposition else 0,
+                                 dynamics=False)
         report = result.frequencies
         self.pairs = () if report is None else tuple(p.modes for p in report.pairs)
         if not self.pairs:
