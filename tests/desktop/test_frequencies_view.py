@@ -149,3 +149,32 @@ def test_hidden_view_redraws_when_shown(qtbot, make_decomposition):
     view.show()
     qtbot.waitUntil(lambda: view.modes_table.rowCount() == s.rank, timeout=2000)
     assert "frame rate 25 Hz" in view.summary.text()
+
+
+def test_a_pair_picked_in_the_window_shows_its_ring_in_the_weights_plane(qtbot, ini_settings,
+                                                                        make_decomposition):
+    from modescope.app.desktop.main_window import MainWindow
+
+    window = MainWindow(ini_settings, confirm_dialogs=False)
+    qtbot.addWidget(window)
+    window.show()
+    qtbot.waitExposed(window)
+    assert window.docks["frequenciesDock"].windowTitle() == "Frequencies"
+    view_menu = next(a.menu() for a in window.menuBar().actions() if a.text() == "&View")
+    assert "Frequencies" in [a.text() for a in view_menu.actions()]
+    d = make_decomposition(waves(), 6, metadata={"frame_rate": FS})
+    window.state.set_decomposition(d)
+    window.state.set_rank(6)
+    window.docks["frequenciesDock"].raise_()
+    view = window.views["frequenciesDock"]
+    qtbot.waitUntil(lambda: view.modes_table.rowCount() == 6, timeout=3000)
+    _select(view, [2, 3])
+    assert window.state.modes == (2, 3)
+    weights = window.views["weightsDock"]
+    weights._redraw()
+    assert (weights.combo_a.currentIndex(), weights.combo_b.currentIndex()) == (2, 3)
+    x, y = weights.scatter.getData()
+    # a travelling wave's pair: every frame on one ring (radius within 10% of the mean)
+    radius = np.hypot(x, y)
+    assert np.all(np.abs(radius / radius.mean() - 1) < 0.1)
+    np.testing.assert_allclose(x, d.weights[2])
