@@ -49,6 +49,7 @@ from modescope.app.desktop.window_files import FilesMixin, sample_images_dir
 from modescope.app.desktop.window_help import fill_missing_tooltips
 from modescope.app.desktop.window_menus import CAUTIONS, MenusMixin, app_version
 from modescope.app.desktop.window_run import RunControlMixin
+from modescope.app.desktop.window_sources import SourcesMixin
 from modescope.app.desktop.window_status import StatusBarMixin, memory_in_use
 from modescope.app.desktop.workers.analysis import AnalysisRunner
 
@@ -71,8 +72,8 @@ VIEW_SPECS = (
 SHUTDOWN_TIMEOUT_MS = 5000
 
 
-class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, StatusBarMixin,
-                 QMainWindow):
+class MainWindow(RunControlMixin, SourcesMixin, FilesMixin, MenusMixin, DockLayoutMixin,
+                 StatusBarMixin, QMainWindow):
     """The Modescope workbench.
 
     Parameters
@@ -155,6 +156,8 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         self.state.decompositionChanged.connect(self._update_export_action)
         self.state.decompositionChanged.connect(self._on_state_changed)
         self.state.decompositionChanged.connect(self._update_finish_action)
+        self.state.decompositionChanged.connect(self._update_add_actions)
+        self.runner.runningChanged.connect(self._update_add_actions)
         self.state.rankChanged.connect(self._on_state_changed)
         self.state.marksHistoryChanged.connect(self._update_undo_actions)
         self.state.selectedChanged.connect(self._note_pick)
@@ -164,6 +167,7 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
                                          self.views["outliersDock"].plot_widget)
         self.cancel_action.setEnabled(False)
         self._update_finish_action()
+        self._update_add_actions()
         self._update_export_action()
         self._update_undo_actions()
 
@@ -173,6 +177,7 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         if not super().open_analysis(path):
             return False
         self._describe_sources(self.state.decomposition)
+        self.check_sources_found()        # moved files: say so and offer to locate them
         return True
 
     def _describe_sources(self, d) -> None:
@@ -217,6 +222,7 @@ class MainWindow(RunControlMixin, FilesMixin, MenusMixin, DockLayoutMixin, Statu
         ok_run = self.runner.shutdown(timeout_ms)
         ok_scan = self.ingest.shutdown(timeout_ms)
         ok_views = self.inspector.shutdown(timeout_ms)     # a source image being read
+        ok_views = self.stop_locating(timeout_ms) and ok_views
         for view in self.views.values():
             stop = getattr(view, "shutdown", None)   # the views with threads of their own
             if callable(stop):

@@ -70,6 +70,15 @@ class MenusMixin:
                                    self.views["checkedDock"].choose_and_check, None,
                                    "Score new images against the analysis shown (Phase II "
                                    "limits) without changing it")
+        self.add_to_folder_action = action("From a &folder…", self.choose_folder_to_add, None,
+                                           "Add the images of a folder to the analysis shown "
+                                           "(an update: the new images stream in, then every "
+                                           "image is scored again)")
+        self.add_to_files_action = action("From &files…", self.choose_files_to_add, None,
+                                          "Add image files to the analysis shown (an update)")
+        self.locate_action = action("&Locate the sources…", self.choose_sources_folder, None,
+                                    "The source files were moved: choose the folder where "
+                                    "they are now")
         self.quit_action = action("&Quit", self.close, K.Quit)
         self.start_action = action("S&tart analysis", self._start_from_pane, "Ctrl+R",
                                    "Analyse the sources with the options shown")
@@ -106,6 +115,11 @@ class MenusMixin:
         file_menu.addAction(self.save_action)
         file_menu.addAction(self.export_action)
         file_menu.addAction(self.check_action)
+        self.add_images_menu = file_menu.addMenu("&Add images to this analysis")
+        self.add_images_menu.setToolTipsVisible(True)
+        self.add_images_menu.addAction(self.add_to_folder_action)
+        self.add_images_menu.addAction(self.add_to_files_action)
+        file_menu.addAction(self.locate_action)
         self.recent_menu = file_menu.addMenu("&Recent analyses")
         self.recent_menu.triggered.connect(self._on_recent)
         file_menu.addSeparator()

@@ -319,6 +319,7 @@ class RunControlMixin:
         self.statusBar().showMessage(
             f"Analysis finished: {counted(n, 'image')} in {format_seconds(seconds)}"
             + (f", {skipped} skipped (see Sources)" if skipped else ""), 10000)
+        self._finish_adding(result)         # images added to an analysis: say so, offer saving
 
     @Slot(object)
     def _on_cancelled(self, result) -> None:
