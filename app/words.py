@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-__all__ = ["counted"]
+__all__ = ["counted", "unexplained"]
 
 
 def counted(n: int, noun: str, plural: str | None = None) -> str:
@@ -24,3 +24,15 @@ def counted(n: int, noun: str, plural: str | None = None) -> str:
     """
     n = int(n)
     return f"{n:,} {noun if n == 1 else (plural or noun + 's')}"
+
+
+def unexplained(share: float) -> str:
+    """Return the share of a fit left unexplained (0..1) as a short percentage.
+
+    Examples
+    --------
+    >>> unexplained(0.0123), unexplained(2e-7)
+    ('1.2%', 'less than 0.01%')
+    """
+    share = float(share)
+    return "less than 0.01%" if share < 1e-4 else f"{100 * share:.2g}%"

@@ -18,7 +18,7 @@ import os
 
 from modescope.app.cli.common import check_rank, error, fmt, positive_int, resolve_rank
 from modescope.app.cli.writing import check_output
-from modescope.app.words import counted
+from modescope.app.words import counted, unexplained
 from modescope.core.errors import ModescopeError
 from modescope.core.output.model_file import load_model
 from modescope.core.review.dynamics import caution, dynamics_of
@@ -119,7 +119,7 @@ def dynamics_lines(dyn, rank: int) -> list[str]:
               for c in range(3)]
     lines.append("  " + "  ".join(h.rjust(w) for h, w in zip(head, widths)))
     lines += ["  " + "  ".join(v.rjust(w) for v, w in zip(r, widths)) for r in rows]
-    lines.append(f"One-step fit: {100 * dyn.residual:.2g}% of the next frame's weights "
+    lines.append(f"One-step fit: {unexplained(dyn.residual)} of the next frame's weights "
                  "unexplained.")
     notes = caution(dyn)
     if notes:

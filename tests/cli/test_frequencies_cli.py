@@ -123,3 +123,26 @@ def test_too_few_frames_named(tmp_path, capsys):
     save_model(model, d)
     assert main(["frequencies", str(model)]) == 1
     assert "needs at least 4 frames, the model has 3" in capsys.readouterr().err
+
+
+def test_damped_travelling_wave_through_analyze_of_a_stack(tmp_path, capsys):
+    # known answer: frames exp(-0.2 t) cos(2 pi (3 x - 2.5 t)) give one pair at 2.5 Hz whose
+    # DMD eigenvalue is -0.2 +/- 2 pi i 2.5 per second (Schmid 2010; Tu et al. 2014)
+    fs, n = 30.0, 300
+    t = np.arange(n) / fs
+    x = np.arange(64) / 64.0
+    wave = np.exp(-0.2 * t)[:, None] * np.cos(2 * np.pi * (3 * x[None, :] - 2.5 * t[:, None]))
+    stack = tmp_path / "damped.npy"
+    np.save(stack, (0.5 + 0.3 * np.repeat(wave[:, None, :], 16, axis=1)).astype(np.float32))
+    model = tmp_path / "damped.npz"
+    assert main(["analyze", str(stack), "--rank", "4", "--frame-rate", str(fs),
+                 "-o", str(model)]) == 0
+    capsys.readouterr()
+    assert main(["frequencies", str(model), "--rank", "2"]) == 0
+    out = capsys.readouterr().out
+    assert "Frame rate: 30 Hz (stored in the model)" in out
+    assert "  modes 1 and 2: 2.5 Hz, phase lag" in out
+    row = out.split("amplitude\n")[1].splitlines()[0].split()
+    assert float(row[0]) == pytest.approx(2.5, rel=0.01)
+    assert float(row[1]) == pytest.approx(-0.2, rel=0.01)
+    assert "One-step fit: less than 0.01%" in out

@@ -31,6 +31,8 @@ from PySide6.QtWidgets import (QAbstractItemView, QHeaderView, QLabel, QSplitter
 
 from modescope.core.review.dynamics import caution
 
+from modescope.app.words import unexplained
+
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.views.frequency_parts import SequenceResult, sequence_report
@@ -244,7 +246,7 @@ class FrequenciesView(ThrottledRedraw, QWidget):
                                       f"{dyn.amplitudes[i]:.4g}")):
                 table.setItem(r, c, _cell(text, tip))
         notes = caution(dyn)
-        fit = f"One-step fit: {100 * dyn.residual:.2g}% unexplained."
+        fit = f"One-step fit: {unexplained(dyn.residual)} unexplained."
         self.caution.setText(fit + (" Caution: " + "; ".join(notes) + "." if notes else
                                     " Rates describe the frames seen, not a forecast."))
 
