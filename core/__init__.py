@@ -22,6 +22,8 @@ from modescope.core.output.model_file import load_model, save_model
 from modescope.core.review.accuracy import describe_accuracy
 from modescope.core.review.check import CheckResult, check_images, score_columns
 from modescope.core.review.duplicates import find_duplicates
+from modescope.core.review.dynamics import dynamics_of
+from modescope.core.review.frequencies import frequencies_of
 from modescope.core.review.outliers import score_table
 from modescope.core.sources.scan import SourceSet, scan_sources
 
@@ -34,5 +36,6 @@ __all__ = [
     "load_model", "save_model",
     "describe_accuracy", "find_duplicates", "score_table",
     "CheckResult", "check_images", "score_columns",
+    "frequencies_of", "dynamics_of",
     "SourceSet", "scan_sources",
 ]
