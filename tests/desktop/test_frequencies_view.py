@@ -123,7 +123,7 @@ def test_unknown_rate_and_too_few_frames(qtbot, make_decomposition):
     view._redraw()
     assert view.modes_table.horizontalHeaderItem(2).text() == "frequency (cycles per frame)"
     assert "frame rate unknown" in view.summary.text()
-    assert view.series_plot.getAxis("bottom").labelText == "frame number"
+    assert view.series_plot.getAxis("bottom").labelText == "image number"
     assert "frame rate is unknown" in view.caution.text()
     tx, _ = view.series_curves[0].getOriginalDataset()
     assert tx[0] == 1 and tx[-1] == 64

@@ -6,7 +6,7 @@
   travelling pattern draws a ring. The state's pair of modes is selected when it changes.
 * The spectra of the selected modes' weights against frequency (Hz when the frame rate is
   known, else cycles per frame), log power, the dominant frequency of each marked.
-* The selected modes' weights against time (seconds when the frame rate is known, else frame
+* The selected modes' weights against time (seconds when the frame rate is known, else image
   number 1..n).
 * A table of the linear model's eigenvalues (exact DMD of the weights of modes 1..r):
   frequency, growth rate and amplitude, with the reasons to distrust the model below it.
@@ -225,7 +225,7 @@ class FrequenciesView(ThrottledRedraw, QWidget):
                              f"= {report.resolution:.3g} {report.unit}; {pair_text}.")
         self.spectrum_plot.setLabel("bottom", f"frequency ({report.unit})")
         self.series_plot.setLabel("bottom", "time (s)" if report.rate_known else
-                                  "frame number")
+                                  "image number")
 
     def _fill_dynamics(self) -> None:
         dyn = self._result.dynamics
