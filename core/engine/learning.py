@@ -6,6 +6,7 @@ when asked."""
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from dataclasses import dataclass, field
 from typing import Callable
@@ -32,11 +33,14 @@ class Learned:
         Images that could not be decoded.
     stopped : bool
         True when the pass ended before every image was tried (cancelled).
+    attempted : int
+        Images tried, from the first one (decoded or refused).
     """
 
     kept: list = field(default_factory=list)
     problems: list = field(default_factory=list)
     stopped: bool = False
+    attempted: int = 0
 
 
 def learn(engine: StreamingSVD, source_set: SourceSet, options: AnalysisOptions, *,
@@ -44,7 +48,7 @@ def learn(engine: StreamingSVD, source_set: SourceSet, options: AnalysisOptions,
           progress: Callable | None = None, cancel: Callable[[], bool] = lambda: False,
           on_partial: Callable[[Decomposition], None] | None = None,
           snapshot: Callable[[Learned, str], Decomposition] | None = None,
-          partial_interval: float = 0.0) -> Learned:
+          partial_interval: float = 0.0, after: Learned | None = None) -> Learned:
     """Stream every image of ``source_set`` into ``engine`` (one block at a time).
 
     Parameters
@@ -68,6 +72,10 @@ def learn(engine: StreamingSVD, source_set: SourceSet, options: AnalysisOptions,
         Makes a Decomposition of the engine's state; required with ``on_partial``.
     partial_interval : float, optional
         Least seconds between two snapshots.
+    after : Learned, optional
+        A pass over the first images of ``source_set`` already streamed into ``engine`` (and
+        ``cache``), not stopped: the pass goes on from the first image it did not try, and
+        the result covers both.
 
     Returns
     -------
@@ -76,15 +84,24 @@ def learn(engine: StreamingSVD, source_set: SourceSet, options: AnalysisOptions,
     learned = Learned()
     clock = Clock("learn", source_set.n_images, progress)
     last_partial = -float("inf")
-    attempted = 0
-    for block in iter_blocks(source_set, block_size=block_size_for(options, engine.n_pixels),
-                             downscale=options.downscale, workers=workers, cancel=cancel,
-                             keep_raw=cache is not None):
+    attempted = skip = 0
+    rest = source_set
+    if after is not None:
+        learned.kept.extend(after.kept)
+        learned.problems.extend(after.problems)
+        attempted = skip = after.attempted
+        rest = dataclasses.replace(source_set, images=source_set.images[skip:])
+        last_partial = time.perf_counter()         # the caller has just shown that pass
+        clock.report(attempted)
+    blocks = () if not rest.images else iter_blocks(
+        rest, block_size=block_size_for(options, engine.n_pixels), downscale=options.downscale,
+        workers=workers, cancel=cancel, keep_raw=cache is not None)
+    for block in blocks:
         learned.problems.extend(block.problems)
-        attempted = block.start + len(block.indices) + len(block.problems)
+        attempted = skip + block.start + len(block.indices) + len(block.problems)
         if block.data.shape[1]:
             engine.update(block.data)
-            learned.kept.extend(int(i) for i in block.indices)
+            learned.kept.extend(skip + int(i) for i in block.indices)
             if cache is not None:
                 cache.put(block)
         clock.report(attempted)
@@ -94,6 +111,7 @@ def learn(engine: StreamingSVD, source_set: SourceSet, options: AnalysisOptions,
             on_partial(snapshot(learned, "streaming"))
         if cancel():
             break
+    learned.attempted = attempted
     learned.stopped = bool(cancel()) or attempted < source_set.n_images
     return learned
 
