@@ -58,3 +58,15 @@ def test_a_collection_smaller_than_the_look(tmp_path):
                      on_partial=seen.append)
     assert result.decomposition.n_images == 9 and not result.cancelled
     assert seen[0].n_images == 9
+
+
+def test_scan_limit_reads_only_the_first_headers(tmp_path):
+    from modescope.core.sources.scan import scan_sources
+    _write(tmp_path / "c", 12)
+    looked = []
+    head = scan_sources([tmp_path / "c"], limit=5, progress=lambda done, total: looked.append(done))
+    assert [r.path.rsplit("/", 1)[-1] for r in head.images] == [f"f_{i:04d}.png" for i in range(5)]
+    assert looked[-1] == 5                       # stopped after the fifth header
+    import pytest
+    with pytest.raises(ValueError, match="limit"):
+        scan_sources([tmp_path / "c"], limit=0)
