@@ -19,8 +19,9 @@ from modescope.core.errors import ModescopeError
 __all__ = ["ClusterError", "require_dask", "open_client", "Waiter"]
 
 # Seconds a run waits with no worker at all before it gives up (workers restarted by a nanny
-# come back within a few seconds here). Our own choice, no published source.
-NO_WORKER_GRACE = 20.0
+# come back within a few seconds here; a cluster that scales up may take longer). Our own
+# choice, no published source.
+NO_WORKER_GRACE = 60.0
 
 
 class ClusterError(ModescopeError):
@@ -183,8 +184,8 @@ class Waiter:
                     if fut.status == "error":
                         fut.result()                # raises the task's own error
                     if fut.status in ("cancelled", "lost"):
-                        raise ClusterError(f"the Dask scheduler dropped {what} (connection "
-                                           "lost or the scheduler was closed); nothing written")
+                        raise ClusterError(f"the Dask cluster dropped {what} "
+                                           f"({self._why_dropped()}); nothing written")
                     if on_done is not None:
                         on_done(i, fut.result())
                     fut.release()
@@ -219,6 +220,13 @@ class Waiter:
                 with contextlib.suppress(Exception):
                     self.client.cancel(leftover)
         return True
+
+    def _why_dropped(self) -> str:
+        """Say why the scheduler dropped a future (its own reason names no cause here)."""
+        if self.client.status not in ("running", "connecting"):
+            return "the connection to the scheduler was lost"
+        return ("the scheduler cancelled its tasks: a worker holding their data left the "
+                "cluster, or the scheduler is closing")
 
     def _workers(self) -> int:
         try:

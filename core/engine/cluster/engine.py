@@ -29,6 +29,7 @@ certify it).
 from __future__ import annotations
 
 import dataclasses
+import uuid
 from typing import Callable
 
 import numpy as np
@@ -167,11 +168,12 @@ class _ClusterRun:
         self.waiter = Waiter(client, cancel)
         self.reads = 0                        # passes over the data, for the metadata
         self._tags = 0
+        self._run_id = uuid.uuid4().hex[:8]    # runs sharing a client count apart
 
     # -- running one set of tasks ------------------------------------------------------------
     def _tag(self, name: str) -> str:
         self._tags += 1
-        return f"{name}-{self._tags}"
+        return f"{name}-{self._run_id}-{self._tags}"
 
     def _wait(self, futures, tag: str, stage: str, total: int, detail: str, on_done=None,
               what: str = "a pass over the images") -> bool:
@@ -366,7 +368,7 @@ class _ClusterRun:
         return acc, [], []
 
     def _refine(self, basis, mean, mean_future, used: SourceSet):
-        """The local engine's refinement loop (:func:`.passes.refine`), one pass per cluster run."""
+        """The local engine's refinement loop (:func:`.passes.refine`), passes on the cluster."""
         options, rank = self.options, self.options.rank
         kept = np.arange(used.n_images)
         last_kept, last, energy, dropped = kept, None, None, []

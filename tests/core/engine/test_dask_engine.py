@@ -260,3 +260,39 @@ def test_a_file_that_changes_after_the_first_pass_is_dropped(client, invented, m
     centred = x[:, keep] - x.mean(axis=1, keepdims=True)
     s = np.linalg.svd(centred, compute_uv=False)
     np.testing.assert_allclose(d.singular_values, s[:4], rtol=1e-4)
+
+
+def test_the_only_worker_leaving_mid_run_is_a_clear_error(invented):
+    # the local cluster closes its only worker during the first refinement pass: the data
+    # scattered to it (mean, basis) is gone, and the scheduler drops the pass's tasks
+    pytest.importorskip("distributed", reason=_SKIP)
+    from modescope.core.engine.cluster import open_client
+
+    folder, _ = invented
+    with open_client(local_workers=1, local_processes=False, memory_limit="1GiB") as own:
+        def progress(p):
+            if p.stage == "score" and own.cluster.workers:
+                own.cluster.scale(0)
+        with pytest.raises(ClusterError, match=r"the Dask cluster dropped refinement pass 1 "
+                                               r"\(the scheduler cancelled its tasks: a worker "
+                                               r"holding their data left"):
+            analyze_on_cluster([folder], AnalysisOptions(rank=3, block_size=20), client=own,
+                               progress=progress)
+
+
+def test_a_cluster_without_workers_is_a_clear_error(invented, monkeypatch):
+    # no worker at all: the run gives up after the grace period (shortened here) instead of
+    # waiting for ever
+    pytest.importorskip("distributed", reason=_SKIP)
+    from distributed import Client, LocalCluster
+
+    from modescope.core.engine.cluster import connect
+
+    monkeypatch.setattr(connect, "NO_WORKER_GRACE", 1.0)
+    with LocalCluster(n_workers=0, processes=False, host="127.0.0.1", protocol="tcp://",
+                      dashboard_address=None, silence_logs=50,
+                      scheduler_kwargs={"dashboard_address": "127.0.0.1:0"}) as cluster, \
+            Client(cluster, set_as_default=False) as own:
+        with pytest.raises(ClusterError, match="no Dask worker left for 1 s during the first "
+                                               "pass; nothing written"):
+            analyze_on_cluster([invented[0]], AnalysisOptions(rank=3), client=own)
