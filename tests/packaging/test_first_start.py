@@ -5,6 +5,7 @@ folder (a temporary one here) and opens it; and the window carries the program's
 
 from __future__ import annotations
 
+import importlib
 import os
 
 import numpy as np
@@ -12,7 +13,7 @@ import pytest
 from PIL import Image
 from PySide6.QtCore import QSettings
 
-from modescope.app.desktop import launch, window_files
+from modescope.app.desktop import launch
 from modescope.app.desktop.launch import (DEMO_FRAMES, demo_folder, ensure_demo_collection,
                                           start_window)
 from modescope.app.desktop.main_window import MainWindow
@@ -30,11 +31,17 @@ def window(qtbot, tmp_path):
     return w
 
 
+def _window_files():
+    # the module as sys.modules holds it now (a test elsewhere imports the window's modules
+    # afresh, which leaves the package attribute pointing at another copy)
+    return importlib.import_module("modescope.app.desktop.window_files")
+
+
 @pytest.fixture
 def no_sample(monkeypatch, tmp_path):
     """Make the repository's sample folder absent, as in an installed wheel."""
     missing = tmp_path / "site-packages" / "sample_images"
-    monkeypatch.setattr(window_files, "sample_images_dir", lambda: missing)
+    monkeypatch.setattr(_window_files(), "sample_images_dir", lambda: missing)
     return missing
 
 
@@ -91,7 +98,7 @@ def test_the_repository_sample_is_still_preferred(window, tmp_path, monkeypatch)
     sample = tmp_path / "sample_images"
     sample.mkdir()
     Image.new("RGB", (8, 8)).save(sample / "a.png")
-    monkeypatch.setattr(window_files, "sample_images_dir", lambda: sample)
+    monkeypatch.setattr(_window_files(), "sample_images_dir", lambda: sample)
     opened = []
     monkeypatch.setattr(window, "open_sample", lambda: opened.append("sample") or True)
     assert start_window(window, [], data_dir=tmp_path / "data") == "sample"
