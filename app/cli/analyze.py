@@ -139,7 +139,7 @@ def run(args: argparse.Namespace) -> int:
     rows, cols, ch = d.image_shape
     cum = d.cumulative_energy()
     if d.rank:
-        captured = f"rank {d.rank} captures {100 * cum[-1]:.1f}% of the energy"
+        captured = f"rank {d.rank} captures {100 * cum[-1]:.1f} % of the energy"
     else:
         captured = ("no basis images: the images do not vary (each one equals the mean image"
                     + (", as a single image always does)" if d.n_images == 1 else ")"))

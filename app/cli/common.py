@@ -153,8 +153,8 @@ def resolve_rank(rank, decomposition) -> tuple[int, str]:
     Returns
     -------
     (int, str)
-        The rank and one line such as "Rank 3 of 20: the smallest rank capturing 95% of the
-        energy (3 modes capture 96.6%); --rank K sets another" or "Rank 5 of 20: given by
+        The rank and one line such as "Rank 3 of 20: the smallest rank capturing 95 % of the
+        energy (3 modes capture 96.6 %); --rank K sets another" or "Rank 5 of 20: given by
         --rank".
     """
     from modescope.core.review.rank import default_rank

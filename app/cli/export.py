@@ -61,7 +61,7 @@ def register(subparsers) -> argparse.ArgumentParser:
     p.add_argument("model", metavar="MODEL.npz", help="model file written by 'modescope analyze'")
     p.add_argument("--rank", type=int, default=None, metavar="K",
                    help="number of basis images used (1 to the model's rank; default: the "
-                        "smallest rank capturing 95%% of the energy, or all in the model when "
+                        "smallest rank capturing 95 %% of the energy, or all in the model when "
                         "they capture less)")
     p.add_argument("--out", required=True, metavar="DIR",
                    help="destination folder (created when missing)")

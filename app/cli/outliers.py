@@ -52,10 +52,10 @@ def register(subparsers) -> None:
                     "confidence level, and list the images most unusual first. An image is "
                     "flagged when score = max(Q/Q limit, T2/T2 limit) > 1. Images are "
                     "numbered from 1 in column order, as in the desktop program. Without "
-                    "--rank, the default rank is the smallest capturing 95% of the energy.")
+                    "--rank, the default rank is the smallest capturing 95 % of the energy.")
     p.add_argument("model", metavar="MODEL.npz", help="model file saved by modescope")
     p.add_argument("--rank", type=non_negative_int, default=None, metavar="K",
-                   help="basis images kept (default: the smallest rank capturing 95%% of "
+                   help="basis images kept (default: the smallest rank capturing 95 %% of "
                         "the energy, or all in the model when they capture less)")
     p.add_argument("--level", type=level, default=0.99,
                    help="confidence level of the limits, between 0 and 1 (default 0.99, "

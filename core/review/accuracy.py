@@ -60,7 +60,7 @@ def describe_accuracy(decomposition: Decomposition, tolerance: float | None = No
     ...                   total_energy=2.0, image_shape=(2, 1, 1), residual=np.zeros(2),
     ...                   exact=True, singular_value_error=np.array([1e-9]))
     >>> describe_accuracy(d)
-    'exact: every singular value is certified within 0.01% (largest bound 5e-08% of its value)'
+    'exact: every singular value is certified within 0.01 % (largest bound 5e-08 % of its value)'
     """
     d = decomposition
     tol = model_tolerance(d) if tolerance is None else float(tolerance)
@@ -74,11 +74,11 @@ def describe_accuracy(decomposition: Decomposition, tolerance: float | None = No
         rel = np.where(d.singular_values > 0, d.singular_value_error / d.singular_values, np.inf)
     bad = d.unconverged_modes(tol)
     if bad.size == 0:
-        return (f"exact: every singular value is certified within {100 * tol:g}% "
-                f"(largest bound {100 * float(np.max(rel)):.1g}% of its value)")
+        return (f"exact: every singular value is certified within {100 * tol:g} % "
+                f"(largest bound {100 * float(np.max(rel)):.1g} % of its value)")
     modes = _ranges(bad + 1)
     return (f"not converged: modes {modes} are certified only within "
-            f"{100 * float(np.max(rel[bad])):.2g}% (asked {100 * tol:g}%); the other "
+            f"{100 * float(np.max(rel[bad])):.2g} % (asked {100 * tol:g} %); the other "
             f"{d.rank - bad.size} are within it. More passes (--max-passes) or more "
             f"oversampling (--oversample) would tighten them")
 

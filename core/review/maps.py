@@ -332,7 +332,7 @@ def pixel_spread(decomposition: Decomposition, rank: int | None = None,
         collection = in_k + beyond_k_held + even
         rest = beyond_k_held + even
         note = ("from the model: its modes hold all the energy" if exact else
-                f"from the model: the {100 * tail / d.total_energy:.3g}% of the energy beyond "
+                f"from the model: the {100 * tail / d.total_energy:.3g} % of the energy beyond "
                 f"its {d.rank} modes is spread evenly over the pixels (an assumption; a pass "
                 "over the images makes the maps exact)")
     shape = d.image_shape

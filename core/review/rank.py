@@ -139,8 +139,8 @@ class EnergyRank:
         return None if self.reached else self.kept
 
     def describe(self) -> str:
-        """Return e.g. "3 for 90% of the energy" or "more than 10 for 90% of the energy"."""
-        share = f"{100 * self.threshold:g}% of the energy"
+        """Return e.g. "3 for 90 % of the energy" or "more than 10 for 90 % of the energy"."""
+        share = f"{100 * self.threshold:g} % of the energy"
         if self.reached:
             return f"{self.rank} for {share}"
         return f"more than {self.kept} for {share}"
@@ -177,9 +177,9 @@ def energy_rank(decomposition: Decomposition, threshold: float = 0.9) -> EnergyR
     ...                   singular_values=np.array([3.0, 2.0]), weights=np.zeros((2, 9)),
     ...                   total_energy=16.0, image_shape=(4, 1, 1))
     >>> energy_rank(d, 0.5).describe()
-    '1 for 50% of the energy'
+    '1 for 50 % of the energy'
     >>> energy_rank(d, 0.9).describe()
-    'more than 2 for 90% of the energy'
+    'more than 2 for 90 % of the energy'
     """
     d = _check_decomposition(decomposition)
     threshold = check_float("threshold", threshold, low=0.0, high=1.0, low_open=True)
@@ -435,7 +435,7 @@ class DefaultRank(NamedTuple):
         0..k (0 only when the model has no mode or the images do not vary).
     reason : str
         Why this rank, one clause without a final full stop, e.g. "the smallest rank capturing
-        95% of the energy (3 modes capture 96.6%)".
+        95 % of the energy (3 modes capture 96.6 %)".
     """
 
     rank: int
@@ -443,7 +443,9 @@ class DefaultRank(NamedTuple):
 
 
 def _percent(share: float) -> str:
-    return f"{100 * share:.1f}%"
+    # one way of writing a percentage in every front end: a space before the sign, as the
+    # workbench and the command line's level ("99 %") write it (SI Brochure, 9th ed., 5.4.7)
+    return f"{100 * share:.1f} %"
 
 
 def default_rank(decomposition: Decomposition) -> DefaultRank:
@@ -476,11 +478,11 @@ def default_rank(decomposition: Decomposition) -> DefaultRank:
     >>> default_rank(d).rank
     2
     >>> default_rank(d).reason
-    'the smallest rank capturing 95% of the energy (2 modes capture 96.3%)'
+    'the smallest rank capturing 95 % of the energy (2 modes capture 96.3 %)'
     """
     d = _check_decomposition(decomposition)
     k = d.rank
-    share = f"{100 * DEFAULT_ENERGY_SHARE:g}%"
+    share = f"{100 * DEFAULT_ENERGY_SHARE:g} %"
     if k == 0:
         return DefaultRank(0, "the model has no basis image (the images do not vary)")
     found = energy_rank(d, DEFAULT_ENERGY_SHARE)

@@ -200,9 +200,9 @@ def test_info_says_more_than_k_and_what_rank_gavish_donoho_needs(tmp_path, capsy
     assert main(["info", str(tmp_path / "r10.npz")]) == 0
     out = capsys.readouterr().out
     assert ("suggested rank: 10, all 10 modes of the model: together they capture "
-            f"{100 * cum10:.1f}% of the energy, less than 95% (the default of the desktop "
+            f"{100 * cum10:.1f} % of the energy, less than 95 % (the default of the desktop "
             "program and of every command's --rank)") in out
-    assert ("other rules:    more than 10 for 90% of the energy; Gavish-Donoho: not applicable "
+    assert ("other rules:    more than 10 for 90 % of the energy; Gavish-Donoho: not applicable "
             "(the median singular value is unknown: the model keeps 10 of the 48 modes the data "
             "can have, and the median is mode 24; analyse with rank 25 or more (or 48, every "
             "mode))") in out
@@ -213,9 +213,9 @@ def test_info_says_more_than_k_and_what_rank_gavish_donoho_needs(tmp_path, capsy
     out = capsys.readouterr().out
     expect = int(np.searchsorted(cum, 0.9) + 1)
     assert expect > 10
-    assert (f"other rules:    {expect} for 90% of the energy; {gavish_donoho(full).rank} by the "
+    assert (f"other rules:    {expect} for 90 % of the energy; {gavish_donoho(full).rank} by the "
             "Gavish-Donoho hard threshold") in out
     default = int(np.searchsorted(cum, 0.95) + 1)      # the smallest rank reaching 95% (LAPACK)
     assert default > expect
-    assert (f"suggested rank: {default}, the smallest rank capturing 95% of the energy "
-            f"({default} modes capture {100 * cum[default - 1]:.1f}%)") in out
+    assert (f"suggested rank: {default}, the smallest rank capturing 95 % of the energy "
+            f"({default} modes capture {100 * cum[default - 1]:.1f} %)") in out

@@ -47,8 +47,8 @@ def test_default_rank_of_the_sample_set_is_the_95_percent_rank(sample_model):
     assert rank == energy_rank(d, 0.95).rank == 3
     cum = np.cumsum(np.asarray(d.singular_values, float) ** 2) / d.total_energy
     assert cum[1] < 0.95 <= cum[2]
-    assert reason == ("the smallest rank capturing 95% of the energy "
-                      f"(3 modes capture {100 * cum[2]:.1f}%)")
+    assert reason == ("the smallest rank capturing 95 % of the energy "
+                      f"(3 modes capture {100 * cum[2]:.1f} %)")
 
 
 def test_outliers_without_rank_flags_exactly_the_planted_frames(sample_model, tmp_path, capsys):
@@ -56,7 +56,7 @@ def test_outliers_without_rank_flags_exactly_the_planted_frames(sample_model, tm
     target = tmp_path / "scores.csv"
     assert main(["outliers", str(sample_model), "--top", "0", "--csv", str(target)]) == 0
     out = capsys.readouterr().out
-    assert ("Rank 3 of 20: the smallest rank capturing 95% of the energy (3 modes capture "
+    assert ("Rank 3 of 20: the smallest rank capturing 95 % of the energy (3 modes capture "
             in out)
     assert "; --rank K sets another" in out
     assert "Flagged: 4 of 240" in out
@@ -93,8 +93,8 @@ def test_outliers_with_rank_says_it_was_given(sample_model, capsys):
 def test_info_suggests_the_default_rank(sample_model, capsys):
     assert main(["info", str(sample_model)]) == 0
     out = capsys.readouterr().out
-    assert "suggested rank: 3, the smallest rank capturing 95% of the energy" in out
-    assert "other rules:    2 for 90% of the energy; Gavish-Donoho: not applicable" in out
+    assert "suggested rank: 3, the smallest rank capturing 95 % of the energy" in out
+    assert "other rules:    2 for 90 % of the energy; Gavish-Donoho: not applicable" in out
 
 
 def test_export_default_rank_and_one_based_images(sample_model, tmp_path, capsys):
@@ -104,7 +104,7 @@ def test_export_default_rank_and_one_based_images(sample_model, tmp_path, capsys
                  "--what", "previews,weights", "--quiet"]) == 0
     printed = capsys.readouterr().out
     assert printed.splitlines()[0].startswith(
-        "Rank 3 of 20: the smallest rank capturing 95% of the energy")
+        "Rank 3 of 20: the smallest rank capturing 95 % of the energy")
     with open(out / "weights_r3.csv", newline="", encoding="utf-8") as fh:
         weights = list(csv.reader(fh))
     # images 1, 2, 3 are the model's columns 0, 1, 2

@@ -187,7 +187,7 @@ class Inspector(QWidget):
         self.rank_label.setMinimumWidth(self.fontMetrics().horizontalAdvance("Rank 9999 of 9999"))
         self.stretch_box = QCheckBox("Stretch contrast", self)
         self.stretch_box.setToolTip("Show the image and its reconstruction with the image's "
-                                    "1% and 99% levels as black and white (for dark or bright "
+                                    "1 % and 99 % levels as black and white (for dark or bright "
                                     "images); the numbers are unchanged")
         self.fit_button = QPushButton("Fit", self)
         self.fit_button.setEnabled(False)

@@ -45,7 +45,7 @@ def test_energy_rank_matches_cumulative_sum():
         found = energy_rank(d, t)
         assert found.rank == int(np.searchsorted(cum, t) + 1)
         assert found.reached and found.more_than is None
-        assert found.describe() == f"{found.rank} for {100 * t:g}% of the energy"
+        assert found.describe() == f"{found.rank} for {100 * t:g} % of the energy"
     with pytest.raises(ValueError, match="threshold must be > 0.0"):
         energy_rank(d, 0.0)
     with pytest.raises(TypeError, match="decomposition must be a Decomposition"):
@@ -61,7 +61,7 @@ def test_energy_rank_says_more_than_k_when_the_kept_modes_fall_short():
     found = energy_rank(d, 0.9)
     assert found == EnergyRank(0.9, None, 10, pytest.approx(cum10, rel=1e-12))
     assert not found.reached and found.more_than == 10
-    assert found.describe() == "more than 10 for 90% of the energy"
+    assert found.describe() == "more than 10 for 90 % of the energy"
     # the full LAPACK spectrum says how many it really takes: more than 10
     s = np.linalg.svd(x - x.mean(axis=1, keepdims=True), compute_uv=False)
     true_rank = int(np.searchsorted(np.cumsum(s ** 2) / np.sum(s ** 2), 0.9) + 1)
@@ -233,13 +233,13 @@ def test_default_rank_is_the_95_percent_rank_whatever_k():
         assert isinstance(found, DefaultRank)
         rank, reason = found
         assert rank == expect
-        assert reason == (f"the smallest rank capturing 95% of the energy ({expect} modes "
-                          f"capture {100 * cum[expect - 1]:.1f}%)")
+        assert reason == (f"the smallest rank capturing 95 % of the energy ({expect} modes "
+                          f"capture {100 * cum[expect - 1]:.1f} %)")
     # fewer modes than that: all kept modes, and the reason says they fall short
     short = default_rank(decomposition_of(x, expect - 1))
     assert short.rank == expect - 1
     assert short.reason == (f"all {expect - 1} modes of the model: together they capture "
-                            f"{100 * cum[expect - 2]:.1f}% of the energy, less than 95%")
+                            f"{100 * cum[expect - 2]:.1f} % of the energy, less than 95 %")
 
 
 def test_default_rank_edge_cases():
@@ -248,9 +248,30 @@ def test_default_rank_edge_cases():
     x = np.outer(np.arange(8.0), np.linspace(-1, 1, 20)) + 1e-3 * np.random.default_rng(0) \
         .normal(size=(8, 20))
     one = default_rank(decomposition_of(x, 5))
-    assert one.rank == 1 and "(1 mode captures 100.0%)" in one.reason
+    assert one.rank == 1 and "(1 mode captures 100.0 %)" in one.reason
     # no mode at all: rank 0
     flat = decomposition_of(np.ones((8, 5)), 0)
     assert default_rank(flat) == (0, "the model has no basis image (the images do not vary)")
     with pytest.raises(TypeError, match="decomposition must be a Decomposition"):
         default_rank("model.npz")
+
+
+def test_percentages_written_one_way():
+    """Every share in the rank and accuracy sentences is written "95 %" (a space before the
+    sign), as the workbench and the command line's level ("99 %") write it."""
+    import re
+
+    from modescope.core.review.accuracy import describe_accuracy
+    from modescope.core.review.rank import default_rank
+
+    rng = np.random.default_rng(1)
+    x = rng.normal(size=(30, 50)) * np.linspace(5, 0.1, 30)[:, None]
+    d = decomposition_of(x, 12)
+    d = d.replace(exact=True, singular_value_error=np.full(12, 1e-9))
+    texts = [default_rank(d).reason, default_rank(decomposition_of(x, 2)).reason,
+             energy_rank(d, 0.9).describe(), energy_rank(decomposition_of(x, 2), 0.99).describe(),
+             describe_accuracy(d)]
+    for text in texts:
+        assert "%" in text
+        assert re.search(r"\d%", text) is None, text
+        assert re.search(r"\d %", text) is not None, text
