@@ -107,29 +107,43 @@ def project_block_sums(part: SourceSet, downscale: int, basis: np.ndarray, mean:
     return (w, res, energy), yt, problems, ok
 
 
+def _thin_svd(matrix: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Left singular vectors and values of a float32 matrix (LAPACK gesdd in float32 through
+    scipy, gesvd when gesdd does not converge): no float64 copy of a pixels-sized matrix."""
+    from scipy.linalg import LinAlgError, svd
+
+    try:
+        u, s, _ = svd(matrix, full_matrices=False, overwrite_a=True, check_finite=False)
+    except LinAlgError:
+        u, s, _ = svd(matrix, full_matrices=False, check_finite=False, lapack_driver="gesvd")
+    return u, s.astype(np.float64)
+
+
 def block_svd(part: SourceSet, downscale: int, q: int, tag: str):
     """Start pass, one block: its count, mean and leading ``q`` singular pairs, centred on itself.
 
     Returns
     -------
-    state : tuple (count, mean (pixels,) float64, U (pixels, r) float64, s (r,) float64)
-        ``r <= q``; the thin SVD (LAPACK gesdd through numpy) of the decoded columns of
-        ``part`` minus their own mean, truncated.
+    state : tuple (count, mean (pixels,) float64, U (pixels, r) float32, s (r,) float64)
+        ``r <= q``; the thin SVD of the decoded columns of ``part`` minus their own mean,
+        truncated (a start for the refinement passes, so float32 is enough).
     ok : ndarray of bool, shape (n_images of part,)
     problems : tuple of Problem
     """
     data, ok, problems = decode(part, downscale)
     _report(tag, part.n_images)
-    good = data[:, ok].astype(np.float64)
+    good = np.asfortranarray(data[:, ok])
     count = good.shape[1]
     pixels = data.shape[0]
+    del data
     if count == 0:
-        return (0, np.zeros(pixels), np.zeros((pixels, 0)), np.zeros(0)), ok, problems
-    mean = good.mean(axis=1)
-    good -= mean[:, None]
-    u, s, _ = np.linalg.svd(good, full_matrices=False)
+        return ((0, np.zeros(pixels), np.zeros((pixels, 0), dtype=np.float32), np.zeros(0)),
+                ok, problems)
+    mean = good.mean(axis=1, dtype=np.float64)
+    good -= mean.astype(np.float32)[:, None]
+    u, s = _thin_svd(good)
     r = min(q, s.size)
-    return (count, mean, u[:, :r].copy(), s[:r].copy()), ok, problems
+    return (count, mean, np.asfortranarray(u[:, :r]), s[:r].copy()), ok, problems
 
 
 def merge_states(a, b, q: int):
@@ -148,11 +162,12 @@ def merge_states(a, b, q: int):
     if nb == 0:
         return a
     n = na + nb
-    shift = np.sqrt(na * nb / n) * (ma - mb)
-    cols = np.concatenate([ua * sa, ub * sb, shift[:, None]], axis=1)
-    u, s, _ = np.linalg.svd(cols, full_matrices=False)
+    shift = (np.sqrt(na * nb / n) * (ma - mb)).astype(np.float32)
+    cols = np.concatenate([ua * sa.astype(np.float32), ub * sb.astype(np.float32),
+                           shift[:, None]], axis=1)
+    u, s = _thin_svd(np.asfortranarray(cols))
     r = min(q, s.size)
-    return n, ma + (mb - ma) * (nb / n), u[:, :r].copy(), s[:r].copy()
+    return n, ma + (mb - ma) * (nb / n), np.asfortranarray(u[:, :r]), s[:r].copy()
 
 
 def pick(value, index: int):
