@@ -114,3 +114,22 @@ def test_a_worker_killed_mid_run_is_a_clear_error_and_no_file(folder, tmp_path, 
     assert "modescope analyze: a Dask worker died during refinement pass 1" in err
     assert "nothing written" in err and "Traceback" not in err
     assert not out.exists() and sorted(os.listdir(tmp_path)) == ["frames"]
+
+
+def test_without_the_cluster_extra_the_message_names_it(folder, tmp_path, capsys, monkeypatch):
+    import builtins
+    real = builtins.__import__
+
+    def no_dask(name, *args, **kwargs):
+        if name.split(".")[0] in ("dask", "distributed"):
+            raise ImportError(f"No module named {name.split('.')[0]!r}")
+        return real(name, *args, **kwargs)
+    monkeypatch.setattr(builtins, "__import__", no_dask)
+    out = tmp_path / "m.npz"
+    code = main(["analyze", str(folder), "-o", str(out), "--engine", "dask", "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 1
+    assert err.startswith("modescope analyze: the Dask engine needs the optional packages "
+                          "dask[array] and distributed (missing: dask")
+    assert "pip install 'modescope[cluster]'" in err and "Traceback" not in err
+    assert not out.exists()
