@@ -107,6 +107,20 @@ def open_client(scheduler: str | None = None, client=None, *, connect_timeout: f
         yield made
 
 
+def _raise_task_error(fut, what: str) -> None:
+    """Raise the error of a failed task: ours and MemoryError as they are, any other one (a
+    worker without Modescope, a bug) as a ClusterError naming it."""
+    from distributed import KilledWorker
+
+    exc = fut.exception()
+    if isinstance(exc, (ModescopeError, MemoryError, KilledWorker)):
+        raise exc
+    hint = ("; is the same Modescope version installed on every worker?"
+            if isinstance(exc, ImportError) else "")
+    raise ClusterError(f"a task failed on a Dask worker during {what} ({_short(exc)}"
+                       f"{hint}); nothing written") from exc
+
+
 def _where(exc) -> str:
     """The address of the worker a KilledWorker error names."""
     worker = getattr(exc, "last_worker", None)
@@ -182,7 +196,7 @@ class Waiter:
                 for i in finished:
                     fut = pending.pop(i)
                     if fut.status == "error":
-                        fut.result()                # raises the task's own error
+                        _raise_task_error(fut, what)
                     if fut.status in ("cancelled", "lost"):
                         raise ClusterError(f"the Dask cluster dropped {what} "
                                            f"({self._why_dropped()}); nothing written")

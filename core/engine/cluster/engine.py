@@ -255,7 +255,7 @@ class _ClusterRun:
                           "the mean image and a start basis from per-block SVDs merged in a "
                           "tree, on the Dask cluster", done, "the first pass"):
             return None, None, None
-        count, mean, u, _ = final["state"]
+        _, mean, u, _ = final["state"]
         used = self._decoded(np.concatenate(ok))
         return used, mean, np.asfortranarray(u, dtype=np.float32)
 
@@ -265,7 +265,8 @@ class _ClusterRun:
         if good.size == 0:
             first = "; ".join(str(p) for p in self.problems[:5])
             raise NoUsableImagesError(f"none of the {self.source_set.n_images} images could "
-                                      f"be decoded: {first}")
+                                      f"be decoded on the Dask workers (each must see the "
+                                      f"files under the same paths): {first}")
         return dataclasses.replace(self.source_set, problems=(), notes=(),
                                    images=tuple(self.source_set.images[i] for i in good))
 

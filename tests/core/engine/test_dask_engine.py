@@ -18,6 +18,7 @@ from PIL import Image
 
 from modescope.core.engine.cluster import ClusterError, analyze_on_cluster, require_dask
 from modescope.core.engine.pipeline import AnalysisOptions, analyze
+from modescope.core.errors import NoUsableImagesError
 from modescope.core.output.model_file import load_model, save_model
 
 _SKIP = "the Dask engine needs dask[array] and distributed (pip install 'modescope[cluster]')"
@@ -297,3 +298,30 @@ def test_a_cluster_without_workers_is_a_clear_error(invented, monkeypatch):
         with pytest.raises(ClusterError, match="no Dask worker left for 1 s during the first "
                                                "pass; nothing written"):
             analyze_on_cluster([invented[0]], AnalysisOptions(rank=3), client=own)
+
+
+def test_a_task_that_fails_on_a_worker_is_named(client, invented, monkeypatch):
+    # a worker without Modescope fails to load the task's function: the error names the
+    # cause and asks about the installation, as one ClusterError (no traceback for the user)
+    from modescope.core.engine.cluster import tasks
+
+    def broken(*args, **kwargs):
+        raise ModuleNotFoundError("No module named 'modescope'")
+    monkeypatch.setattr(tasks, "block_svd", broken)
+    with pytest.raises(ClusterError, match=r"a task failed on a Dask worker during the first "
+                                           r"pass \(ModuleNotFoundError: No module named "
+                                           r"'modescope'; is the same Modescope version "
+                                           r"installed on every worker\?\); nothing written"):
+        analyze_on_cluster([invented[0]], AnalysisOptions(rank=2), client=client)
+
+
+def test_files_no_worker_can_read(client, tmp_path):
+    folder = tmp_path / "gone"
+    _write(folder, [np.full((6, 5), i, np.uint8) for i in range(4)])
+    from modescope.core.engine.pipeline import scan
+    found = scan([folder], AnalysisOptions(rank=1))
+    for p in folder.iterdir():               # scanned, then gone before the workers read them
+        p.unlink()
+    with pytest.raises(NoUsableImagesError, match="none of the 4 images could be decoded on "
+                                                  "the Dask workers"):
+        analyze_on_cluster(found, AnalysisOptions(rank=1), client=client)
