@@ -325,3 +325,37 @@ def test_files_no_worker_can_read(client, tmp_path):
     with pytest.raises(NoUsableImagesError, match="none of the 4 images could be decoded on "
                                                   "the Dask workers"):
         analyze_on_cluster(found, AnalysisOptions(rank=1), client=client)
+
+
+def test_cancel_in_a_later_pass_keeps_the_last_complete_pass(client, digits):
+    # as the local engine: a stop during pass 2 hands back pass 1 (exact weights, its bounds)
+    folder, paths = digits
+    state = {"stop": False}
+
+    def progress(p):
+        if p.stage == "score" and p.detail.startswith("pass 2"):
+            state["stop"] = True
+    result = analyze_on_cluster([folder], AnalysisOptions(rank=10, block_size=64),
+                                client=client, progress=progress, cancel=lambda: state["stop"])
+    d = result.decomposition
+    assert result.cancelled and d.exact
+    assert d.metadata["refinement"]["passes"] == 1 and d.metadata["refinement"]["interrupted"]
+    # pass 1's Ritz values lie below the true ones (Cauchy interlacing), within their bounds
+    s = _lapack(paths)[3][:10]
+    assert np.all(d.singular_values <= s * (1 + 1e-6))
+    assert np.all(s - d.singular_values <= d.singular_value_error * (1 + 1e-6))
+
+
+def test_no_refine_is_one_plain_pass(client, invented):
+    folder, paths = invented
+    d = analyze_on_cluster([folder], AnalysisOptions(rank=4, refine=False),
+                           client=client).decomposition
+    assert d.singular_value_error is None and not d.metadata["refinement"]["certified"]
+    assert d.metadata["refinement"]["passes"] == 1
+    # the weights are the exact coordinates in the start basis: the reconstruction's error is
+    # the stored residual, and never below the optimum (Eckart-Young-Mirsky)
+    x, centred, _, s = _lapack(paths)
+    recon = d.mean[:, None] + d.basis @ d.weights.astype(np.float32)
+    err = np.sum((x - recon) ** 2, axis=0)
+    np.testing.assert_allclose(d.residual, err, rtol=1e-3, atol=1e-6)
+    assert err.sum() >= np.sum(s[4:] ** 2) * (1 - 1e-4)
