@@ -40,7 +40,10 @@ NOT_REVIEWED = 0
 KEEP = 1
 EXCLUDE = 2
 MARK_NAMES = {NOT_REVIEWED: "not reviewed", KEEP: "keep", EXCLUDE: "exclude"}
-CSV_COLUMNS = ("number", "path", "page", "score", "q", "q_limit", "t2", "t2_limit", "flag", "mark")
+#: The outliers CSV's columns; ``method`` (added last, so the earlier columns keep their places)
+#: names how the Q limit was computed (a key of ``core.review.qlimit.Q_METHOD_NAMES``).
+CSV_COLUMNS = ("number", "path", "page", "score", "q", "q_limit", "t2", "t2_limit", "flag", "mark",
+               "method")
 _WHICH = ("flagged", "excluded", "all")
 
 
@@ -180,6 +183,7 @@ def table_rows(decomposition: Decomposition, table: OutlierTable, which: str = "
             "score": float(t.score[i]), "q": float(t.q[i]), "q_limit": float(t.limits.q_limit),
             "t2": float(t.t2[i]), "t2_limit": float(t.limits.t2_limit),
             "flag": bool(t.flag[i]), "mark": int(d.marks[i]),
+            "method": t.limits.q_method,
         })
     return rows
 
@@ -207,9 +211,10 @@ def write_csv(path, decomposition: Decomposition, table: OutlierTable, which: st
     """Write the flagged, excluded or all images with their scores as CSV.
 
     The file is UTF-8 with a header row and the columns ``number, path, page, score, q, q_limit,
-    t2, t2_limit, flag, mark`` (number: the image's 1-based number, its column + 1, as the
-    workbench and the command line show it; flag 1/0, mark 0/1/2, numbers written so they
-    read back exactly), rows most unusual first.
+    t2, t2_limit, flag, mark, method`` (number: the image's 1-based number, its column + 1, as
+    the workbench and the command line show it; flag 1/0, mark 0/1/2; method: how the Q limit
+    was computed, a key of :data:`~modescope.core.review.qlimit.Q_METHOD_NAMES`; numbers written
+    so they read back exactly), rows most unusual first.
     Bytes of a file name that are not valid UTF-8 are written as ``\\xNN``
     (:func:`~modescope.core.output.tables.escape_undecodable`).
 
@@ -245,7 +250,8 @@ def write_csv(path, decomposition: Decomposition, table: OutlierTable, which: st
     for row in rows:
         writer.writerow([row["number"], escape_undecodable(row["path"]), row["page"], _number(row["score"]),
                          _number(row["q"]), _number(row["q_limit"]), _number(row["t2"]),
-                         _number(row["t2_limit"]), int(row["flag"]), row["mark"]])
+                         _number(row["t2_limit"]), int(row["flag"]), row["mark"],
+                         row["method"]])
     return _atomic_write(path, buf.getvalue(), overwrite, protect=decomposition.paths)
 
 

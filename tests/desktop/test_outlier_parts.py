@@ -54,12 +54,27 @@ def test_describe_limits_text_and_explanation(table):
     assert tip.startswith(f"Q limit: {lim.q_reason}.\n")
     assert lim.q_reason.startswith("Jackson-Mudholkar (1979) from the eigenvalues of modes 4-5, "
                                    "which the model holds, and the modes beyond 5")
-    assert f"over {lim.t2_rank} mode(s).\nConfidence level 99 %." in tip
+    assert (f"T² limit: Beta form for the images that built the model (Tracy, Young and Mason "
+            f"1992, Phase I), over {lim.t2_rank} modes.\nConfidence level 99 %.") in tip
     assert "Note:" not in tip
     none, tip = describe_limits(dataclasses.replace(lim, q_informative=False,
                                                     t2_informative=False, note="a note"))
     assert none == "Q limit: none · T² limit: none"
     assert tip.endswith("\n\nNote: a note.")
+
+
+def test_describe_limits_names_the_f_form_for_new_images(dec):
+    from modescope.core.review.outliers import score_new
+
+    # new images scored against the model: their T² limit is the F form (Phase II)
+    new = score_new(dec, dec.weights[:, :4], dec.residual[:4], rank=3, level=0.95)
+    lim = new.limits
+    assert lim.t2_method == "f"
+    text, tip = describe_limits(lim)
+    assert text.endswith(f"T² limit {lim.t2_limit:.4g} (F)")
+    assert ("T² limit: F form for new images scored against the model (Tracy, Young and Mason "
+            "1992, Phase II), over 3 modes.\nConfidence level 95 %.") in tip
+    assert "Beta" not in tip
 
 
 def test_describe_limits_refuses_other_types(table):
@@ -107,6 +122,13 @@ def test_plot_draws_scores_in_log_and_linear_units(plot, table):
     np.testing.assert_array_equal(x, table.t2)
     np.testing.assert_array_equal(y, table.q)
     assert plot.q_line.value() == table.limits.q_limit
+    # the tooltip says why each limit is what it is (the Q method's reason included)
+    lim = table.limits
+    assert plot.toolTip().endswith(describe_limits(lim)[1])
+    assert f"Q limit: {lim.q_reason}." in plot.toolTip()
+    assert plot.q_line.label.toolTip() == (
+        f"Q limit {lim.q_limit:.5g} (Jackson-Mudholkar, tail estimated, 99 % level): "
+        f"{lim.q_reason}")
 
 
 def test_plot_draws_zero_a_decade_below_the_smallest_value(plot, table):

@@ -16,6 +16,7 @@ from PySide6.QtGui import QColor
 from modescope.core.decomposition import Decomposition
 from modescope.core.review import marks as review
 from modescope.app.desktop.display import display_name, display_path
+from modescope.app.words import counted
 from modescope.core.review.outliers import Q_METHOD_NAMES, ControlLimits, OutlierTable
 
 __all__ = ["OutlierTableModel", "OutlierFilterProxy", "FILTERS", "SORT_ROLE", "N_COLUMNS",
@@ -33,6 +34,11 @@ FILTERS = (("all", "all images"), ("flagged", "flagged"), ("excluded", "excluded
 #: Display names of the methods behind the Q and T² limits.
 Q_METHODS = dict(Q_METHOD_NAMES)
 T2_METHODS = {"beta": "Beta", "f": "F"}
+#: Where each T² limit comes from, in words (Tracy, Young and Mason 1992 give both forms).
+T2_ORIGINS = {"beta": "Beta form for the images that built the model (Tracy, Young and Mason "
+                      "1992, Phase I)",
+              "f": "F form for new images scored against the model (Tracy, Young and Mason "
+                   "1992, Phase II)"}
 _MARK_TEXT = {review.NOT_REVIEWED: "", review.KEEP: "keep", review.EXCLUDE: "exclude"}
 
 _FLAG_BG = QColor(255, 232, 226)
@@ -71,9 +77,9 @@ def describe_limits(limits: ControlLimits) -> tuple[str, str]:
     t2_part = (f"T² limit {lim.t2_limit:.4g} ({T2_METHODS.get(lim.t2_method, lim.t2_method)})"
                if lim.t2_informative else "T² limit: none")
     q_why = lim.q_reason or Q_METHODS.get(lim.q_method, lim.q_method)
-    tip = (f"Q limit: {q_why}.\nT² limit: Beta form for "
-           f"the images that built the model (Tracy, Young and Mason 1992), over "
-           f"{lim.t2_rank} mode(s).\nConfidence level {100 * lim.level:g} %.")
+    t2_why = T2_ORIGINS.get(lim.t2_method, T2_METHODS.get(lim.t2_method, lim.t2_method))
+    tip = (f"Q limit: {q_why}.\nT² limit: {t2_why}, over {counted(lim.t2_rank, 'mode')}."
+           f"\nConfidence level {100 * lim.level:g} %.")
     if lim.note:
         tip += f"\n\nNote: {lim.note}."
     return f"{q_part} · {t2_part}", tip

@@ -20,7 +20,7 @@ from PySide6.QtWidgets import QWidget
 from modescope.core.review import marks as review
 from modescope.core.review.outliers import OutlierTable
 
-from modescope.app.desktop.views.outliers_model import Q_METHODS, T2_METHODS
+from modescope.app.desktop.views.outliers_model import Q_METHODS, T2_METHODS, describe_limits
 from modescope.app.desktop.views.spectrum import log_ticks
 
 __all__ = ["OutlierPlot"]
@@ -231,6 +231,7 @@ class OutlierPlot(pg.PlotWidget):
             self.scatter.setData(x=[], y=[])
             self.q_line.hide()
             self.t2_line.hide()
+            self.setToolTip(_TOOLTIP)
             self._draw_selection()
             self._draw_checked()
             return
@@ -245,7 +246,9 @@ class OutlierPlot(pg.PlotWidget):
         self._xy = (x, y)
         self.scatter.setData(x=x, y=y, brush=self._point_brushes(), data=np.arange(t.n_images))
         self._draw_limit(self.q_line, lim.q_limit, lim.q_informative, "Q limit",
-                         Q_METHODS.get(lim.q_method, lim.q_method), lim.level)
+                         Q_METHODS.get(lim.q_method, lim.q_method), lim.level, lim.q_reason)
+        # the limits and why each was computed as it was (the Q method's reason included)
+        self.setToolTip(f"{_TOOLTIP}\n\n{describe_limits(lim)[1]}")
         self._draw_limit(self.t2_line, lim.t2_limit, lim.t2_informative, "T² limit",
                          T2_METHODS.get(lim.t2_method, lim.t2_method), lim.level)
         self._draw_selection()
@@ -254,14 +257,15 @@ class OutlierPlot(pg.PlotWidget):
         self._update_ticks()
 
     def _draw_limit(self, line: pg.InfiniteLine, value: float, informative: bool, name: str,
-                    method: str, level: float) -> None:
+                    method: str, level: float, reason: str = "") -> None:
         if not (informative and np.isfinite(value) and value > 0):
             line.hide()
             return
         line.setValue(float(np.log10(value)) if self._log else float(value))
         line.show()     # before setFormat: a hidden label does not take new text
         line.label.setFormat(f"{name} {value:.4g}")
-        line.label.setToolTip(f"{name} {value:.5g} ({method}, {100 * level:g} % level)")
+        line.label.setToolTip(f"{name} {value:.5g} ({method}, {100 * level:g} % level)"
+                              + (f": {reason}" if reason else ""))
 
     def _draw_selection(self) -> None:
         t = self._table

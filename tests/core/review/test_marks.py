@@ -122,7 +122,7 @@ def test_csv_of_all_images_parses_and_matches_table(model, tmp_path):
     path = write_csv(tmp_path / "all.csv", marked, table, "all")
     rows = _read_csv(path)
     assert tuple(rows[0]) == CSV_COLUMNS == ("number", "path", "page", "score", "q", "q_limit",
-                                             "t2", "t2_limit", "flag", "mark")
+                                             "t2", "t2_limit", "flag", "mark", "method")
     body = rows[1:]
     assert len(body) == 80
     for row, i in zip(body, table.order):
@@ -137,7 +137,11 @@ def test_csv_of_all_images_parses_and_matches_table(model, tmp_path):
         assert float(row[7]) == table.limits.t2_limit
         assert int(row[8]) == int(table.flag[i])
         assert int(row[9]) == int(marked.marks[i])
+        assert row[10] == table.limits.q_method     # how the Q limit was computed
     assert sorted(int(row[0]) for row in body) == list(range(1, 81))
+    # the method named is the one q_limit chose: the model keeps 10 of its modes, so the
+    # tail beyond them is estimated (core.review.qlimit)
+    assert {row[10] for row in body} == {"jackson-mudholkar-estimated-tail"}
     assert _no_temp_files(tmp_path)
 
 
