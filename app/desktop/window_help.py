@@ -166,6 +166,23 @@ def controls_without_tooltip(root: QWidget) -> list[QWidget]:
     return list(dict.fromkeys(found))
 
 
+def _lay_out_with_close(dialog: QDialog, content: QWidget, close_tip: str, width: int,
+                        height: int) -> QDialogButtonBox:
+    """Put ``content`` above a Close button (tooltip ``close_tip``) in ``dialog`` and size it.
+
+    The one set-up both Help dialogs share. Returns the button box.
+    """
+    buttons = QDialogButtonBox(QDialogButtonBox.StandardButton.Close, dialog)
+    buttons.rejected.connect(dialog.reject)
+    for b in buttons.buttons():
+        b.setToolTip(close_tip)
+    lay = QVBoxLayout(dialog)
+    lay.addWidget(content)
+    lay.addWidget(buttons)
+    dialog.resize(width, height)
+    return buttons
+
+
 class ShortcutsDialog(QDialog):
     """A table of the window's keyboard shortcuts, read from its actions when shown.
 
@@ -187,14 +204,7 @@ class ShortcutsDialog(QDialog):
             0, QHeaderView.ResizeMode.ResizeToContents)
         self.table.horizontalHeader().setStretchLastSection(True)
         self.table.setToolTip("Every keyboard shortcut of the window's menus and actions")
-        buttons = QDialogButtonBox(QDialogButtonBox.StandardButton.Close, self)
-        buttons.rejected.connect(self.reject)
-        for b in buttons.buttons():
-            b.setToolTip("Close this list")
-        lay = QVBoxLayout(self)
-        lay.addWidget(self.table)
-        lay.addWidget(buttons)
-        self.resize(460, 480)
+        self.buttons = _lay_out_with_close(self, self.table, "Close this list", 460, 480)
         self.refresh()
 
     def refresh(self) -> None:
@@ -224,11 +234,4 @@ class GuideDialog(QDialog):
         self.text = QTextBrowser(self)
         self.text.setOpenExternalLinks(False)
         self.text.setHtml("".join(f"<h3>{title}</h3><p>{body}</p>" for title, body in GUIDE))
-        buttons = QDialogButtonBox(QDialogButtonBox.StandardButton.Close, self)
-        buttons.rejected.connect(self.reject)
-        for b in buttons.buttons():
-            b.setToolTip("Close the guide")
-        lay = QVBoxLayout(self)
-        lay.addWidget(self.text)
-        lay.addWidget(buttons)
-        self.resize(560, 560)
+        self.buttons = _lay_out_with_close(self, self.text, "Close the guide", 560, 560)

@@ -103,3 +103,21 @@ def test_every_control_has_a_tooltip(qtbot, window, reset):
     missing = [_describe(c) for c in controls if not c.toolTip().strip()]
     assert missing == []
     assert controls_without_tooltip(window) == []
+
+
+def test_help_dialogs_share_one_close_button_set_up(qtbot, window):
+    window.show_shortcuts()
+    window.show_guide()
+    for dialog, content, tip, size in ((window.shortcuts_dialog, window.shortcuts_dialog.table,
+                                        "Close this list", (460, 480)),
+                                       (window.guide_dialog, window.guide_dialog.text,
+                                        "Close the guide", (560, 560))):
+        qtbot.waitExposed(dialog)
+        buttons = dialog.buttons.buttons()
+        assert [b.text().replace("&", "") for b in buttons] == ["Close"]
+        assert buttons[0].toolTip() == tip
+        assert dialog.layout().itemAt(0).widget() is content
+        assert dialog.layout().itemAt(1).widget() is dialog.buttons
+        assert (dialog.width(), dialog.height()) == size
+        buttons[0].click()                               # Close closes the dialog
+        qtbot.waitUntil(lambda d=dialog: not d.isVisible(), timeout=2000)
