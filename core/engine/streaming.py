@@ -48,6 +48,27 @@ _DROP_RELATIVE = 1e-5
 # needs no second one (see StreamingSVD._project_out); our own choice, measured: the learning
 # pass then differs from the two-projection one by about 1e-6 in the signal modes.
 _REPROJECT_BELOW = 1e-2
+# Blocks whose weights wait as (A, b, W) before they are made a group of pieces (see _flush).
+_CHUNKS_PER_FLUSH = 64
+
+
+class _Group:
+    """Float32 weight pieces in one older coordinate system, and the affine map
+    ``x -> a @ x + b`` that takes them to the current one."""
+
+    __slots__ = ("pieces", "a", "b", "size")
+
+    def __init__(self, pieces: list, a: np.ndarray, b: np.ndarray):
+        self.pieces, self.a, self.b = pieces, a, b
+        self.size = sum(p.shape[1] for p in pieces)
+
+    def applied(self) -> list:
+        """Move the pieces to the current system in place (float32), one piece at a time
+        (never a second copy of the group), and return them."""
+        for i, piece in enumerate(self.pieces):
+            self.pieces[i] = (self.a @ piece + self.b[:, None]).astype(np.float32)
+        self.a, self.b = np.eye(self.a.shape[0]), np.zeros(self.a.shape[0])
+        return self.pieces
 
 
 class StreamingSVD:
@@ -84,13 +105,11 @@ class StreamingSVD:
         self.total_energy = 0.0
         self.basis = np.zeros((self.n_pixels, 0), dtype=np.float32, order="F")
         self.singular_values = np.zeros(0, dtype=np.float64)
-        # weights: flushed part (coordinates in an older basis) + pending affine map, and chunks
-        # weights: flushed pieces (float32, all in one older coordinate system) with one pending
-        # affine map for all of them, plus [A, b, W] per block since the last flush
-        self._pieces: list[np.ndarray] = []
-        self._map_a = np.zeros((0, 0))
-        self._map_b = np.zeros(0)
-        self._chunks: list[list[np.ndarray]] = []
+        # weights (see _flush): groups of float32 pieces, each group in an older coordinate
+        # system with its own affine map to the current one, plus one (A, b, W) per block
+        # since the last flush
+        self._groups: list[_Group] = []
+        self._chunks: list[tuple[np.ndarray, np.ndarray, np.ndarray]] = []
         self._released = False
 
     # ---------------------------------------------------------------------------------------
@@ -126,9 +145,8 @@ class StreamingSVD:
         a_blk, b_blk, new_w = self._coordinate_maps(p_keep, core, m)
         new_rows, sig, a_blk, b_blk, new_w = self._reorthonormalised(   # step 4
             new_rows, sig, a_blk, b_blk, new_w)
-        self._compose(a_blk, b_blk)
-        self._chunks.append([np.eye(sig.size), np.zeros(sig.size), new_w])
-        if len(self._chunks) > 64:
+        self._chunks.append((a_blk, b_blk, new_w))
+        if len(self._chunks) >= _CHUNKS_PER_FLUSH:
             self._flush()
         self.basis = new_rows.T                               # Fortran order (pixels x q)
         self.singular_values = sig.copy()
@@ -280,29 +298,40 @@ class StreamingSVD:
         new_rows = (((vec_b / root_b) @ vec_b.T) @ p_fix).T.astype(np.float32) @ new_rows
         return new_rows, sig, fix @ a_blk, fix @ b_blk, fix @ new_w
 
-    def _compose(self, a_blk: np.ndarray, b_blk: np.ndarray) -> None:
-        if self._pieces:
-            self._map_a = a_blk @ self._map_a
-            self._map_b = a_blk @ self._map_b + b_blk
-        for chunk in self._chunks:
-            chunk[0] = a_blk @ chunk[0]
-            chunk[1] = a_blk @ chunk[1] + b_blk
-
     def _flush(self) -> None:
-        """Apply the pending maps, one piece at a time (never a second copy of all weights).
+        """Turn the blocks since the last flush into a group of pieces in the current system.
+
+        Block j moved every image seen before it by ``x -> A_j x + b_j`` and brought its own
+        weights ``W_j``. One sweep from the newest block back to the oldest gives each block's
+        weights in the current system and the map of all these blocks together, which is
+        composed into every older group's own map (small matrices only). Groups are merged,
+        their maps applied to their pieces, only when the newer one has grown as large as the
+        older one: every image is rewritten O(log n) times in all, not once per flush (that
+        made the learning pass quadratic in the number of images: 1.46x slower per image at a
+        million images than at 100,000, measured here).
 
         Pieces are kept in float32: they are streaming estimates (the passes after learning
         compute the exact weights), and this halves the memory per image.
         """
-        for i, piece in enumerate(self._pieces):
-            self._pieces[i] = (self._map_a @ piece.astype(np.float64)
-                               + self._map_b[:, None]).astype(np.float32)
-        for a, b, w in self._chunks:
-            self._pieces.append((a @ w + b[:, None]).astype(np.float32))
-        q = self._pieces[0].shape[0] if self._pieces else self.basis.shape[1]
-        self._map_a = np.eye(q)
-        self._map_b = np.zeros(q)
+        if not self._chunks:
+            return
+        q = self._chunks[-1][2].shape[0]
+        s_a, s_b = np.eye(q), np.zeros(q)
+        pieces: list[np.ndarray] = []
+        for a, b, w in reversed(self._chunks):
+            pieces.append((s_a @ w + s_b[:, None]).astype(np.float32))
+            s_b = s_a @ b + s_b
+            s_a = s_a @ a
+        pieces.reverse()
+        for group in self._groups:
+            group.a, group.b = s_a @ group.a, s_a @ group.b + s_b
         self._chunks = []
+        self._groups.append(_Group(pieces, np.eye(q), np.zeros(q)))
+        while len(self._groups) > 1 and self._groups[-1].size >= self._groups[-2].size:
+            newer = self._groups.pop()
+            older = self._groups.pop()
+            self._groups.append(_Group(older.applied() + newer.applied(), np.eye(q),
+                                       np.zeros(q)))
 
     def _reorthonormalise_if_needed(self) -> None:
         u = self.basis
@@ -339,9 +368,9 @@ class StreamingSVD:
         engine.total_energy = float(d.total_energy)
         engine.basis = np.asfortranarray(d.basis, dtype=np.float32)
         engine.singular_values = np.asarray(d.singular_values, dtype=np.float64).copy()
-        engine._pieces = [np.asarray(d.weights, dtype=np.float32).copy()] if d.n_images else []
-        engine._map_a = np.eye(d.rank)
-        engine._map_b = np.zeros(d.rank)
+        if d.n_images:
+            engine._groups = [_Group([np.asarray(d.weights, dtype=np.float32).copy()],
+                                     np.eye(d.rank), np.zeros(d.rank))]
         return engine
 
     def padded_basis(self, seed: int = 0) -> np.ndarray:
@@ -368,10 +397,7 @@ class StreamingSVD:
     # ---------------------------------------------------------------------------------------
     def internal_weights(self) -> np.ndarray:
         """Return the weights of every image seen, shape (internal directions, n_seen)."""
-        self._flush()
-        if not self._pieces:
-            return np.zeros((self.basis.shape[1], 0))
-        return np.concatenate(self._pieces, axis=1).astype(np.float64)
+        return self.internal_weights_rows(self.basis.shape[1])
 
     def release_weights(self) -> None:
         """Forget the streaming weights of every image (when exact ones have replaced them).
@@ -379,16 +405,21 @@ class StreamingSVD:
         The engine's basis, singular values, mean and energy stay; :meth:`snapshot` can no
         longer be asked for afterwards.
         """
-        self._pieces, self._chunks = [], []
-        self._map_a, self._map_b = np.zeros((0, 0)), np.zeros(0)
+        self._groups, self._chunks = [], []
         self._released = True
 
     def internal_weights_rows(self, rows: int) -> np.ndarray:
         """Return the first ``rows`` internal weights of every image, float64 (a snapshot)."""
         self._flush()
-        if not self._pieces:
-            return np.zeros((min(rows, self.basis.shape[1]), 0))
-        return np.concatenate([p[:rows] for p in self._pieces], axis=1).astype(np.float64)
+        rows = min(rows, self.basis.shape[1])
+        out = np.empty((rows, sum(group.size for group in self._groups)))
+        done = 0
+        for group in self._groups:
+            a, b = group.a[:rows], group.b[:rows, None]
+            for piece in group.pieces:
+                out[:, done:done + piece.shape[1]] = a @ piece + b
+                done += piece.shape[1]
+        return out
 
     def snapshot(self, image_shape: tuple | None = None, **fields) -> Decomposition:
         """Return a consistent Decomposition of everything seen so far (streaming, not exact).

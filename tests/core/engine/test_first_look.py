@@ -7,9 +7,17 @@ common size is not the first images' size) the analysis starts afresh.
 """
 
 import numpy as np
+import pytest
 from PIL import Image
 
+import modescope.core.engine.pipeline as pipeline
+
 from modescope.core import AnalysisOptions, analyze
+
+
+@pytest.fixture(autouse=True)
+def few_files_are_enough(monkeypatch):
+    monkeypatch.setattr(pipeline, "FIRST_LOOK_FILES", 5)
 
 
 def _write(folder, n, size=(12, 10), seed=0, start=0):
@@ -58,6 +66,19 @@ def test_a_collection_smaller_than_the_look(tmp_path):
                      on_partial=seen.append)
     assert result.decomposition.n_images == 9 and not result.cancelled
     assert seen[0].n_images == 9
+
+
+def test_no_quick_look_below_the_file_count(tmp_path, monkeypatch):
+    monkeypatch.setattr(pipeline, "FIRST_LOOK_FILES", 71)
+    _write(tmp_path / "c", 70)
+    progress, seen = [], []
+    analyze([tmp_path / "c"], AnalysisOptions(rank=3, block_size=16), progress=progress.append,
+            on_partial=lambda d: seen.append((d.n_images, len(progress))))
+    # the first partial comes after the whole scan was reported
+    first_images, reports_before = seen[0]
+    assert first_images == 16
+    assert any(p.stage == "scan" and p.done == p.total == 70
+               for p in progress[:reports_before])
 
 
 def test_scan_limit_reads_only_the_first_headers(tmp_path):
