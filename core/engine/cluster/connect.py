@@ -79,6 +79,26 @@ def open_client(scheduler: str | None = None, client=None, *, connect_timeout: f
     if client is not None:
         yield client
         return
+    with _quiet_logs():
+        yield from _connected(scheduler, connect_timeout, local_workers, local_processes,
+                              memory_limit)
+
+
+@contextlib.contextmanager
+def _quiet_logs():
+    """Keep distributed's own log lines (warnings, tracebacks of lost connections) off the
+    terminal while we hold the client: every failure reaches the caller as a ClusterError."""
+    logger = logging.getLogger("distributed")
+    level = logger.level
+    logger.setLevel(logging.CRITICAL)
+    try:
+        yield
+    finally:
+        logger.setLevel(level)
+
+
+def _connected(scheduler, connect_timeout, local_workers, local_processes, memory_limit):
+    """The body of :func:`open_client` once dask is known to be there (a generator)."""
     from distributed import Client, LocalCluster
 
     if scheduler is not None:
