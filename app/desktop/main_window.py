@@ -162,7 +162,7 @@ class MainWindow(RunControlMixin, SourcesMixin, FilesMixin, MenusMixin, DockLayo
         self.state.marksHistoryChanged.connect(self._update_undo_actions)
         self.state.selectedChanged.connect(self._note_pick)
         # ((path, page) pairs not excluded, StoredOptions)
-        self.views["outliersDock"].refitRequested.connect(self.refit_analysis)
+        self.views["outliersDock"].refitRequested.connect(self._refit_from_view)
         self.views["checkedDock"].attach(self.views["weightsDock"],
                                          self.views["outliersDock"].plot_widget)
         self.cancel_action.setEnabled(False)

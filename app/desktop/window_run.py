@@ -119,13 +119,16 @@ class RunControlMixin:
                         f"Modescope — {names}{more}", run_key=(list(sources), options))
         return True
 
-    def refit_analysis(self, images: Sequence, options: StoredOptions) -> bool:
+    def refit_analysis(self, images: Sequence, options: StoredOptions, *,
+                       asked: bool = False) -> bool:
         """Analyse again only ``images`` ((path, page) pairs), for instance the images of
         the current analysis not marked excluded.
 
         The Sources pane is left as it is: a refit is a variant of the current collection,
         not a new one. Pages of multi-page files that are
-        not listed are left out.
+        not listed are left out. Unsaved review marks are asked about first, unless
+        ``asked`` says the person already agreed that the refit replaces them (the
+        Outliers view's Refit asks once, with the way to keep them).
 
         Returns
         -------
@@ -138,13 +141,18 @@ class RunControlMixin:
                                                  "Every image is marked excluded.")
         if analysis_options is None:
             return False
-        if not self.confirm_discard_marks("The refit"):
+        if not asked and not self.confirm_discard_marks("The refit"):
             return False
         files = list(dict.fromkeys(p for p, _ in pairs))
         self.ingest.stop_scan()
         self._begin_run(files, analysis_options,
                         f"Modescope — refit of {counted(len(pairs), 'image')}", only=pairs)
         return True
+
+    @Slot(object, object)
+    def _refit_from_view(self, images: Sequence, options: StoredOptions) -> bool:
+        """The Outliers view's Refit, already confirmed there: do not ask a second time."""
+        return self.refit_analysis(images, options, asked=True)
 
     def _checked_options(self, anything: bool, options: StoredOptions, empty_hint: str):
         """Return the AnalysisOptions of ``options``, or None after a message (nothing to

@@ -254,22 +254,31 @@ def test_save_answer_cancelled_in_the_file_dialog_aborts(qtbot, opened, answers,
     np.testing.assert_array_equal(w.state.decomposition.marks, [0, 0, 0, 1, 0, 0, 0, 0])
 
 
-def test_refit_from_the_review_menu_asks_both_questions(qtbot, window, answers,
-                                                        small_collection):
+def test_refit_from_the_review_menu_asks_once(qtbot, window, answers, small_collection):
     w = window
     with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT):
         assert w.start_analysis([str(small_collection)], StoredOptions(rank=3))
     first = w.state.decomposition
     view = w.views["outliersDock"]
     view.flush()
-    w.state.set_marks([4, 8], review.EXCLUDE)
-    answers.queue[:] = [B.Yes, B.Cancel]               # refit? yes; the unsaved marks: cancel
+    w.state.set_marks([4, 8], review.EXCLUDE)          # unsaved marks, and two excluded
+    answers.queue[:] = [B.Cancel]                       # refit? cancel
     view.refit_action.trigger()
-    assert len(answers.asked) == 2 and "The refit throws them away" in answers.asked[1]
+    assert len(answers.asked) == 1
+    assert answers.asked[0].startswith("Refit without excluded images: Analyse again the 38 "
+                                       "images not marked excluded (2 excluded)")
+    assert "save the current one first" in answers.asked[0]   # how to keep the marks
     assert not w.runner.is_running() and w.state.decomposition.paths == first.paths
-    answers.queue[:] = [B.Yes, B.Discard]
+    answers.queue[:] = [B.Yes]                          # yes: the refit runs, no second question
     with qtbot.waitSignal(w.runner.finished, timeout=TIMEOUT) as blocker:
         view.refit_action.trigger()
     assert blocker.args[0].decomposition.n_images == 38
-    assert len(answers.asked) == 4
+    assert len(answers.asked) == 2
     assert not w.state.marks_modified and not w.state.can_undo
+    # called directly (not from the view), the window still asks about unsaved marks
+    w.state.set_marks([0], review.EXCLUDE)
+    answers.queue[:] = [B.Cancel]
+    assert not w.refit_analysis([(p, 0) for p in w.state.decomposition.paths[1:]],
+                                StoredOptions(rank=2))
+    assert len(answers.asked) == 3 and "The refit throws them away" in answers.asked[2]
+
