@@ -17,7 +17,8 @@ from modescope.app.cli.common import (EXIT_OK, EXIT_UNUSABLE, ProgressLine,
 from modescope.app.cli.writing import check_output, model_name, same_file
 from modescope.app.words import counted
 from modescope.core.errors import ModescopeError, NoUsableImagesError
-from modescope.core.engine.pipeline import AnalysisOptions, analyze, update_analysis
+from modescope.core.engine.options import stored_options
+from modescope.core.engine.pipeline import analyze, update_analysis
 from modescope.core.output.model_file import load_model, save_model
 from modescope.core.review.accuracy import describe_accuracy
 
@@ -73,8 +74,8 @@ def run(args: argparse.Namespace) -> int:
         d = load_model(args.model)
         if _output_refused(args, output, [*args.sources, *d.paths]):
             return EXIT_UNUSABLE
-        options = AnalysisOptions.from_dict(d.metadata.get("options", {}))
-        options = dataclasses.replace(options, rank=max(d.rank, 1), recursive=args.recursive,
+        # the rank asked for when the model was made, not a partial result's smaller one
+        options = dataclasses.replace(stored_options(d), recursive=args.recursive,
                                       oversample=args.oversample, tolerance=args.tolerance,
                                       max_passes=args.max_passes, pass_blas_threads=cores())
         progress = None if args.quiet else ProgressLine(sys.stderr)

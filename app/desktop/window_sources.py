@@ -50,15 +50,9 @@ def update_options(decomposition):
     TypeError, ValueError
         If the stored options are not a dict or hold values AnalysisOptions refuses.
     """
-    from modescope.core.engine.options import AnalysisOptions
+    from modescope.core.engine.options import stored_options
 
-    stored = (decomposition.metadata or {}).get("options")
-    if stored is None:
-        return AnalysisOptions(rank=max(decomposition.rank, AnalysisOptions().rank))
-    if not isinstance(stored, dict):
-        raise TypeError(f"the analysis' metadata 'options' must be a dict, got "
-                        f"{type(stored).__name__}")
-    return AnalysisOptions.from_dict(stored)
+    return stored_options(decomposition)
 
 
 def adding(decomposition):

@@ -20,7 +20,7 @@ from modescope.core.sources.scan import SourceSet
 from modescope.core.validation import check_choice, check_int
 
 __all__ = ["AnalysisOptions", "Progress", "AnalysisResult", "Clock", "block_size_for",
-           "decode_workers", "blas_limit", "metadata_for", "version"]
+           "decode_workers", "blas_limit", "metadata_for", "version", "stored_options"]
 
 
 def version() -> str:
@@ -216,6 +216,41 @@ class Clock:
 # an update (the block, the next one being decoded, the remainder, products), so this bounds the
 # peak memory at a few times the figure for any image size. Our own choice, no published source.
 _BLOCK_BYTES = 256 * 2 ** 20
+
+
+def stored_options(decomposition: Decomposition) -> AnalysisOptions:
+    """Return the options a model was made with, to continue or extend it.
+
+    The rank is the rank asked for when the model was made, not the model's own: a partial
+    result (a run stopped early) may hold fewer modes because few images had been read, and
+    completing it with that smaller rank would keep the loss. Without stored options (a model
+    from elsewhere) the defaults are used, with a rank of at least the model's.
+
+    Parameters
+    ----------
+    decomposition : Decomposition
+
+    Returns
+    -------
+    AnalysisOptions
+
+    Raises
+    ------
+    TypeError
+        If ``decomposition`` is not a Decomposition, or its metadata ``options`` is not a dict.
+    ValueError
+        If the stored options hold values AnalysisOptions refuses.
+    """
+    if not isinstance(decomposition, Decomposition):
+        raise TypeError(f"decomposition must be a Decomposition, got "
+                        f"{type(decomposition).__name__}")
+    stored = (decomposition.metadata or {}).get("options")
+    if stored is None:
+        return AnalysisOptions(rank=max(decomposition.rank, AnalysisOptions().rank))
+    if not isinstance(stored, dict):
+        raise TypeError(f"the model's metadata 'options' must be a dict of analysis options, "
+                        f"got {type(stored).__name__}")
+    return AnalysisOptions.from_dict(stored)
 
 
 def block_size_for(options: AnalysisOptions, n_pixels: int, minimum: int = 1) -> int:

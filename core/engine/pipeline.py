@@ -23,7 +23,7 @@ from modescope.core.engine.blockcache import BlockCache
 from modescope.core.engine.learning import Learned, learn
 from modescope.core.engine.options import (AnalysisOptions, AnalysisResult, Clock, Progress,
                                            blas_limit, block_size_for, decode_workers,
-                                           metadata_for, version)
+                                           metadata_for, stored_options, version)
 from modescope.core.engine.passes import Refined, refine
 from modescope.core.engine.refine import project_block
 from modescope.core.engine.streaming import StreamingSVD
@@ -488,8 +488,7 @@ def _update_options(d: Decomposition, options: AnalysisOptions | None) -> Analys
     """Return the options of an update (default: the analysis' own), checked against it."""
     meta = d.metadata
     if options is None:
-        options = AnalysisOptions.from_dict(meta.get("options", {}))
-        options = dataclasses.replace(options, rank=max(d.rank, 1))
+        options = stored_options(d)     # the rank asked for, not a partial result's
     elif not isinstance(options, AnalysisOptions):
         raise TypeError(f"options must be AnalysisOptions, got {type(options).__name__}")
     color = "gray" if d.image_shape[2] == 1 else "rgb"

@@ -95,7 +95,7 @@ def test_update_options_use_the_rank_asked_for(small_collection):
     meta = dict(partial.metadata)
     del meta["options"]
     assert update_options(partial.replace(metadata=meta)).rank == AnalysisOptions().rank
-    with pytest.raises(TypeError, match="'options' must be a dict, got list"):
+    with pytest.raises(TypeError, match="'options' must be a dict of analysis options, got list"):
         update_options(partial.replace(metadata={"options": [1]}))
 
 

@@ -88,3 +88,40 @@ def test_update_command_names_old_files_left_out(two_folders, tmp_path, capsys):
     err = capsys.readouterr().err
     assert "added 40 images to 60 images (1 old could not be read again and were left out)" in err
     assert "f_3.png" in err and load_model(out).n_images == 99
+
+
+def test_update_of_a_partial_model_uses_the_rank_asked_for(two_folders):
+    from modescope.core.engine.options import stored_options
+
+    first, second, x = two_folders
+    d = analyze([first], AnalysisOptions(rank=8)).decomposition
+    # a partial result holding 3 of the 8 modes asked for (a run stopped early)
+    partial = d.replace(exact=False, basis=d.basis[:, :3], singular_values=d.singular_values[:3],
+                        weights=d.weights[:3], singular_value_error=None, residual=None)
+    assert partial.rank == 3 and stored_options(partial).rank == 8
+    result = update_analysis(partial, [second])
+    assert result.decomposition.rank == 8 and result.decomposition.n_images == 100
+    # reference: LAPACK SVD (numpy.linalg.svd) of all 100 centred images
+    c = x - x.mean(axis=1, keepdims=True)
+    s = np.linalg.svd(c, compute_uv=False)
+    np.testing.assert_allclose(result.decomposition.singular_values[:4], s[:4], rtol=1e-4)
+    # without stored options: the default rank, or the model's when it is larger
+    bare = partial.replace(metadata={k: v for k, v in partial.metadata.items()
+                                     if k != "options"})
+    assert stored_options(bare).rank == AnalysisOptions().rank
+    with pytest.raises(TypeError, match="'options' must be a dict of analysis options, got str"):
+        stored_options(partial.replace(metadata={"options": "rank=8"}))
+    with pytest.raises(TypeError, match="decomposition must be a Decomposition, got NoneType"):
+        stored_options(None)
+
+
+def test_cli_update_of_a_partial_model_uses_the_rank_asked_for(two_folders, tmp_path):
+    first, second, _ = two_folders
+    d = analyze([first], AnalysisOptions(rank=6)).decomposition
+    partial = d.replace(exact=False, basis=d.basis[:, :2], singular_values=d.singular_values[:2],
+                        weights=d.weights[:2], singular_value_error=None, residual=None)
+    save_model(tmp_path / "partial.npz", partial)
+    assert main(["update", str(tmp_path / "partial.npz"), str(second), "-o",
+                 str(tmp_path / "done.npz"), "--quiet"]) == 0
+    done = load_model(tmp_path / "done.npz")
+    assert done.rank == 6 and done.n_images == 100 and done.exact
