@@ -96,6 +96,8 @@ def test_checked_images_reach_the_table_the_plots_and_the_map(qtbot, window, mod
     np.testing.assert_allclose(y, result.weights[b])
     # Q against T²: the checked points and the Phase II limit line
     plot = window.views["outliersDock"].plot_widget
+    # the outlier view draws its own table after a throttled redraw: the diamonds come with it
+    qtbot.waitUntil(lambda: len(plot.checked_values()[0]) == 6, timeout=10000)
     t2, q = plot.checked_values()
     np.testing.assert_allclose(t2, result.table.t2, rtol=1e-9)
     np.testing.assert_allclose(q, result.table.q, rtol=1e-9)
