@@ -417,8 +417,12 @@ class PaneArea(QWidget):
 
     In a wide area the panes stand side by side (info text below); in a tall one they form a
     2 x 2 grid with the info text in the fourth cell. The arrangement that shows the images at
-    the larger scale wins.
+    the larger scale wins. The legend sits :attr:`LEGEND_GAP` pixels below the residual pane, so
+    an image that fills its pane never touches the colour bar.
     """
+
+    #: Pixels between the bottom of the residual pane and its colour legend.
+    LEGEND_GAP = 6
 
     def __init__(self, panes: tuple[ImagePane, ImagePane, ImagePane], legend: QWidget,
                  info: QWidget, parent: QWidget | None = None):
@@ -453,7 +457,9 @@ class PaneArea(QWidget):
     def _arrange(self) -> None:
         w, h = self.width(), self.height()
         gap = 8
-        legend_h = self._legend.minimumHeight()
+        # the legend's own height plus the space above it
+        legend_h = self._legend.minimumHeight() + self.LEGEND_GAP
+        top = self.LEGEND_GAP
         info_h = self._info.sizeHint().height()
         if self._info.hasHeightForWidth():
             info_h = max(info_h, self._info.heightForWidth(w))
@@ -470,7 +476,7 @@ class PaneArea(QWidget):
             cw, ch = int(wide_cell_w), int(max(40, wide_cell_h))
             for i, pane in enumerate(self._panes):
                 pane.setGeometry(int(i * (wide_cell_w + gap)), 0, cw, ch)
-            self._legend.setGeometry(int(2 * (wide_cell_w + gap)), ch, cw, legend_h)
+            self._legend.setGeometry(int(2 * (wide_cell_w + gap)), ch + top, cw, legend_h - top)
             self._info.setGeometry(0, ch + legend_h + gap, w, max(0, h - ch - legend_h - gap))
         else:
             self.columns = 2
@@ -478,7 +484,7 @@ class PaneArea(QWidget):
             src.setGeometry(0, 0, cw, ch)
             rec.setGeometry(int(tall_cell_w + gap), 0, cw, ch)
             res.setGeometry(0, ch + gap, cw, ch)
-            self._legend.setGeometry(0, 2 * ch + gap, cw, legend_h)
+            self._legend.setGeometry(0, 2 * ch + gap + top, cw, legend_h - top)
             self._info.setGeometry(int(tall_cell_w + gap), ch + gap + self.fontMetrics().height(),
                                    cw, max(0, h - ch - gap))
 
