@@ -245,7 +245,10 @@ class SourcesMixin:
                 f"{'it' if len(missing) == 1 else 'them'} (first: {display_path(missing[0])}). "
                 "The weights and scores are all there; the image, reconstruction, residual and "
                 "exports need the files.")
-        self.statusBar().showMessage(f"{text} File > Locate the sources finds them.", 20000)
+        # the status bar holds the short form (the question below has the whole text)
+        self.statusBar().showMessage(
+            f"{counted(len(missing), 'source file')} of {total:,} not found where the analysis "
+            "recorded them: File > Locate the sources finds moved files.", 20000)
         self._offer("Source files not found",
                     text + "\n\nWere they moved? Choose the folder where they are now.",
                     "Locate the sources…", self.choose_sources_folder)

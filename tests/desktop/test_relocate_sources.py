@@ -43,8 +43,9 @@ def window(qtbot, ini_settings):
 def test_open_says_the_sources_are_missing_and_locate_repoints_them(qtbot, window, moved_model):
     path, tray, new = moved_model
     assert window.open_analysis(str(path))
-    assert window.statusBar().currentMessage().startswith(
-        f"12 source files of 12 are not where the analysis recorded them (first: {tray}")
+    assert window.statusBar().currentMessage() == (
+        "12 source files of 12 not found where the analysis recorded them: File > Locate the "
+        "sources finds moved files.")
     assert window.locate_action.isEnabled()
     window.state.set_marks([4], 2)                       # an unsaved mark, kept through it
     assert window.state.marks_modified
@@ -94,3 +95,21 @@ def test_nothing_to_say_when_the_files_are_in_place(window, moved_model):
     assert window.open_analysis(str(path))
     assert window.check_sources_found() == 0
     assert window.statusBar().currentMessage().startswith("Opened ")
+
+
+def test_the_question_names_the_first_missing_file(qtbot, ini_settings, moved_model):
+    path, tray, _new = moved_model
+    w = MainWindow(ini_settings)                     # questions shown (not blocking)
+    qtbot.addWidget(w)
+    w.show()
+    assert w.open_analysis(str(path))
+    box = w.sources_box
+    qtbot.waitUntil(box.isVisible, timeout=2000)
+    first = sorted(p.name for p in _new.glob("*.png"))[0]
+    assert box.text().startswith(
+        f"12 source files of 12 are not where the analysis recorded them (first: "
+        f"{tray / first}).")
+    assert [b.text() for b in box.buttons() if b is box.defaultButton()] == [
+        "Locate the sources…"]
+    box.reject()
+    w.close()
