@@ -20,6 +20,7 @@ import numpy as np
 
 from modescope.core.decomposition import Decomposition
 from modescope.core.engine.blockcache import BlockCache
+from modescope.core.engine.headstart import Head, scan_and_learn
 from modescope.core.engine.learning import Learned, learn
 from modescope.core.engine.options import (AnalysisOptions, AnalysisResult, Clock, Progress,
                                            blas_limit, block_size_for, decode_workers,
@@ -40,12 +41,11 @@ __all__ = ["AnalysisOptions", "Progress", "AnalysisResult", "scan", "analyze", "
 
 
 def scan(sources, options: AnalysisOptions = AnalysisOptions(), *, progress=None,
-         cancel=None, limit: int | None = None, files=None) -> SourceSet:
+         cancel=None, files=None, found=None) -> SourceSet:
     """Scan folders and files with the options' colour, recursion and size policy.
 
-    ``limit`` stops after that many images (see
-    :func:`~modescope.core.sources.scan.scan_sources`); ``files(done, total)`` is told the
-    headers read and the files found after each header.
+    ``files(done, total)`` is told the headers read and the files found after each header;
+    ``found`` is passed on to :func:`~modescope.core.sources.scan.scan_sources`.
 
     Raises
     ------
@@ -64,7 +64,7 @@ def scan(sources, options: AnalysisOptions = AnalysisOptions(), *, progress=None
     return scan_sources(sources, recursive=options.recursive, color=options.color,
                         resize_mismatched=options.resize_mismatched, frames=options.frames,
                         progress=scan_progress if progress or files else None,
-                        cancel=cancel, limit=limit)
+                        cancel=cancel, found=found)
 
 
 def analyze(sources, options: AnalysisOptions | None = None, *,
@@ -116,90 +116,52 @@ def analyze(sources, options: AnalysisOptions | None = None, *,
         raise TypeError(f"options must be AnalysisOptions, got {type(options).__name__}")
     cancel = cancel or (lambda: False)
     with contextlib.ExitStack() as stack:
-        look = None
+        head = None
         if on_partial is not None and only is None and not isinstance(sources, SourceSet):
-            look = _first_look(sources, options, cancel, on_partial, stack)
-        if look is not None and look.learned.stopped:       # cancelled: keep what it had
-            run = _Run(look.engine, look.source_set, options, look.shape,
-                       list(look.learned.problems))
-            return run.result(run.snapshot(look.learned, "cancelled"), True)
-        return _analyze_scanned(sources, options, progress, cancel, on_partial,
-                                partial_interval, only, look, stack)
+            def make_run(engine, source_set, shape):
+                return _Run(engine, source_set, options, shape, [])
+            try:
+                source_set, head = scan_and_learn(
+                    sources, options, scan, make_run, progress=progress, cancel=cancel,
+                    on_partial=on_partial, partial_interval=partial_interval, stack=stack)
+            except AnalysisCancelled:
+                source_set = None
+            if source_set is None or (head is not None and head.learned.stopped):
+                return _cancelled_early(head, options)
+        else:
+            source_set = _scanned(sources, options, progress, cancel)
+            if source_set is None:
+                return _cancelled_early(None, options)
+        return _analyze_scanned(source_set, options, progress, cancel, on_partial,
+                                partial_interval, only, head, stack)
 
 
-#: Files in the sources from which the first block is learned before the whole scan (reading
-#: this many headers takes about 0.1 s here, so smaller collections are scanned first).
-FIRST_LOOK_FILES = 2000
+def _cancelled_early(head: Head | None, options: AnalysisOptions) -> AnalysisResult:
+    """The result of a run cancelled during the scan: what was learned meanwhile, if any."""
+    if head is not None and head.engine.n_seen:
+        run = _Run(head.engine, head.source_set, options, head.shape,
+                   list(head.learned.problems))
+        return run.result(run.snapshot(head.learned, "cancelled"), True)
+    empty = SourceSet(images=(), reference_size=(0, 0), color=options.color,
+                      resize_mismatched=options.resize_mismatched, problems=())
+    return AnalysisResult(None, empty, (), True)
 
 
-@dataclasses.dataclass
-class _FirstLook:
-    """The first block of a collection, learned before the whole collection was scanned."""
-
-    source_set: SourceSet
-    shape: tuple
-    engine: StreamingSVD
-    cache: BlockCache
-    learned: Learned
-
-    def fits(self, source_set: SourceSet, shape: tuple) -> bool:
-        """True when the full scan starts with the same images at the same size."""
-        k = self.source_set.n_images
-        return (shape == self.shape and source_set.color == self.source_set.color
-                and source_set.images[:k] == self.source_set.images)
-
-
-def _first_look(sources, options: AnalysisOptions, cancel, on_partial,
-                stack: contextlib.ExitStack) -> _FirstLook | None:
-    """Scan only the first block of images, learn it and hand out a partial result at once.
-
-    Reading every header of a large collection takes a while (about 45 microseconds a JPEG
-    file with Pillow); the desktop program shows the first basis images from the first block
-    instead of waiting for the whole scan. None when the sources hold fewer than
-    :data:`FIRST_LOOK_FILES` files (their scan is quick) or the quick look finds nothing
-    usable (the full scan then reports why).
-    """
-    found = [0]
-
-    def count(done, total):
-        found[0] = total
-    try:
-        look = scan(sources, options, cancel=cancel, limit=options.block_size, files=count)
-        shape = analysis_shape(look, options.downscale)
-    except (ModescopeError, AnalysisCancelled, ValueError):
-        return None
-    if found[0] < FIRST_LOOK_FILES:
-        return None
-    engine = StreamingSVD(int(np.prod(shape)), options.rank, options.oversample)
-    cache = stack.enter_context(BlockCache(engine.n_pixels))
-    run = _Run(engine, look, options, shape, [])
-    with blas_limit(options.blas_threads):
-        learned = learn(engine, look, options, workers=run.workers, cache=cache,
-                        cancel=cancel, on_partial=on_partial, snapshot=run.snapshot)
-    if engine.n_seen == 0:
-        return None
-    return _FirstLook(look, shape, engine, cache, learned)
-
-
-def _analyze_scanned(sources, options, progress, cancel, on_partial, partial_interval, only,
-                     look: _FirstLook | None, stack: contextlib.ExitStack) -> AnalysisResult:
-    """The rest of :func:`analyze`: the full scan, the learning pass and the passes."""
-    source_set = _scanned(sources, options, progress, cancel)
-    if source_set is None:
-        empty = SourceSet(images=(), reference_size=(0, 0), color=options.color,
-                          resize_mismatched=options.resize_mismatched, problems=())
-        return AnalysisResult(None, empty, (), True)
+def _analyze_scanned(source_set: SourceSet, options, progress, cancel, on_partial,
+                     partial_interval, only, head: Head | None,
+                     stack: contextlib.ExitStack) -> AnalysisResult:
+    """The rest of :func:`analyze`: the learning pass and the passes."""
     if only is not None:
         source_set = _select(source_set, only)
     try:
         shape = analysis_shape(source_set, options.downscale)
     except ValueError as exc:                   # a downscale too large for these images
         raise SourceError(str(exc)) from None
-    if look is not None and look.fits(source_set, shape):
-        engine, cache, after = look.engine, look.cache, look.learned
-    else:                  # no quick look, or the full scan disagrees with it: start afresh
-        if look is not None:
-            look.cache.close()
+    if head is not None and head.fits(source_set, shape):
+        engine, cache, after = head.engine, head.cache, head.learned
+    else:                  # no head start, or the full scan disagrees with it: start afresh
+        if head is not None:
+            head.cache.close()
         engine = StreamingSVD(int(np.prod(shape)), options.rank, options.oversample)
         cache, after = None, None
     run = _Run(engine, source_set, options, shape, list(source_set.problems))

@@ -61,7 +61,7 @@ from modescope.core.sources.headers import (not_regular_reason, read_headers, sh
 from modescope.core.sources.frames import FrameRange
 from modescope.core.sources.sequences import (SEQUENCE_SUFFIXES, SequenceError, is_sequence,
                                               probe_sequence)
-from modescope.core.validation import check_bool, check_callable, check_choice, check_int
+from modescope.core.validation import check_bool, check_callable, check_choice
 from modescope.core.errors import AnalysisCancelled, NoUsableImagesError
 
 __all__ = [
@@ -381,7 +381,7 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
                  resize_mismatched: bool = False, frames: FrameRange | None = None,
                  progress: Callable[[int, int], None] | None = None,
                  cancel: Callable[[], bool] | None = None,
-                 limit: int | None = None) -> SourceSet:
+                 found: list | None = None) -> SourceSet:
     """Find the images in folders and files and check that they can be analysed together.
 
     Parameters
@@ -402,10 +402,10 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
         Called after each file header is read; ``total`` is the number of files found.
     cancel : callable() -> bool, optional
         Checked before each file; when it returns True the scan stops.
-    limit : int, optional
-        Stop reading headers once this many images were found: a quick look at the first
-        images (the reference size is then the most common size among them, which the full
-        scan may not confirm). None reads every header.
+    found : list, optional
+        An empty list that receives every image as soon as its header is read, in order,
+        before the sizes are compared (for a reader in another thread: appending to a list
+        is atomic). The images returned are these, less those of another size.
 
     Returns
     -------
@@ -436,8 +436,6 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
     check_bool("resize_mismatched", resize_mismatched)
     check_callable("progress", progress)
     check_callable("cancel", cancel)
-    if limit is not None:
-        limit = check_int("limit", limit, minimum=1)
     if frames is not None and not isinstance(frames, FrameRange):
         raise TypeError(f"frames must be a FrameRange or None, got {type(frames).__name__}")
 
@@ -481,7 +479,12 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
     if len(files) > 5000:
         gc.collect()
     total = len(files)
-    found: list[ImageRef] = []
+    if found is None:
+        found = []
+    elif not isinstance(found, list):
+        raise TypeError(f"found must be a list or None, got {type(found).__name__}")
+    elif found:
+        raise ValueError(f"found must be an empty list, got one of {len(found)} items")
     sizes: dict = {}
     notes: list[Problem] = []
     rates: dict = {}                         # video or stack -> its frame rate (or None)
@@ -492,9 +495,6 @@ def scan_sources(sources, *, recursive: bool = False, color: str = "gray",
             found.extend(_probe(path, problems, sizes, notes, caught, frames, rates))
             if progress is not None:
                 progress(done, total)
-            if limit is not None and len(found) >= limit:
-                del found[limit:]
-                break
 
     multi_page = {ref.path for ref in found if ref.page > 0 or ref.path in rates}
     usable: list[ImageRef] = []
