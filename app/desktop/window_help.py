@@ -56,6 +56,23 @@ GUIDE = (
      "beyond a limit by chance. The Outliers table lists the images by score, the larger of "
      "the two ratios to their limits, most unusual first. Outlier flags are a screening aid "
      "for a person to review, not a verdict about an image or about anyone in it."),
+    ("Checking new images",
+     "File > Check new images against this analysis scores a new batch against the analysis "
+     "shown without changing it: each new image gets its weights, Q and T² with Phase II "
+     "limits, which are meant for images that took no part in the analysis. The new images "
+     "appear as diamonds in the Weights plane and the Q-against-T² plot, and the Checked "
+     "images pane lists them with their residual map. The limits assume that the images of "
+     "the analysis were normal and that nothing has changed since; a flag asks a person to "
+     "look, it is not a verdict on a part, a sample or a person."),
+    ("Frequencies and pairs",
+     "For a sequence in time (video frames, a time-lapse, snapshots of a flow) each mode's "
+     "weights are a time series. The Frequencies pane shows the spectrum of the selected "
+     "modes' weights, the dominant frequency of each mode and the pairs of modes that "
+     "oscillate together a quarter period apart (a travelling pattern): select the two modes "
+     "of a pair and the Weights plane shows their ring. The growth rates come from a linear "
+     "model of the weights (dynamic mode decomposition); its caution says when that model "
+     "does not fit. The frequencies are in hertz when the frame rate is known, otherwise per "
+     "frame."),
 )
 
 #: Tooltips for the buttons Qt adds by itself, by object name.

@@ -83,7 +83,10 @@ def test_guide_has_each_part_and_the_screening_caution(qtbot, window):
         assert title in text
     assert [t for t, _ in GUIDE] == ["Basis images", "Weights", "The residual",
                                      "Looking closely", "The rank slider",
-                                     "The outlier limits"]
+                                     "The outlier limits", "Checking new images",
+                                     "Frequencies and pairs"]
+    assert "not a verdict on a part, a sample or a person" in text
+    assert "Phase II" in text and "ring" in text
     assert "zoom" in text and "Stretch contrast" in text
     assert "screening aid for a person to review, not a verdict" in text
 

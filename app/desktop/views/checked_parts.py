@@ -12,6 +12,8 @@ from __future__ import annotations
 
 import os
 
+import numpy as np
+
 from PySide6.QtCore import QObject, Signal
 from PySide6.QtWidgets import (QDialog, QDialogButtonBox, QFileDialog, QHBoxLayout, QLabel,
                                QListWidget, QPushButton, QVBoxLayout, QWidget)
@@ -65,7 +67,8 @@ class CheckedImages(QObject):
                             f"{type(model).__name__} and {type(result).__name__}")
         self._model, self._result = model, result
         self.changed.emit(result)
-        self.set_selected(0 if result.n_images else -1)
+        # the most unusual image first, as the table lists them
+        self.set_selected(int(np.argmax(result.table.score)) if result.n_images else -1)
 
     def clear(self) -> None:
         """Forget the checked images."""
