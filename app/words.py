@@ -32,7 +32,7 @@ def unexplained(share: float) -> str:
     Examples
     --------
     >>> unexplained(0.0123), unexplained(2e-7)
-    ('1.2%', 'less than 0.01%')
+    ('1.2 %', 'less than 0.01 %')
     """
     share = float(share)
-    return "less than 0.01%" if share < 1e-4 else f"{100 * share:.2g}%"
+    return "less than 0.01 %" if share < 1e-4 else f"{100 * share:.2g} %"

@@ -52,7 +52,7 @@ def register(subparsers) -> None:
                     "model of the weights (exact dynamic mode decomposition).")
     f.add_argument("model", metavar="MODEL.npz", help="model file saved by modescope")
     f.add_argument("--rank", type=positive_int, default=None, metavar="K",
-                   help="leading modes to read (default: the smallest rank capturing 95%% of "
+                   help="leading modes to read (default: the smallest rank capturing 95 %% of "
                         "the energy)")
     f.add_argument("--frame-rate", type=frame_rate, default=None, metavar="HZ",
                    help="frames per second (default: the rate stored in the model; when it "
@@ -77,14 +77,14 @@ def rate_line(report, given: bool) -> str:
 
 def frequency_table(report) -> list[str]:
     """Return the per-mode table (header first), numbers right-aligned, modes from 1."""
-    head = ("mode", "singular value", f"dominant frequency ({report.unit})", "power share",
-            "pair")
+    head = ("mode", "singular value", f"dominant frequency ({report.unit})",
+            "power share (%)", "pair")
     rows = []
     for j in range(report.rank):
         f = report.dominant[j]
         rows.append((str(j + 1), fmt(float(report.singular_values[j])),
                      "-" if math.isnan(f) else f"{f:.4g}",
-                     f"{100 * report.power_share[j]:.1f}%",
+                     f"{100 * report.power_share[j]:.1f}",
                      "" if report.pair_of[j] < 0 else str(int(report.pair_of[j]) + 1)))
     widths = [max(len(head[c]), *(len(r[c]) for r in rows)) for c in range(len(head))]
     lines = ["  ".join(h.rjust(w) for h, w in zip(head, widths)).rstrip()]

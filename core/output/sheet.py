@@ -22,7 +22,7 @@ _BACKGROUND, _INK = (224, 224, 224), (20, 20, 20)
 
 
 def share_caption(number: int, share: float) -> str:
-    """Return the caption of a contact-sheet tile, e.g. ``"#3  12.4%"``.
+    """Return the caption of a contact-sheet tile, e.g. ``"#3  12.4 %"``.
 
     Shares of 1 % and more get one decimal, smaller ones two significant digits.
 
@@ -38,7 +38,7 @@ def share_caption(number: int, share: float) -> str:
     str
     """
     pct = 100.0 * float(share)
-    text = f"{pct:.1f}%" if pct >= 1.0 or pct == 0.0 else f"{pct:.2g}%"
+    text = f"{pct:.1f} %" if pct >= 1.0 or pct == 0.0 else f"{pct:.2g} %"
     return f"#{int(number)}  {text}"
 
 

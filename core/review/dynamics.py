@@ -282,8 +282,8 @@ def caution(report: DynamicsReport) -> list[str]:
     check_instance("report", report, DynamicsReport)
     notes = []
     if report.residual > RESIDUAL_LIMIT:
-        notes.append(f"the one-step linear fit leaves {report.residual:.0%} of the next "
-                     f"frame's weights unexplained (more than {RESIDUAL_LIMIT:.0%}): the "
+        notes.append(f"the one-step linear fit leaves {100 * report.residual:.0f} % of the next "
+                     f"frame's weights unexplained (more than {100 * RESIDUAL_LIMIT:.0f} %): the "
                      "weights do not follow a linear model well; treat the rates as rough")
     steps = report.n_frames - 1
     if steps < STEPS_PER_STATE * report.n_states:

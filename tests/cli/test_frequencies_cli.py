@@ -47,7 +47,7 @@ def test_table_pairs_dynamics_and_csv(tmp_path, capsys):
     assert lines[2] == "Rank 6 of 6: given by --rank"
     assert "one bin = 0.125 Hz" in lines[3]
     assert lines[4].split() == ["mode", "singular", "value", "dominant", "frequency", "(Hz)",
-                                "power", "share", "pair"]
+                                "power", "share", "(%)", "pair"]
     table = [line.split() for line in lines[5:11]]
     assert [r[0] for r in table] == ["1", "2", "3", "4", "5", "6"]
     assert [r[2] for r in table[:4]] == ["2", "2", "5", "5"]      # the waves' frequencies
@@ -145,4 +145,4 @@ def test_damped_travelling_wave_through_analyze_of_a_stack(tmp_path, capsys):
     row = out.split("amplitude\n")[1].splitlines()[0].split()
     assert float(row[0]) == pytest.approx(2.5, rel=0.01)
     assert float(row[1]) == pytest.approx(-0.2, rel=0.01)
-    assert "One-step fit: less than 0.01%" in out
+    assert "One-step fit: less than 0.01 %" in out

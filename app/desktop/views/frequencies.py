@@ -210,7 +210,7 @@ class FrequenciesView(ThrottledRedraw, QWidget):
                 pair = int(report.pair_of[j])
                 cells = (str(j + 1), f"{report.singular_values[j]:.4g}",
                          "-" if math.isnan(f) else f"{f:.4g}",
-                         f"{100 * report.power_share[j]:.1f}%",
+                         f"{100 * report.power_share[j]:.1f} %",
                          "" if pair < 0 else str(pair + 1))
                 for c, text in enumerate(cells):
                     table.setItem(j, c, _cell(text))

@@ -21,9 +21,9 @@ def test_contact_sheet_tiles_and_captions(gray):
         below = img[bottom + 2:bottom + 20, left:right]
         assert (below.min(axis=2) < 80).any()                    # dark caption text drawn
         pct = 100 * shares[j]
-        assert sheet.captions[j] == (f"#{j + 1}  {pct:.1f}%" if pct >= 1 else
-                                     f"#{j + 1}  {pct:.2g}%")
-    assert share_caption(7, 0.000123) == "#7  0.012%"
+        assert sheet.captions[j] == (f"#{j + 1}  {pct:.1f} %" if pct >= 1 else
+                                     f"#{j + 1}  {pct:.2g} %")
+    assert share_caption(7, 0.000123) == "#7  0.012 %"
 
 
 def test_sheet_file_written(tmp_path, gray):
