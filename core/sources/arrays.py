@@ -38,7 +38,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["ARRAY_SUFFIXES", "ArrayInfo", "ArrayFileError", "probe_array", "read_array_frame",
+from modescope.core.sources.frames import FrameFileError
+
+__all__ = ["ARRAY_SUFFIXES", "ArrayInfo", "probe_array", "read_array_frame",
            "array_to_float"]
 
 ARRAY_SUFFIXES = (".npy",)
@@ -47,14 +49,6 @@ _MAGIC = b"\x93NUMPY"                # numpy's .npy format specification
 _LUMA = np.array([0.299, 0.587, 0.114], dtype=np.float32)
 _MODES = {1: "L", 3: "RGB", 4: "RGBA"}
 _LOCAL = threading.local()          # one open mapping per thread and file (see _mapping)
-
-
-class ArrayFileError(ValueError):
-    """Internal: a stack or one of its frames cannot be used; ``reason`` is a user sentence."""
-
-    def __init__(self, reason: str):
-        super().__init__(reason)
-        self.reason = reason
 
 
 @dataclass(frozen=True)
@@ -81,46 +75,46 @@ class ArrayInfo:
 
 
 def _open(path: str) -> np.memmap | np.ndarray:
-    """Open ``path`` memory-mapped, or raise ArrayFileError with a plain reason."""
+    """Open ``path`` memory-mapped, or raise FrameFileError with a plain reason."""
     try:
         with open(path, "rb") as handle:
             magic = handle.read(len(_MAGIC))
     except OSError as exc:
-        raise ArrayFileError(f"cannot be read ({exc.strerror or exc})") from None
+        raise FrameFileError(f"cannot be read ({exc.strerror or exc})") from None
     if magic != _MAGIC:
-        raise ArrayFileError("is not a NumPy array file Modescope can read (it does not start "
+        raise FrameFileError("is not a NumPy array file Modescope can read (it does not start "
                              "with the .npy signature; .npz archives are not frame stacks)")
     try:
         return np.load(path, mmap_mode="r", allow_pickle=False)
     except ValueError as exc:
         text = str(exc)
         if "pickle" in text.lower() or "object" in text.lower():
-            raise ArrayFileError("holds Python objects (dtype object), not numbers; such "
+            raise FrameFileError("holds Python objects (dtype object), not numbers; such "
                                  "files are never read") from None
         if "mmap length" in text or "larger than" in text or "cannot be reshaped" in text:
-            raise ArrayFileError("is shorter than its header says (truncated file)") from None
-        raise ArrayFileError(f"is not a NumPy array file Modescope can read ({text})") from None
+            raise FrameFileError("is shorter than its header says (truncated file)") from None
+        raise FrameFileError(f"is not a NumPy array file Modescope can read ({text})") from None
     except (OSError, EOFError) as exc:
-        raise ArrayFileError(f"is not a NumPy array file Modescope can read "
+        raise FrameFileError(f"is not a NumPy array file Modescope can read "
                              f"({getattr(exc, 'strerror', None) or exc})") from None
 
 
 def _check(array, path: str) -> ArrayInfo:
     dtype = array.dtype
     if dtype.kind not in "biuf" or dtype.fields is not None:
-        raise ArrayFileError(f"holds values of type {dtype} ({_kind_words(dtype)}); expected "
+        raise FrameFileError(f"holds values of type {dtype} ({_kind_words(dtype)}); expected "
                              "integers, booleans or real floating-point numbers")
     shape = array.shape
     if array.ndim not in (3, 4):
-        raise ArrayFileError(f"has shape {shape} ({array.ndim} axes); expected (frames, rows, "
+        raise FrameFileError(f"has shape {shape} ({array.ndim} axes); expected (frames, rows, "
                              "cols) or (frames, rows, cols, channels)")
     channels = 1 if array.ndim == 3 else shape[3]
     if channels not in _MODES:
-        raise ArrayFileError(f"has {channels} channels (shape {shape}); expected 1, 3 or 4")
+        raise FrameFileError(f"has {channels} channels (shape {shape}); expected 1, 3 or 4")
     if shape[1] < 1 or shape[2] < 1:
-        raise ArrayFileError(f"has frames without pixels (shape {shape})")
+        raise FrameFileError(f"has frames without pixels (shape {shape})")
     if shape[0] < 1:
-        raise ArrayFileError(f"holds no frame (shape {shape})")
+        raise FrameFileError(f"holds no frame (shape {shape})")
     return ArrayInfo(n_frames=int(shape[0]), rows=int(shape[1]), cols=int(shape[2]),
                      mode=_MODES[channels], dtype=str(dtype))
 
@@ -145,7 +139,7 @@ def probe_array(path: str) -> ArrayInfo:
 
     Raises
     ------
-    ArrayFileError
+    FrameFileError
         If the file is not a NumPy array file, is truncated, or holds an array that is not a
         stack of frames (wrong number of axes or channels, wrong type); ``reason`` says which.
     """
@@ -173,7 +167,7 @@ def _mapping(path: str):
     try:
         stamp = os.stat(path)
     except OSError as exc:
-        raise ArrayFileError(f"cannot be read ({exc.strerror or exc})") from None
+        raise FrameFileError(f"cannot be read ({exc.strerror or exc})") from None
     key = (stamp.st_size, stamp.st_mtime_ns, stamp.st_ino)
     held = cache.get(path)
     if held is not None and held[0] == key:
@@ -221,17 +215,17 @@ def read_array_frame(path: str, frame: int) -> np.ndarray:
 
     Raises
     ------
-    ArrayFileError
+    FrameFileError
         If the file changed into something unreadable or the frame is past its end.
     """
     array = _mapping(path)
     if not 0 <= frame < array.shape[0]:
-        raise ArrayFileError(f"frame {frame} is past the end of the stack ({array.shape[0]} "
+        raise FrameFileError(f"frame {frame} is past the end of the stack ({array.shape[0]} "
                              "frames; the file may have changed since the scan)")
     try:
         stored = np.array(array[frame])          # one frame copied out of the mapping
     except (OSError, ValueError) as exc:         # pragma: no cover - a file cut while read
-        raise ArrayFileError(f"frame {frame} cannot be read ({exc})") from None
+        raise FrameFileError(f"frame {frame} cannot be read ({exc})") from None
     _release(array, frame)
     return stored if stored.ndim == 3 else stored[:, :, None]
 
@@ -253,14 +247,14 @@ def array_to_float(stored: np.ndarray, frame: int, color: str) -> np.ndarray:
 
     Raises
     ------
-    ArrayFileError
+    FrameFileError
         If a float frame holds NaN or infinite values.
     """
     kind = stored.dtype.kind
     if kind == "f":
         values = stored.astype(np.float32, copy=False)
         if not np.isfinite(values).all():
-            raise ArrayFileError(f"frame {frame} holds NaN or infinite values")
+            raise FrameFileError(f"frame {frame} holds NaN or infinite values")
     elif kind == "b":
         values = stored.astype(np.float32)
     else:

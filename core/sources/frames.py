@@ -20,7 +20,17 @@ import math
 import numbers
 from dataclasses import dataclass
 
-__all__ = ["FrameRange", "parse_frames", "sampled_rate", "check_frame_rate"]
+__all__ = ["FrameFileError", "FrameRange", "parse_frames", "sampled_rate", "check_frame_rate"]
+
+
+
+class FrameFileError(ValueError):
+    """Internal: a video, an array stack or one of its frames cannot be used; ``reason`` is a
+    sentence for the user (the scan and the decoder turn it into a Problem)."""
+
+    def __init__(self, reason: str):
+        super().__init__(reason)
+        self.reason = reason
 
 
 @dataclass(frozen=True)

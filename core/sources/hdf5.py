@@ -15,7 +15,8 @@ import threading
 
 import numpy as np
 
-from modescope.core.sources.arrays import ArrayFileError, ArrayInfo, _check
+from modescope.core.sources.arrays import ArrayInfo, _check
+from modescope.core.sources.frames import FrameFileError
 
 __all__ = ["HDF5_SUFFIXES", "probe_hdf5", "read_hdf5_frame"]
 
@@ -28,7 +29,7 @@ def _h5py():
     try:
         import h5py
     except ImportError:
-        raise ArrayFileError("is an HDF5 file, and reading it needs h5py: install it with "
+        raise FrameFileError("is an HDF5 file, and reading it needs h5py: install it with "
                              "pip install 'modescope[hdf5]'") from None
     return h5py
 
@@ -51,26 +52,26 @@ def _stacks(handle) -> list:
 
 
 def _open(path: str):
-    """Return ``(file, dataset)`` of the one stack in ``path``, or raise ArrayFileError."""
+    """Return ``(file, dataset)`` of the one stack in ``path``, or raise FrameFileError."""
     h5py = _h5py()
     try:
         handle = h5py.File(path, "r")
     except (OSError, ValueError, RuntimeError) as exc:
-        raise ArrayFileError(f"is not an HDF5 file Modescope can read (h5py says: "
+        raise FrameFileError(f"is not an HDF5 file Modescope can read (h5py says: "
                              f"{_plain(exc)}; the file may be damaged or truncated)") from None
     try:
         stacks = _stacks(handle)
     except (OSError, ValueError, KeyError, RuntimeError) as exc:
         handle.close()
-        raise ArrayFileError(f"cannot be read (h5py says: {_plain(exc)})") from None
+        raise FrameFileError(f"cannot be read (h5py says: {_plain(exc)})") from None
     if len(stacks) != 1:
         names = ", ".join(f"{d.name} {d.shape}" for d in stacks[:_MAX_LISTED])
         handle.close()
         if not stacks:
-            raise ArrayFileError("holds no dataset of 3 or 4 axes (frames, rows, cols"
+            raise FrameFileError("holds no dataset of 3 or 4 axes (frames, rows, cols"
                                  "[, channels])")
         more = f" and {len(stacks) - _MAX_LISTED} more" if len(stacks) > _MAX_LISTED else ""
-        raise ArrayFileError(f"holds {len(stacks)} datasets that could be frame stacks "
+        raise FrameFileError(f"holds {len(stacks)} datasets that could be frame stacks "
                              f"({names}{more}); Modescope reads a file with exactly one "
                              "(save the one wanted on its own)")
     return handle, stacks[0]
@@ -90,7 +91,7 @@ def probe_hdf5(path: str) -> ArrayInfo:
 
     Raises
     ------
-    ArrayFileError
+    FrameFileError
         If h5py is missing, the file cannot be opened, it holds none or several stacks, or the
         stack's shape or type is not one of a frame stack.
     """
@@ -108,7 +109,7 @@ def _dataset(path: str):
     try:
         info = os.stat(path)
     except OSError as exc:
-        raise ArrayFileError(f"cannot be read ({exc.strerror or exc})") from None
+        raise FrameFileError(f"cannot be read ({exc.strerror or exc})") from None
     stamp = (info.st_size, info.st_mtime_ns, info.st_ino)
     held = cache.get(path)
     if held is not None and held[0] == stamp:
@@ -118,7 +119,7 @@ def _dataset(path: str):
     handle, dataset = _open(path)
     try:
         _check(dataset, path)
-    except ArrayFileError:
+    except FrameFileError:
         handle.close()
         raise
     if len(cache) >= 4:
@@ -143,15 +144,15 @@ def read_hdf5_frame(path: str, frame: int) -> np.ndarray:
 
     Raises
     ------
-    ArrayFileError
+    FrameFileError
         If the file cannot be read any more, the frame is past the end, or its data is damaged.
     """
     dataset = _dataset(path)
     if not 0 <= frame < dataset.shape[0]:
-        raise ArrayFileError(f"frame {frame} is past the end of the stack ({dataset.shape[0]} "
+        raise FrameFileError(f"frame {frame} is past the end of the stack ({dataset.shape[0]} "
                              "frames; the file may have changed since the scan)")
     try:
         stored = np.asarray(dataset[frame])
     except (OSError, ValueError, RuntimeError) as exc:
-        raise ArrayFileError(f"frame {frame} cannot be read (h5py says: {_plain(exc)})") from None
+        raise FrameFileError(f"frame {frame} cannot be read (h5py says: {_plain(exc)})") from None
     return stored if stored.ndim == 3 else stored[:, :, None]

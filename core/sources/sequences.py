@@ -16,12 +16,12 @@ import threading
 
 import numpy as np
 
-from modescope.core.sources.arrays import (ARRAY_SUFFIXES, ArrayFileError, array_to_float,
+from modescope.core.sources.arrays import (ARRAY_SUFFIXES, array_to_float,
                                            probe_array, read_array_frame)
-from modescope.core.sources.frames import FrameRange
+from modescope.core.sources.frames import FrameFileError, FrameRange
 from modescope.core.sources.hdf5 import HDF5_SUFFIXES, probe_hdf5, read_hdf5_frame
 from modescope.core.sources.pixels import _DecodeFailure, _downscale, _fit, _resize
-from modescope.core.sources.video import (VIDEO_SUFFIXES, VideoFileError, hold, probe_video,
+from modescope.core.sources.video import (VIDEO_SUFFIXES, hold, probe_video,
                                           read_video_frame)
 
 SEQUENCE_SUFFIXES = VIDEO_SUFFIXES + ARRAY_SUFFIXES + HDF5_SUFFIXES
@@ -105,7 +105,7 @@ def _probe_cached(path: str) -> tuple:
         else:
             v = probe_video(path)
             found = (v.n_frames, "RGB", v.rows, v.cols, v.rate)
-    except (ArrayFileError, VideoFileError) as exc:
+    except FrameFileError as exc:
         raise SequenceError(exc.reason) from None
     if stamp is not None:
         with _PROBED_LOCK:
@@ -144,7 +144,7 @@ def decode_frame(ref, source_set, f: int, out: np.ndarray,
     """
     try:
         values, raw = _read(ref.path, ref.page, source_set.color)
-    except (ArrayFileError, VideoFileError) as exc:
+    except FrameFileError as exc:
         raise _DecodeFailure(exc.reason) from None
     reference = source_set.reference_size
     size = (int(values.shape[0]), int(values.shape[1]))
@@ -172,7 +172,7 @@ def frame_preview(path: str, page: int, max_side: int, color: str | None) -> np.
         if color is None:               # a file's own kind: videos are decoded as RGB
             color = "gray" if _is_array(path) and _probe_stack(path).mode == "L" else "rgb"
         values, _ = _read(path, page, color)
-    except (ArrayFileError, VideoFileError) as exc:
+    except FrameFileError as exc:
         raise SequenceError(exc.reason) from None
     target = _fit(values.shape[0], values.shape[1], max_side)
     step = max(1, min(values.shape[0] // target[0], values.shape[1] // target[1]))

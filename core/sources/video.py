@@ -41,7 +41,9 @@ from typing import Iterator
 
 import numpy as np
 
-__all__ = ["VIDEO_SUFFIXES", "VideoInfo", "VideoFileError", "probe_video", "read_video_frame",
+from modescope.core.sources.frames import FrameFileError
+
+__all__ = ["VIDEO_SUFFIXES", "VideoInfo", "probe_video", "read_video_frame",
            "video_available", "hold"]
 
 VIDEO_SUFFIXES = (".mp4", ".m4v", ".mov", ".avi", ".mkv", ".webm")
@@ -53,14 +55,6 @@ _MAX_OPEN = 4                     # readers kept open at once (least recently us
 _READERS: dict = {}               # path -> _Reader, in order of use
 _LOCKS: dict = {}                 # path -> RLock held while a reader of that path is used
 _GUARD = threading.Lock()         # guards the two dicts
-
-
-class VideoFileError(ValueError):
-    """Internal: a video or one of its frames cannot be used; ``reason`` is a user sentence."""
-
-    def __init__(self, reason: str):
-        super().__init__(reason)
-        self.reason = reason
 
 
 @dataclass(frozen=True)
@@ -99,7 +93,7 @@ def _av():
     try:
         import av
     except ImportError:
-        raise VideoFileError("is a video, and reading videos needs PyAV: install it with "
+        raise FrameFileError("is a video, and reading videos needs PyAV: install it with "
                              "pip install 'modescope[video]'") from None
     return av
 
@@ -117,18 +111,18 @@ def _failures():
 
 
 def _open(path: str):
-    """Open ``path`` and return ``(container, stream)`` or raise VideoFileError."""
+    """Open ``path`` and return ``(container, stream)`` or raise FrameFileError."""
     av = _av()
     try:
         container = av.open(path, mode="r")
     except MemoryError:
         raise
     except _failures() as exc:
-        raise VideoFileError(f"not a video Modescope can read (FFmpeg says: {_plain(exc)}; "
+        raise FrameFileError(f"not a video Modescope can read (FFmpeg says: {_plain(exc)}; "
                              "the file may be damaged, truncated or of another kind)") from None
     if not container.streams.video:
         container.close()
-        raise VideoFileError("holds no video stream")
+        raise FrameFileError("holds no video stream")
     stream = container.streams.video[0]
     stream.thread_type = "AUTO"
     return container, stream
@@ -163,7 +157,7 @@ def probe_video(path: str) -> VideoInfo:
 
     Raises
     ------
-    VideoFileError
+    FrameFileError
         If PyAV is missing, or the file is not a video FFmpeg can open, has no video stream,
         holds no frame, or its first frame cannot be decoded; ``reason`` says which.
     """
@@ -177,9 +171,9 @@ def probe_video(path: str) -> VideoInfo:
         except MemoryError:
             raise
         except _failures() as exc:
-            raise VideoFileError(f"its first frame cannot be decoded ({_plain(exc)})") from None
+            raise FrameFileError(f"its first frame cannot be decoded ({_plain(exc)})") from None
         if first is None:
-            raise VideoFileError("holds no frame that can be decoded")
+            raise FrameFileError("holds no frame that can be decoded")
         rows, cols = int(first.height), int(first.width)
         n_frames = int(stream.frames or 0)
         if n_frames <= 0:
@@ -187,14 +181,14 @@ def probe_video(path: str) -> VideoInfo:
             n_frames = _count_packets(container, stream)
     except MemoryError:
         raise
-    except VideoFileError:
+    except FrameFileError:
         raise
     except _failures() as exc:
-        raise VideoFileError(f"cannot be read ({_plain(exc)})") from None
+        raise FrameFileError(f"cannot be read ({_plain(exc)})") from None
     finally:
         container.close()
     if rows < 1 or cols < 1 or n_frames < 1:
-        raise VideoFileError(f"holds no usable frame ({n_frames} frames of {rows}x{cols})")
+        raise FrameFileError(f"holds no usable frame ({n_frames} frames of {rows}x{cols})")
     return VideoInfo(n_frames=n_frames, rows=rows, cols=cols, rate=rate, codec=codec)
 
 
@@ -241,7 +235,7 @@ class _Reader:
         while True:
             frame = next(self.frames, None)
             if frame is None:
-                raise VideoFileError(f"frame {n} is past the end of the video (the file may be "
+                raise FrameFileError(f"frame {n} is past the end of the video (the file may be "
                                      "truncated or may have changed since the scan)")
             number = self.next if self.next is not None else self._number(frame)
             if number is None or (not self.exact and number > n):
@@ -281,7 +275,7 @@ def _reader(path: str) -> _Reader:
     try:
         info = os.stat(path)
     except OSError as exc:
-        raise VideoFileError(f"cannot be read ({exc.strerror or exc})") from None
+        raise FrameFileError(f"cannot be read ({exc.strerror or exc})") from None
     stamp = (info.st_size, info.st_mtime_ns, info.st_ino)
     with _GUARD:
         held = _READERS.pop(path, None)
@@ -324,7 +318,7 @@ def read_video_frame(path: str, frame: int) -> np.ndarray:
 
     Raises
     ------
-    VideoFileError
+    FrameFileError
         If PyAV is missing, the file cannot be opened, or the frame cannot be decoded or lies
         past the end of the stream.
     """
@@ -334,12 +328,12 @@ def read_video_frame(path: str, frame: int) -> np.ndarray:
             return reader.read(frame)
         except MemoryError:
             raise
-        except VideoFileError:
+        except FrameFileError:
             _drop(path)
             raise
         except _failures() as exc:
             _drop(path)
-            raise VideoFileError(f"frame {frame} cannot be decoded ({_plain(exc)})") from None
+            raise FrameFileError(f"frame {frame} cannot be decoded ({_plain(exc)})") from None
 
 
 def _drop(path: str) -> None:
