@@ -36,6 +36,7 @@ from modescope.app.words import unexplained
 from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.views.frequency_parts import SequenceResult, sequence_report
+from modescope.app.desktop.views.plot_style import style_plot
 
 __all__ = ["FrequenciesView", "MODE_COLOURS"]
 
@@ -64,16 +65,6 @@ def _cell(text: str, tip: str = "") -> QTableWidgetItem:
     if tip:
         item.setToolTip(tip)
     return item
-
-
-def _style(plot: pg.PlotItem) -> None:
-    fg = pg.mkColor(40, 40, 40)
-    plot.showGrid(x=True, y=True, alpha=0.25)
-    for ax in ("left", "bottom"):
-        plot.getAxis(ax).setTextPen(fg)
-        plot.getAxis(ax).setPen(fg)
-        plot.getAxis(ax).enableAutoSIPrefix(False)
-    plot.setMenuEnabled(False)
 
 
 class FrequenciesView(ThrottledRedraw, QWidget):
@@ -133,7 +124,7 @@ class FrequenciesView(ThrottledRedraw, QWidget):
         self.spectrum_plot = self.plots.addPlot(row=0, col=0)
         self.series_plot = self.plots.addPlot(row=1, col=0)
         for plot in (self.spectrum_plot, self.series_plot):
-            _style(plot)
+            style_plot(plot)
         self.spectrum_plot.setLogMode(x=False, y=True)
         self.spectrum_plot.setLabel("left", "power (log)", **{"font-size": "8pt"})
         self.series_plot.setLabel("left", "weight", **{"font-size": "8pt"})

@@ -21,6 +21,7 @@ from modescope.core.review import marks as review
 from modescope.core.review.outliers import OutlierTable
 
 from modescope.app.desktop.views.outliers_model import Q_METHODS, T2_METHODS, describe_limits
+from modescope.app.desktop.views.plot_style import style_plot
 from modescope.app.desktop.views.spectrum import log_ticks
 
 __all__ = ["OutlierPlot"]
@@ -88,13 +89,7 @@ class OutlierPlot(pg.PlotWidget):
 
     # ----- construction ------------------------------------------------------------------------
     def _build_axes(self) -> None:
-        fg = pg.mkColor(40, 40, 40)
-        self.plot_item.showGrid(x=True, y=True, alpha=0.25)
-        for ax in ("left", "bottom"):
-            self.plot_item.getAxis(ax).setTextPen(fg)
-            self.plot_item.getAxis(ax).setPen(fg)
-            self.plot_item.getAxis(ax).enableAutoSIPrefix(False)
-        self.plot_item.setMenuEnabled(False)
+        style_plot(self.plot_item)
         self.plot_item.setLabel("bottom", "T² (Hotelling)")
         self.plot_item.setLabel("left", "Q (residual)")
 

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import os
 
-import numpy as np
 from PySide6.QtCore import Qt, Slot
 from PySide6.QtGui import QAction, QKeySequence
 from PySide6.QtWidgets import QFileDialog, QMessageBox

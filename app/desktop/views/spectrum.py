@@ -26,6 +26,7 @@ from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.views.drag_line import SnapDrag
 from modescope.app.desktop.views.frequency_parts import PairMarks
 from modescope.app.desktop.state import AppState
+from modescope.app.desktop.views.plot_style import style_plot
 
 __all__ = ["SpectrumView", "log_ticks"]
 
@@ -139,13 +140,8 @@ class SpectrumView(ThrottledRedraw, QWidget):
         self.plots.setBackground("w")
         self.sv_plot = self.plots.addPlot(row=0, col=0)
         self.en_plot = self.plots.addPlot(row=1, col=0)
-        fg = pg.mkColor(40, 40, 40)
         for p in (self.sv_plot, self.en_plot):
-            p.showGrid(x=True, y=True, alpha=0.25)
-            for ax in ("left", "bottom"):
-                p.getAxis(ax).setTextPen(fg)
-                p.getAxis(ax).setPen(fg)
-            p.setMenuEnabled(False)
+            style_plot(p, si_prefix=True)
         # short axis titles: longer ones than these short plots drew over each other (the dock's
         # title says "Singular values")
         self.sv_plot.setLabel("left", "value (log)", **{"font-size": "8pt"})

@@ -32,6 +32,7 @@ from modescope.app.desktop.redraw import ThrottledRedraw
 from modescope.app.desktop.views.drag_line import SnapDrag
 from modescope.app.desktop.state import AppState
 from modescope.app.desktop.views.frequency_parts import TimeAxis
+from modescope.app.desktop.views.plot_style import style_plot
 
 __all__ = ["WeightsView", "POINT_COLOURS"]
 
@@ -72,18 +73,6 @@ class _BoxSelectViewBox(pg.ViewBox):
                 self._band.show()
             return
         super().mouseDragEvent(ev, axis)
-
-
-def _style(plot: pg.PlotItem) -> None:
-    fg = pg.mkColor(40, 40, 40)
-    plot.showGrid(x=True, y=True, alpha=0.25)
-    for ax in ("left", "bottom"):
-        plot.getAxis(ax).setTextPen(fg)
-        plot.getAxis(ax).setPen(fg)
-        # weights are plain numbers: no "(x0.001)" scale factor in the axis title, which a
-        # short plot would clip
-        plot.getAxis(ax).enableAutoSIPrefix(False)
-    plot.setMenuEnabled(False)
 
 
 class WeightsView(ThrottledRedraw, QWidget):
@@ -167,7 +156,7 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.plane_widget.setBackground("w")
         self.plane_vb = _BoxSelectViewBox()
         self.plane = self.plane_widget.addPlot(row=0, col=0, viewBox=self.plane_vb)
-        _style(self.plane)
+        style_plot(self.plane)
         self.plane.setTitle("Weights plane", color="#222", size="10pt")
         # hovering a point names its image (pyqtgraph shows ``tip`` as the tooltip)
         self.scatter = pg.ScatterPlotItem(size=7, pen=None, symbol="o", hoverable=True,
@@ -199,7 +188,7 @@ class WeightsView(ThrottledRedraw, QWidget):
         """The selected image's weights on each basis image."""
         self.bars_widget = pg.PlotWidget(self, background="w")
         self.bars_plot = self.bars_widget.getPlotItem()
-        _style(self.bars_plot)
+        style_plot(self.bars_plot)
         # no axis title under the bars: the plot title says what the x axis counts, which
         # leaves the short chart room for the zero tick and its neighbours
         self.bars_plot.setLabel("left", "weight")
@@ -216,7 +205,7 @@ class WeightsView(ThrottledRedraw, QWidget):
         self.seq_plot = self.seq_widget.getPlotItem()
         self.seq_time_axis = TimeAxis("bottom")    # seconds when the frame rate is known
         self.seq_plot.setAxisItems({"bottom": self.seq_time_axis})
-        _style(self.seq_plot)
+        style_plot(self.seq_plot)
         # the title says what the x axis counts (no axis title: the short plot keeps room for
         # its tick labels)
         self.seq_plot.setLabel("left", "weight")
