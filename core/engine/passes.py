@@ -18,7 +18,7 @@ from modescope.core.errors import SourceError
 from modescope.core.sources.decode import analysis_shape, iter_blocks
 from modescope.core.sources.scan import Problem, SourceSet
 
-__all__ = ["Refined", "refine"]
+__all__ = ["Refined", "refine", "close_pass", "pass_rounding"]
 
 
 @dataclass(frozen=True)
@@ -220,19 +220,13 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
             return dataclasses.replace(_plain(acc, rank, passes), kept=_kept(kept, given),
                                        dropped=tuple(dropped))
         if passes == 1:
-            rounding = rounding_error(mean.size, used.n_images,
-                                      np.sqrt(float(np.sum(acc.energy))),
-                                      float(np.linalg.norm(mean)))
+            rounding = pass_rounding(acc, mean, used.n_images)
         previous = None if last is None else _excess(last, rank, options.tolerance)
         last = None                       # free the previous pass's arrays before the next
-        last = rayleigh_ritz_step(acc, rounding)
+        last, stop = close_pass(acc, previous, rounding, options, passes)
         last_kept = kept
         del acc
-        excess = _excess(last, rank, options.tolerance)
-        if np.all(excess <= 1.0):
-            break
-        if _out_of_reach(previous, excess, _predicted_rate(last, rank),
-                         options.max_passes - passes):
+        if stop:
             break
         basis = last.next_basis()
     if last is None:
@@ -243,6 +237,46 @@ def refine(basis: np.ndarray, mean: np.ndarray, used: SourceSet, options: Analys
         dropped = [p for p in dropped if p.path not in present]
     return Refined(b, s, w, res, err, energy, passes, False, interrupted,
                    _kept(last_kept, given), tuple(dropped))
+
+
+def pass_rounding(acc: PassAccumulator, mean: np.ndarray, n_images: int) -> float:
+    """Return the float32 rounding budget of the certificate, from the first complete pass
+    (see :func:`~modescope.core.engine.refine.rounding_error`)."""
+    return rounding_error(mean.size, n_images, np.sqrt(float(np.sum(acc.energy))),
+                          float(np.linalg.norm(mean)))
+
+
+def close_pass(acc: PassAccumulator, previous: np.ndarray | None, rounding: float,
+               options: AnalysisOptions, passes: int) -> tuple[RitzStep, bool]:
+    """Rayleigh-Ritz step and certificate on a complete pass, and whether the passes stop.
+
+    Shared by :func:`refine` and the Dask engine, so that both follow one set of rules: stop
+    when every reported mode is converged (:func:`_excess`) or when no open mode can close in
+    the passes left (:func:`_out_of_reach`).
+
+    Parameters
+    ----------
+    acc : PassAccumulator
+        The pass, complete, with ``want_y``.
+    previous : ndarray or None
+        ``_excess`` of the previous pass's step (None after the first pass).
+    rounding : float
+        From :func:`pass_rounding`.
+    options : AnalysisOptions
+        ``rank``, ``tolerance``, ``max_passes``.
+    passes : int
+        Complete passes so far, this one included.
+
+    Returns
+    -------
+    step : RitzStep
+    stop : bool
+    """
+    step = rayleigh_ritz_step(acc, rounding)
+    excess = _excess(step, options.rank, options.tolerance)
+    stop = bool(np.all(excess <= 1.0)) or _out_of_reach(
+        previous, excess, _predicted_rate(step, options.rank), options.max_passes - passes)
+    return step, stop
 
 
 def _kept(kept: np.ndarray, given: SourceSet) -> np.ndarray | None:

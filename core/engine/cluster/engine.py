@@ -39,10 +39,10 @@ from modescope.core.engine.cluster import tasks
 from modescope.core.engine.cluster.connect import Waiter, open_client, require_dask
 from modescope.core.engine.options import (AnalysisOptions, AnalysisResult, Clock, Progress,
                                            block_size_for, metadata_for)
-from modescope.core.engine.passes import (Refined, _excess, _out_of_reach, _plain,
-                                          _predicted_rate)
+from modescope.core.engine.passes import (Refined, _excess, _plain, close_pass,
+                                          pass_rounding)
 from modescope.core.engine.pipeline import _refinement_summary, _scanned
-from modescope.core.engine.refine import PassAccumulator, rayleigh_ritz_step, rounding_error
+from modescope.core.engine.refine import PassAccumulator
 from modescope.core.errors import NoUsableImagesError, SourceError
 from modescope.core.sources.decode import analysis_shape
 from modescope.core.sources.scan import Problem, SourceSet
@@ -395,19 +395,13 @@ class _ClusterRun:
                 plain = _plain(acc, rank, passes)
                 return dataclasses.replace(plain, dropped=tuple(dropped)), kept
             if passes == 1:
-                rounding = rounding_error(mean.size, used.n_images,
-                                          np.sqrt(float(np.sum(acc.energy))),
-                                          float(np.linalg.norm(mean)))
+                rounding = pass_rounding(acc, mean, used.n_images)
             previous = None if last is None else _excess(last, rank, options.tolerance)
-            last = None
-            last = rayleigh_ritz_step(acc, rounding)
+            last = None                   # free the previous pass's arrays before the next
+            last, stop = close_pass(acc, previous, rounding, options, passes)
             last_kept = kept
             del acc
-            excess = _excess(last, rank, options.tolerance)
-            if np.all(excess <= 1.0):
-                break
-            if _out_of_reach(previous, excess, _predicted_rate(last, rank),
-                             options.max_passes - passes):
+            if stop:
                 break
             basis = last.next_basis()
         if last is None:
