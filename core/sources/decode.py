@@ -76,6 +76,7 @@ from PIL import Image
 from modescope.core.validation import check_bool, check_choice, check_int, check_path
 from modescope.core.errors import SourceError
 from modescope.core.sources.headers import orientation, pillow_notes, short_message, transpose
+from modescope.core.sources.plainpng import plain_png
 from modescope.core.sources.pixels import (_DecodeFailure, _downscale, _jpeg_draft, _native,
                                            _open_reduced, _resize, _to_float)
 from modescope.core.sources.scan import ImageRef, Problem, SourceSet
@@ -200,6 +201,21 @@ def _quiet(ref: ImageRef):
     return pillow_notes([], ref.path) if ref.noted else contextlib.nullcontext()
 
 
+def _plain_values(ref: ImageRef) -> np.ndarray | None:
+    """Stored values of a plain 8-bit PNG file read without ``Image.open`` (see
+    :mod:`.plainpng`), as ``_native`` gives them; None for any other file (and for a file that
+    warned at the scan, so that its notes stay its own)."""
+    if ref.noted or ref.path[-4:].lower() != ".png":
+        return None
+    found = plain_png(ref.path, pixels=True)
+    if found is None:
+        return None
+    mode, values = found[2], found[3]
+    if mode == "LA":
+        return values[:, :, 0]
+    return values[:, :, :3] if values.ndim == 3 else values
+
+
 def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
             raw_out: np.ndarray | None = None, draft: bool = True) -> bool:
     """Decode ``ref`` into ``out`` (shape analysis_shape, float32) or raise _DecodeFailure.
@@ -213,15 +229,19 @@ def _decode(ref: ImageRef, source_set: SourceSet, f: int, out: np.ndarray,
     if is_sequence(ref.path):                    # a frame of a video or array stack
         return decode_frame(ref, source_set, f, out, raw_out)
     reference = source_set.reference_size
-    try:
-        with _quiet(ref):
-            img = Image.open(ref.path)
-    except MemoryError:
-        raise
-    except Exception as exc:  # noqa: BLE001 - Pillow raises many types on damaged files
-        raise _pillow_failure(exc, ref) from exc
-    with img:
-        values, scale, s = _read(img, ref, source_set, f, draft)
+    values = _plain_values(ref)
+    if values is not None:
+        scale, s = 255.0, 1
+    else:
+        try:
+            with _quiet(ref):
+                img = Image.open(ref.path)
+        except MemoryError:
+            raise
+        except Exception as exc:  # noqa: BLE001 - Pillow raises many types on damaged files
+            raise _pillow_failure(exc, ref) from exc
+        with img:
+            values, scale, s = _read(img, ref, source_set, f, draft)
 
     size = (int(values.shape[0]), int(values.shape[1]))
     if s == 1 and size != reference:

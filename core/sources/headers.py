@@ -12,7 +12,8 @@ that the scan and the decoder agree on every image:
 * :func:`pillow_notes` records the warnings Pillow gives (decompression-bomb size, damaged
   EXIF, ...) as plain sentences instead of letting Python print them on the terminal.
 * :func:`short_message` turns a Pillow exception into a short sentence without the path.
-* :func:`read_headers` reads the pages, modes and oriented sizes of a file for the scan;
+* :func:`read_headers` reads the pages, modes and oriented sizes of a file for the scan (a
+  plain 8-bit PNG file from its chunks alone, see :mod:`.plainpng`);
   :func:`not_regular_reason` says why a path is not a regular file (never opened then).
 
 Warnings are process-wide in Python (``warnings.catch_warnings`` swaps global state), so every
@@ -33,6 +34,8 @@ import warnings
 from typing import Iterator
 
 from PIL import Image, UnidentifiedImageError
+
+from modescope.core.sources.plainpng import plain_png
 
 ORIENTATION_TAG = 0x0112
 _EXIF_PREFIX = b"Exif\x00\x00"
@@ -223,6 +226,11 @@ def read_headers(path: str, notes: list[str], supported: tuple[str, ...],
     sentences in ``notes`` (never printed); ``caught``, the list of a running
     :func:`warning_capture`, saves starting a capture for each file.
     """
+    if path[-4:].lower() == ".png":
+        plain = plain_png(path)
+        if plain is not None:
+            rows, cols, mode = plain
+            return [(0, mode, rows, cols) if mode in supported else (0, mode, 0, 0)]
     if caught is None:
         with warning_capture() as own:
             return read_headers(path, notes, supported, own)

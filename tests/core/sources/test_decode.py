@@ -396,7 +396,8 @@ def test_bug_in_own_conversion_is_not_reported_as_a_damaged_file(tmp_path, monke
     # "cannot be decoded" (which would hide a bug behind a skipped file)
     from modescope.core.sources import decode
 
-    path = save(tmp_path / "a.png", np.zeros((4, 5), np.uint8))
+    # a TIFF file: plain 8-bit PNG files are read without _native (see plainpng)
+    path = save(tmp_path / "a.tif", np.zeros((4, 5), np.uint8))
     sset = scan_sources([path])
 
     def broken(img):
