@@ -174,6 +174,14 @@ class BlockCache:
 
     def blocks(self) -> Iterator[Block]:
         """Yield the stored blocks in order, as float32 columns equal to what was put."""
+        for entry, stored in self.stored():
+            yield Block(start=entry.start, indices=entry.indices, data=as_columns(stored),
+                        problems=(), exact8=entry.exact8, raw8=None)
+
+    def stored(self) -> Iterator[tuple]:
+        """Yield ``(entry, rows)`` of the stored blocks in order, ``rows`` as stored (m x
+        pixels, uint8 or float32): :func:`as_columns` makes them the float32 columns that were
+        put, where the caller wants that work done (in another thread, say)."""
         if self._file is None:
             return
         self._file.flush()
@@ -186,8 +194,13 @@ class BlockCache:
             if got != raw.size:
                 raise OSError("the temporary cache file was truncated")
             if entry.exact8:
-                rows = np.divide(raw.reshape(m, self.n_pixels), _SCALE8, dtype=np.float32)
+                yield entry, raw.reshape(m, self.n_pixels)
             else:
-                rows = raw.view(np.float32).reshape(m, self.n_pixels)
-            yield Block(start=entry.start, indices=entry.indices, data=rows.T, problems=(),
-                        exact8=entry.exact8, raw8=None)
+                yield entry, raw.view(np.float32).reshape(m, self.n_pixels)
+
+
+def as_columns(rows: np.ndarray) -> np.ndarray:
+    """Return stored rows (see :meth:`BlockCache.stored`) as float32 image columns."""
+    if rows.dtype == np.uint8:
+        return np.divide(rows, _SCALE8, dtype=np.float32).T
+    return rows.T

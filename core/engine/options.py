@@ -75,7 +75,9 @@ class AnalysisOptions:
         fight over the cores).
     pass_blas_threads : int
         Threads for the matrix products of the passes after learning, when nothing decodes
-        (images come back from the block cache); 0 (default) keeps ``blas_threads``. The
+        (images come back from the block cache): the blocks are shared out between this many
+        threads, each with one BLAS thread (faster than several BLAS threads on one block for
+        these thin products; see ``passes._one_pass``); 0 (default) keeps one thread. The
         command line sets it to the number of cores; the desktop program keeps 0, because
         changing OpenBLAS's thread count while the GUI thread may be inside a BLAS call is
         risky (from memory of OpenBLAS reports, not verified here).

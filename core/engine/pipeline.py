@@ -25,7 +25,7 @@ from modescope.core.engine.learning import Learned, learn
 from modescope.core.engine.options import (AnalysisOptions, AnalysisResult, Clock, Progress,
                                            blas_limit, block_size_for, decode_workers,
                                            metadata_for, stored_options, version)
-from modescope.core.engine.passes import Refined, refine
+from modescope.core.engine.passes import Refined, pass_lanes, refine
 from modescope.core.engine.refine import project_block
 from modescope.core.engine.streaming import StreamingSVD
 from modescope.core.errors import (AnalysisCancelled, ModescopeError, NoUsableImagesError,
@@ -266,11 +266,12 @@ def _refinement_summary(refined: Refined, options: AnalysisOptions) -> dict:
 
 
 def _pass_threads(options: AnalysisOptions):
-    """BLAS threads for the passes after learning (see ``AnalysisOptions.pass_blas_threads``)."""
+    """One BLAS thread per lane for the passes after learning when they run in several lanes
+    (see ``AnalysisOptions.pass_blas_threads`` and :func:`~.passes.pass_lanes`)."""
     import contextlib
-    if not options.pass_blas_threads or options.pass_blas_threads == options.blas_threads:
+    if pass_lanes(options) == 1 or options.blas_threads == 1:
         return contextlib.nullcontext()
-    return blas_limit(options.pass_blas_threads)
+    return blas_limit(1)
 
 
 def _scanned(sources, options, progress, cancel) -> SourceSet | None:

@@ -140,18 +140,30 @@ class PassAccumulator:
 
     def add(self, block: np.ndarray) -> None:
         """Project the next block of columns (in order), shape (pixels, m)."""
-        m = block.shape[1]
+        self.fill(block, self.reserve(block.shape[1]), self.yt)
+
+    def reserve(self, m: int) -> slice:
+        """Return the columns of the next ``m`` images (in order) for :meth:`fill`."""
         if self.done + m > self.weights.shape[1]:
             raise ValueError(f"more columns than announced: {self.done + m} > "
                              f"{self.weights.shape[1]}")
-        w, res, en, yt = _project_rows(self.basis, self.mean, block, self.yt is not None)
-        sl = slice(self.done, self.done + m)
-        self.weights[:, sl] = w
-        self.residual[sl] = res
-        self.energy[sl] = en
-        if yt is not None:
-            self.yt += yt
         self.done += m
+        return slice(self.done - m, self.done)
+
+    def fill(self, block: np.ndarray, columns: slice, yt: np.ndarray | None) -> None:
+        """Project ``block`` into the ``columns`` reserved for it and add its share of ``M U``
+        to ``yt`` (``self.yt`` or another array of its shape; None without ``want_y``).
+
+        Blocks given to different ``yt`` arrays may be filled at the same time from several
+        threads (the products release the interpreter lock); the caller adds those arrays
+        into ``self.yt`` when every block is in.
+        """
+        w, res, en, part = _project_rows(self.basis, self.mean, block, yt is not None)
+        self.weights[:, columns] = w
+        self.residual[columns] = res
+        self.energy[columns] = en
+        if part is not None:
+            yt += part
 
 
 def certify(singular_values: np.ndarray, residual_norms: np.ndarray,

@@ -48,8 +48,9 @@ def _change_before_passes(monkeypatch, change):
     monkeypatch.setattr(pipeline, "refine", changed_then_refine)
 
 
-@pytest.mark.parametrize("refine", [True, False])
-def test_analyze_leaves_out_files_changed_after_learning(frames, no_cache, monkeypatch, refine):
+@pytest.mark.parametrize("refine, lanes", [(True, 0), (False, 0), (True, 2)])
+def test_analyze_leaves_out_files_changed_after_learning(frames, no_cache, monkeypatch, refine,
+                                                         lanes):
     folder, x = frames
     damaged, resized = folder / "f_05.png", folder / "f_10.png"
 
@@ -58,7 +59,8 @@ def test_analyze_leaves_out_files_changed_after_learning(frames, no_cache, monke
         Image.fromarray(np.zeros((8, 6), np.uint8)).save(resized)   # another size
 
     _change_before_passes(monkeypatch, change)
-    result = analyze([folder], AnalysisOptions(rank=3, block_size=4, refine=refine))
+    result = analyze([folder], AnalysisOptions(rank=3, block_size=4, refine=refine,
+                                               pass_blas_threads=lanes))
     d = result.decomposition
     assert not result.cancelled and d.exact
     keep = [i for i in range(12) if i not in (5, 10)]

@@ -32,10 +32,12 @@ def digits(tmp_path_factory):
     return folder, X, A, u, s
 
 
-@pytest.mark.parametrize("rank", [5, 20, 40])
-def test_digits_match_lapack_and_the_bound_holds(digits, rank):
+@pytest.mark.parametrize("rank, lanes", [(5, 0), (20, 0), (40, 0), (20, 2), (40, 3)])
+def test_digits_match_lapack_and_the_bound_holds(digits, rank, lanes):
+    # lanes: the passes' blocks shared out between that many threads (pass_blas_threads)
     folder, X, A, u, s = digits
-    d = analyze([folder], AnalysisOptions(rank=rank, max_passes=8)).decomposition
+    d = analyze([folder], AnalysisOptions(rank=rank, max_passes=8,
+                                          pass_blas_threads=lanes)).decomposition
     err = np.abs(d.singular_values - s[:rank])
     # singular values within 1e-4 relative of LAPACK
     assert np.all(err <= 1e-4 * s[:rank])
@@ -146,7 +148,29 @@ def test_certificate_formula_on_a_known_matrix():
         assert nearest <= step.error[i] * step.singular_values[i] * (1 + 1e-6)
 
 
-def test_a_stop_during_a_later_pass_keeps_the_last_complete_pass(digits):
+def test_passes_in_several_lanes_agree_with_one_and_do_not_depend_on_timing(digits):
+    # the same collection with the passes' blocks in one, two and three threads: the lanes
+    # only change where float64 sums of float32 products are split
+    folder = digits[0]
+    runs = {lanes: analyze([folder], AnalysisOptions(rank=20, block_size=64, max_passes=3,
+                                                     pass_blas_threads=lanes)).decomposition
+            for lanes in (0, 2, 3)}
+    again = analyze([folder], AnalysisOptions(rank=20, block_size=64, max_passes=3,
+                                              pass_blas_threads=2)).decomposition
+    one = runs[0]
+    for lanes in (2, 3):
+        d = runs[lanes]
+        assert d.metadata["refinement"]["passes"] == one.metadata["refinement"]["passes"]
+        np.testing.assert_allclose(d.singular_values, one.singular_values, rtol=1e-9)
+        np.testing.assert_allclose(d.weights, one.weights, rtol=1e-6, atol=1e-6)
+        np.testing.assert_allclose(d.residual, one.residual, rtol=1e-6, atol=1e-9)
+    # two runs with the same lanes are identical to the last bit
+    np.testing.assert_array_equal(again.singular_values, runs[2].singular_values)
+    np.testing.assert_array_equal(again.weights, runs[2].weights)
+
+
+@pytest.mark.parametrize("lanes", [0, 2])
+def test_a_stop_during_a_later_pass_keeps_the_last_complete_pass(digits, lanes):
     # cancel once the second pass has started: the result is the first pass's exact
     # projections (final, certified as far as one pass goes), marked as interrupted
     folder, X, A, u, s = digits
@@ -158,7 +182,8 @@ def test_a_stop_during_a_later_pass_keeps_the_last_complete_pass(digits):
     def cancel():
         return any(stage == "score" and detail.startswith("pass 2") for stage, detail in seen)
 
-    result = analyze([folder], AnalysisOptions(rank=40, max_passes=6, tolerance=1e-9),
+    result = analyze([folder], AnalysisOptions(rank=40, max_passes=6, tolerance=1e-9,
+                                               pass_blas_threads=lanes),
                      progress=progress, cancel=cancel)
     d = result.decomposition
     assert result.cancelled and d.exact

@@ -163,3 +163,24 @@ def test_orthonormal_and_accurate_on_ill_conditioned_data(decades, rank, block):
     # much smaller ones to this tolerance)
     resolved = s[: d.rank] > 1e-3 * s[0]
     np.testing.assert_allclose(d.singular_values[resolved], s[: d.rank][resolved], rtol=2e-3)
+
+
+def test_passes_start_from_an_orthonormal_basis_of_the_same_span():
+    # the streaming basis may drift up to 1e-5 from orthonormal before an update corrects it;
+    # the passes after learning get an orthonormalised copy of the same span (reference:
+    # scipy.linalg.subspace_angles), the engine itself is left as it was
+    rng = np.random.default_rng(11)
+    data = rng.normal(size=(300, 120)).astype(np.float32)
+    engine = stream(data, rank=6, block=40)
+    q = engine.basis.shape[1]
+    drift = np.eye(q) + 1.5e-6 * rng.normal(size=(q, q))
+    drifted = np.asfortranarray((engine.basis.astype(np.float64) @ drift).astype(np.float32))
+    engine.basis = drifted
+    off = np.abs(drifted.astype(np.float64).T @ drifted - np.eye(q)).max()
+    assert 1e-6 < off < 1e-5
+    padded = engine.padded_basis()
+    gram = padded.astype(np.float64).T @ padded
+    assert np.abs(gram - np.eye(q)).max() <= 1e-6
+    assert np.degrees(subspace_angles(padded.astype(np.float64),
+                                      drifted.astype(np.float64))).max() < 1e-3
+    assert engine.basis is drifted
