@@ -185,9 +185,9 @@ def _analyze_scanned(source_set: SourceSet, options, progress, cancel, on_partia
         used = dataclasses.replace(source_set, problems=(),
                                    images=tuple(source_set.images[i] for i in learned.kept))
         with _pass_threads(options):
-            refined = refine(engine.basis, engine.mean, used, options, workers=run.workers,
-                             cache=cache, progress=progress, cancel=cancel,
-                             after_first_pass=engine.release_weights)
+            refined = refine(engine.padded_basis(), engine.mean, used, options,
+                             workers=run.workers, cache=cache, progress=progress,
+                             cancel=cancel, after_first_pass=engine.release_weights)
     if refined.stopped:
         return run.result(run.snapshot(learned, "cancelled"), True)
     run.problems.extend(refined.dropped)          # files that changed after the learning pass

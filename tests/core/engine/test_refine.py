@@ -189,3 +189,37 @@ def test_a_stop_during_a_later_pass_keeps_the_last_complete_pass(digits, lanes):
     assert result.cancelled and d.exact
     assert d.metadata["refinement"]["passes"] == 1 and d.metadata["refinement"]["interrupted"]
     assert np.all(np.abs(d.singular_values - s[:40]) <= d.singular_value_error)   # LAPACK
+
+
+def test_the_passes_start_from_an_orthonormal_basis(digits, monkeypatch):
+    # the streaming basis may drift up to 1e-5 from orthonormal between corrections; the
+    # passes must get an orthonormalised copy (their Rayleigh-Ritz step assumes one), and the
+    # result still matches LAPACK within its bound
+    from modescope.core.engine import pipeline
+    folder, X, A, u, s = digits
+    real_learn, real_refine = pipeline.learn, pipeline.refine
+    rng = np.random.default_rng(5)
+    starts = []
+
+    def learn_then_drift(engine, *args, **kwargs):
+        learned = real_learn(engine, *args, **kwargs)
+        q = engine.basis.shape[1]
+        drift = np.eye(q) + 1.5e-6 * rng.normal(size=(q, q))
+        engine.basis = np.asfortranarray(
+            (engine.basis.astype(np.float64) @ drift).astype(np.float32))
+        off = np.abs(engine.basis.astype(np.float64).T @ engine.basis - np.eye(q)).max()
+        assert off > 2e-6
+        return learned
+
+    def refine_and_keep_start(basis, *args, **kwargs):
+        starts.append(np.array(basis, dtype=np.float64))
+        return real_refine(basis, *args, **kwargs)
+
+    monkeypatch.setattr(pipeline, "learn", learn_then_drift)
+    monkeypatch.setattr(pipeline, "refine", refine_and_keep_start)
+    d = analyze([folder], AnalysisOptions(rank=20)).decomposition
+    (start,) = starts
+    assert np.abs(start.T @ start - np.eye(start.shape[1])).max() <= 1e-6
+    err = np.abs(d.singular_values - s[:20])                  # LAPACK reference
+    assert np.all(err <= d.singular_value_error)
+    assert np.all(err <= 1e-4 * s[:20])
