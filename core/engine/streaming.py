@@ -38,7 +38,6 @@ import numpy as np
 
 from modescope.core.validation import check_int
 from modescope.core.decomposition import Decomposition, fix_signs
-from modescope.core.engine.refine import add_product
 
 __all__ = ["StreamingSVD"]
 
@@ -223,7 +222,7 @@ class StreamingSVD:
             return np.zeros((0, z.shape[0]))
         ut = u.T                                                           # r x pixels, C
         proj = (z @ u).T.astype(np.float64)
-        add_product(z, proj.T, ut, -1.0)
+        z -= proj.T.astype(np.float32) @ ut
         # one projection leaves a component along the basis of about eps * ||z_i|| in column
         # i; relative to what remains that is eps * ||z_i|| / ||rem_i||. Where every column
         # keeps at least _REPROJECT_BELOW of its norm outside the basis, that is below
@@ -236,7 +235,7 @@ class StreamingSVD:
             return proj
         proj2 = z @ u
         if np.max(np.abs(proj2)) > 1e-6 * max(float(np.max(np.abs(proj))), 1e-30):
-            add_product(z, proj2, ut, -1.0)
+            z -= proj2 @ ut
             proj += proj2.T
         return proj
 
@@ -282,7 +281,7 @@ class StreamingSVD:
         else:
             new_rows[...] = 0.0
         if root.size:
-            add_product(new_rows, ((vec / root) @ p_keep[r:]).T, rem, 1.0)
+            new_rows += ((vec / root) @ p_keep[r:]).T.astype(np.float32) @ rem
         return new_rows
 
     def _coordinate_maps(self, p_keep, core, m: int):

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 import modescope.core.engine.streaming as streaming
-from modescope.core.engine.refine import add_product, row_energy
+from modescope.core.engine.refine import row_energy
 from modescope.core.engine.streaming import StreamingSVD
 
 
@@ -24,23 +24,6 @@ def test_row_energy_matches_float64_sums(pixels, order):
     assert got.dtype == np.float64 and got.shape == (6,)
     # float32 runs of 1024 pixels: about sqrt(1024) * 2**-24 relative at worst
     np.testing.assert_allclose(got, reference, rtol=2e-6, atol=0)
-
-
-@pytest.mark.parametrize("a, b, pixels", [(129, 70, 5000), (3, 1, 7), (1, 4, 1), (5, 0, 9)])
-@pytest.mark.parametrize("alpha", [1.0, -1.0])
-def test_add_product_updates_in_place_like_numpy(a, b, pixels, alpha):
-    rng = np.random.default_rng(a * 7 + b)
-    out = rng.standard_normal((a, pixels)).astype(np.float32)
-    coef = rng.standard_normal((a, b))                            # float64, as the callers give
-    rows = rng.standard_normal((b, pixels)).astype(np.float32)
-    # reference: numpy in float64 of the float32-rounded operands
-    want = out.astype(np.float64) + alpha * (coef.astype(np.float32).astype(np.float64)
-                                             @ rows.astype(np.float64))
-    before = out.ctypes.data
-    add_product(out, coef, rows, alpha)
-    assert out.ctypes.data == before and out.dtype == np.float32      # the same array
-    scale = 1 + np.abs(coef).sum(axis=1, keepdims=True) * np.abs(rows).max(initial=0)
-    assert np.all(np.abs(out - want) <= 4 * 2.0 ** -24 * np.sqrt(max(b, 1)) * scale)
 
 
 def test_row_energy_of_zero_rows_is_zero():
