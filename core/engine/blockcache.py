@@ -204,3 +204,12 @@ def as_columns(rows: np.ndarray) -> np.ndarray:
     if rows.dtype == np.uint8:
         return np.divide(rows, _SCALE8, dtype=np.float32).T
     return rows.T
+
+
+def rows_into(rows: np.ndarray, out: np.ndarray) -> None:
+    """Write stored rows (see :meth:`BlockCache.stored`) into ``out`` (m x pixels, float32)
+    with the values :func:`as_columns` gives."""
+    if rows.dtype == np.uint8:
+        np.divide(rows, _SCALE8, out=out, dtype=np.float32)
+    else:
+        out[...] = rows

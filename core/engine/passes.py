@@ -12,10 +12,10 @@ from typing import Callable, Iterator
 
 import numpy as np
 
-from modescope.core.engine.blockcache import BlockCache, as_columns
+from modescope.core.engine.blockcache import BlockCache, rows_into
 from modescope.core.engine.options import AnalysisOptions, Clock, block_size_for
-from modescope.core.engine.refine import (PassAccumulator, RitzStep, rayleigh_ritz_step,
-                                          rounding_error)
+from modescope.core.engine.refine import (PassAccumulator, RitzStep, Workspace,
+                                          rayleigh_ritz_step, rounding_error)
 from modescope.core.errors import SourceError
 from modescope.core.sources.decode import analysis_shape, iter_blocks
 from modescope.core.sources.scan import Problem, SourceSet
@@ -72,9 +72,9 @@ class _Changed(Exception):
 
 def _blocks(used: SourceSet, options: AnalysisOptions, workers: int, cancel,
             cache: BlockCache | None, cache_start: int) -> Iterator[tuple]:
-    """Yield every image of ``used`` in order, as ``(m, columns)`` of float32 column blocks:
-    ``columns()`` returns the block (a cached block is made float32 there, so that the lanes of
-    :func:`_one_pass` do that work in parallel).
+    """Yield every image of ``used`` in order, as ``(m, put)`` per block: ``put(out)`` writes
+    the block's m images as float32 rows into ``out`` (a cached block is made float32 there,
+    so that the lanes of :func:`_one_pass` do that work in parallel, into arrays they reuse).
 
     Images ``cache_start`` to ``cache_start + cache.images`` come back from ``cache``; the
     others are decoded from their files (a file that fails now, after a good learning pass,
@@ -96,21 +96,17 @@ def _blocks(used: SourceSet, options: AnalysisOptions, workers: int, cancel,
                 attempted = range(block.start, min(block.start + block_size, stop - start))
                 failed = sorted(set(attempted) - set(block.indices.tolist()))
                 raise _Changed([start + i for i in failed], block.problems)
-            yield block.data.shape[1], functools.partial(_given, block.data)
+            yield block.data.shape[1], functools.partial(_columns_into, block.data)
 
     yield from from_files(0, cache_start)
     if cached:
         for _entry, rows in cache.stored():
-            yield rows.shape[0], functools.partial(as_columns, rows)
+            yield rows.shape[0], functools.partial(rows_into, rows)
     yield from from_files(cache_start + cached, used.n_images)
 
 
-def _given(data: np.ndarray) -> np.ndarray:
-    return data
-
-
-def _fill(acc: PassAccumulator, columns: Callable, where: slice, yt) -> None:
-    acc.fill(columns(), where, yt)
+def _columns_into(data: np.ndarray, out: np.ndarray) -> None:
+    out[...] = data.T
 
 
 def pass_lanes(options: AnalysisOptions) -> int:
@@ -132,9 +128,10 @@ def _one_pass(basis, mean, used, options, workers, cancel, cache, cache_start, c
     acc = PassAccumulator(basis, mean, used.n_images, want_y=want_y)
     lanes = pass_lanes(options)
     blocks = _blocks(used, options, workers, cancel, cache, cache_start)
+    works = [Workspace() for _ in range(lanes)]
     if lanes == 1:
-        for m, columns in blocks:
-            _fill(acc, columns, acc.reserve(m), acc.yt)
+        for m, put in blocks:
+            acc.fill(put, acc.reserve(m), acc.yt, works[0])
             clock.report(acc.done)
             if cancel():
                 return None
@@ -143,12 +140,12 @@ def _one_pass(basis, mean, used, options, workers, cancel, cache, cache_start, c
     running: list = [None] * lanes
     with ThreadPoolExecutor(lanes, thread_name_prefix="modescope-pass") as pool:
         # leaving the block (return, or an error such as _Changed) waits for running blocks
-        for i, (m, columns) in enumerate(blocks):
+        for i, (m, put) in enumerate(blocks):
             lane = i % lanes
             if running[lane] is not None:
                 running[lane].result()
-            running[lane] = pool.submit(_fill, acc, columns, acc.reserve(m),
-                                        None if sums is None else sums[lane])
+            running[lane] = pool.submit(acc.fill, put, acc.reserve(m),
+                                        None if sums is None else sums[lane], works[lane])
             clock.report(acc.done)
             if cancel():
                 return None
