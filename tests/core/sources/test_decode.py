@@ -415,3 +415,52 @@ def test_damaged_file_is_still_a_source_error(tmp_path):
     path.write_bytes(data[: len(data) // 2])  # truncated after the scan
     with pytest.raises(SourceError, match="a.png"):
         load_image(sset.images[0], sset)
+
+
+def test_pace_one_thread_only_while_the_caller_is_the_slower_part():
+    from modescope.core.sources.decode import _ONE_THREAD_UP_TO, _Pace
+    pace = _Pace(2)
+    assert pace.threads == 2                          # nothing known yet: every thread
+    pace.decoded(0.010)
+    assert pace.threads == 2
+    pace.caller(0.030)                                # decoding a third of the caller's time
+    assert pace.threads == 1
+    for _ in range(10):                               # decoding becomes the slower part
+        pace.decoded(0.050)
+        pace.caller(0.030)
+    assert pace.threads == 2
+    pace = _Pace(2)
+    pace.decoded(0.030 * _ONE_THREAD_UP_TO)           # at the limit: one thread
+    pace.caller(0.030)
+    assert pace.threads == 1
+
+
+def test_blocks_alike_whatever_the_pace(tmp_path, monkeypatch):
+    # a slow caller switches the decoding to one thread part way: the blocks do not change
+    # (reference: the blocks of a quick caller, decoded with every thread throughout)
+    import time
+    from modescope.core.sources import decode
+    rng = np.random.default_rng(4)
+    for i in range(40):
+        Image.fromarray(rng.integers(0, 256, (6, 5), dtype=np.uint8)).save(
+            tmp_path / f"p_{i:02d}.png")
+    sset = scan_sources([tmp_path])
+    quick = [(b.start, b.indices.copy(), b.data.copy()) for b in
+             iter_blocks(sset, block_size=4, workers=2)]
+    chosen = []
+
+    class Recorded(decode._Pace):
+        def caller(self, seconds):
+            super().caller(seconds)
+            chosen.append(self.threads)
+
+    monkeypatch.setattr(decode, "_Pace", Recorded)
+    slow = []
+    for b in iter_blocks(sset, block_size=4, workers=2):
+        slow.append((b.start, b.indices.copy(), b.data.copy()))
+        time.sleep(0.02)                              # the caller's work
+    assert chosen and chosen[-1] == 1                 # decoding 4 tiny files is far quicker
+    for (s1, i1, d1), (s2, i2, d2) in zip(quick, slow, strict=True):
+        assert s1 == s2
+        np.testing.assert_array_equal(i1, i2)
+        np.testing.assert_array_equal(d1, d2)
