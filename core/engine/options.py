@@ -66,10 +66,9 @@ class AnalysisOptions:
     max_passes : int
         Most passes over the data after the learning pass (the first is the scoring pass).
     workers : int
-        Decoding threads; 0 (default) chooses 2. Decoding alone of small gray PNGs is faster in
-        one thread (Pillow's per-file Python work holds the GIL), but with the next block
-        decoding while the SVD update runs, two threads measured faster end to end here
-        (5,000 gray 128x128 PNG: 3.1 s vs 3.5 s).
+        Decoding threads; 0 (default) chooses 2. The next blocks decode while the SVD update
+        runs; a block is shared out between the threads only while decoding is the slower part
+        (one thread while the update is: see ``sources.decode._Pace``).
     blas_threads : int
         Threads for the matrix products (pinned with threadpoolctl so that decoding and BLAS do not
         fight over the cores).
