@@ -185,7 +185,7 @@ def _analyze_scanned(source_set: SourceSet, options, progress, cancel, on_partia
         used = dataclasses.replace(source_set, problems=(),
                                    images=tuple(source_set.images[i] for i in learned.kept))
         with _pass_threads(options):
-            refined = refine(engine.padded_basis(), engine.mean, used, options,
+            refined = refine(engine.orthonormal_basis(), engine.mean, used, options,
                              workers=run.workers, cache=cache, progress=progress,
                              cancel=cancel, after_first_pass=engine.release_weights)
     if refined.stopped:

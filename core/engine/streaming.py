@@ -393,6 +393,16 @@ class StreamingSVD:
                                      np.eye(d.rank), np.zeros(d.rank))]
         return engine
 
+    def orthonormal_basis(self) -> np.ndarray:
+        """Return the basis orthonormalised for the passes after learning (the basis itself
+        when it is within ``_ORTHO_PASSES`` of orthonormal; see ``_ORTHO_SLACK``).
+
+        Returns
+        -------
+        ndarray, shape (pixels, q), float32, Fortran order
+        """
+        return np.asfortranarray(_orthonormalised(self.basis, _ORTHO_PASSES))
+
     def padded_basis(self, seed: int = 0) -> np.ndarray:
         """Return the basis completed to ``internal`` orthonormal columns for refinement passes.
 
@@ -403,7 +413,7 @@ class StreamingSVD:
         -------
         ndarray, shape (pixels, min(internal, pixels)), float32, Fortran order
         """
-        basis = _orthonormalised(self.basis, _ORTHO_PASSES)
+        basis = self.orthonormal_basis()
         u = np.asarray(basis, dtype=np.float64)
         want = min(self.internal, self.n_pixels)
         if u.shape[1] >= want:
