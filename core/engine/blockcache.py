@@ -16,7 +16,11 @@ each decoded block to one anonymous temporary file and the scoring pass reads it
   smaller of 2 GiB and a quarter of the free space of the temporary folder, or of 512 MB and an
   eighth of it when that folder is in memory (tmpfs); our own choice, no published source;
 * the file is created with :func:`tempfile.TemporaryFile`, which has no name on POSIX systems
-  and is removed by the operating system when it is closed, even after a crash.
+  and is removed by the operating system when it is closed, even after a crash;
+* the writes run in a thread of their own, at most ``_WRITES_IN_FLIGHT`` blocks behind, so that
+  the learning pass does not wait for them (they took 0.05 s of its 1.3 s on the benchmark
+  collection); reading waits for them, and a write that fails keeps only the blocks before it
+  (the later images are decoded from their files, as when the budget is reached).
 
 Source images are never touched: the cache only holds copies of decoded pixels.
 """
@@ -26,6 +30,7 @@ from __future__ import annotations
 import os
 import shutil
 import tempfile
+from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Iterator
 
@@ -37,6 +42,7 @@ __all__ = ["BlockCache", "default_budget"]
 
 _GIB = 1 << 30
 _SCALE8 = np.float32(255.0)
+_WRITES_IN_FLIGHT = 4
 
 
 def _in_memory_filesystem(folder: str, mounts_file: str = "/proc/mounts") -> bool:
@@ -109,7 +115,9 @@ class BlockCache:
         self._entries: list[_Entry] = []
         self._size = 0
         self.full = self.budget <= 0       # True once a block did not fit: caching stopped
-        self.images = 0                    # images stored
+        self._images = 0
+        self._writer: ThreadPoolExecutor | None = None
+        self._writes: list[Future] = []    # one per entry, in order
 
     # ------------------------------------------------------------------------------------
     def __enter__(self) -> "BlockCache":
@@ -120,6 +128,10 @@ class BlockCache:
 
     def close(self) -> None:
         """Close and so remove the file (safe to call twice)."""
+        if self._writer is not None:
+            self._writer.shutdown(wait=True)
+            self._writer = None
+        self._writes = []
         if self._file is not None:
             try:
                 self._file.close()
@@ -132,7 +144,36 @@ class BlockCache:
     @property
     def size(self) -> int:
         """Bytes written so far."""
+        self._settle()
         return self._size
+
+    @property
+    def images(self) -> int:
+        """Images stored so far."""
+        self._settle()
+        return self._images
+
+    def _settle(self) -> None:
+        """Wait for the writes in flight; after a failed one keep only the blocks before it."""
+        writes, self._writes = self._writes, []
+        first = len(self._entries) - len(writes)          # the entry of writes[0]
+        failed = None
+        for i, write in enumerate(writes):
+            try:
+                write.result()
+            except OSError:
+                # a full disk only costs speed: the passes decode the images of this block
+                # and of the later ones from their files
+                failed = first + i if failed is None else failed
+        if failed is not None:
+            kept = self._entries[:failed]
+            self._size = self._entries[failed].offset
+            self._images = sum(entry.indices.size for entry in kept)
+            self._entries = kept
+            self.full = True
+
+    def _write(self, payload: np.ndarray) -> None:
+        self._file.write(memoryview(payload).cast("B"))
 
     # ------------------------------------------------------------------------------------
     def put(self, block: Block) -> bool:
@@ -159,17 +200,22 @@ class BlockCache:
             if self._file is None:
                 self._file = tempfile.TemporaryFile(prefix="modescope-cache-",
                                                     dir=self._folder)
-            self._file.write(memoryview(payload).cast("B"))
         except OSError:
-            # a full disk or an unwritable temporary folder only costs speed: the scoring
-            # pass decodes from the files instead
+            # an unwritable temporary folder only costs speed: the passes decode from the
+            # files instead
             self.full = True
             return False
+        if self._writer is None:
+            self._writer = ThreadPoolExecutor(1, thread_name_prefix="modescope-cache")
+        if len(self._writes) >= _WRITES_IN_FLIGHT:
+            self._writes[-_WRITES_IN_FLIGHT].exception()      # wait: bounded memory
         self._entries.append(_Entry(self._size, int(block.start),
                                     np.asarray(block.indices, dtype=np.int64).copy(),
                                     bool(block.exact8)))
+        # payload is the decoder's own array of this block (or a new one): nobody changes it
+        self._writes.append(self._writer.submit(self._write, payload))
         self._size += payload.nbytes
-        self.images += m
+        self._images += m
         return True
 
     def blocks(self) -> Iterator[Block]:
@@ -182,6 +228,7 @@ class BlockCache:
         """Yield ``(entry, rows)`` of the stored blocks in order, ``rows`` as stored (m x
         pixels, uint8 or float32): :func:`as_columns` makes them the float32 columns that were
         put, where the caller wants that work done (in another thread, say)."""
+        self._settle()
         if self._file is None:
             return
         self._file.flush()

@@ -83,6 +83,56 @@ def test_zero_budget_and_unwritable_folder_disable_the_cache(tmp_path):
         assert not cache.put(block) and cache.full
 
 
+def test_a_failed_write_keeps_the_blocks_before_it(tmp_path, monkeypatch):
+    # the writes run in a thread of their own: a full disk on the third block is found when
+    # the cache is read, and only the first two blocks are kept (bit for bit)
+    folder = write(tmp_path / "g", "gray")
+    sset = scan_sources([folder])
+    blocks = list(iter_blocks(sset, block_size=5))
+    real = BlockCache._write
+    calls = []
+
+    def third_fails(self, payload):
+        calls.append(1)
+        if len(calls) == 3:
+            raise OSError(28, "No space left on device")
+        real(self, payload)
+
+    monkeypatch.setattr(BlockCache, "_write", third_fails)
+    with BlockCache(blocks[0].data.shape[0], budget=1 << 20) as cache:
+        assert all(cache.put(b) for b in blocks)          # not known yet when putting
+        assert cache.images == 10 and cache.full           # known once settled
+        back = list(cache.blocks())
+        assert [b.start for b in back] == [0, 5]
+        for a, b in zip(blocks, back):
+            assert np.array_equal(a.data, b.data)
+        assert not cache.put(blocks[0])                    # caching stopped
+
+
+def test_analysis_survives_a_failed_cache_write(tmp_path, monkeypatch):
+    # the passes read the blocks before the failure from the cache and the rest from the
+    # files: the same model as without any cache (reference: budget 0)
+    folder = write(tmp_path / "g", "gray", count=30)
+    opts = AnalysisOptions(rank=3, block_size=4)
+    monkeypatch.setattr(blockcache, "default_budget", lambda folder=None: 0)
+    plain = analyze([folder], opts).decomposition
+    monkeypatch.setattr(blockcache, "default_budget", lambda folder=None: 1 << 30)
+    real = BlockCache._write
+    calls = []
+
+    def fifth_fails(self, payload):
+        calls.append(1)
+        if len(calls) == 5:
+            raise OSError(28, "No space left on device")
+        real(self, payload)
+
+    monkeypatch.setattr(BlockCache, "_write", fifth_fails)
+    d = analyze([folder], opts).decomposition
+    assert len(calls) >= 5
+    np.testing.assert_array_equal(d.singular_values, plain.singular_values)
+    np.testing.assert_array_equal(d.weights, plain.weights)
+
+
 def test_default_budget_is_bounded(tmp_path):
     budget = blockcache.default_budget(str(tmp_path))
     assert 0 <= budget <= 2 * (1 << 30)
