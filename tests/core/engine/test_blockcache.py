@@ -83,22 +83,28 @@ def test_zero_budget_and_unwritable_folder_disable_the_cache(tmp_path):
         assert not cache.put(block) and cache.full
 
 
+def _fail_write(monkeypatch, nth: int) -> list:
+    """Make the cache's ``nth`` block write fail as on a full disk; return the calls made."""
+    real = BlockCache._write
+    calls = []
+
+    def failing(self, payload):
+        calls.append(1)
+        if len(calls) == nth:
+            raise OSError(28, "No space left on device")
+        real(self, payload)
+
+    monkeypatch.setattr(BlockCache, "_write", failing)
+    return calls
+
+
 def test_a_failed_write_keeps_the_blocks_before_it(tmp_path, monkeypatch):
     # the writes run in a thread of their own: a full disk on the third block is found when
     # the cache is read, and only the first two blocks are kept (bit for bit)
     folder = write(tmp_path / "g", "gray")
     sset = scan_sources([folder])
     blocks = list(iter_blocks(sset, block_size=5))
-    real = BlockCache._write
-    calls = []
-
-    def third_fails(self, payload):
-        calls.append(1)
-        if len(calls) == 3:
-            raise OSError(28, "No space left on device")
-        real(self, payload)
-
-    monkeypatch.setattr(BlockCache, "_write", third_fails)
+    _fail_write(monkeypatch, 3)
     with BlockCache(blocks[0].data.shape[0], budget=1 << 20) as cache:
         assert all(cache.put(b) for b in blocks)          # not known yet when putting
         assert cache.images == 10 and cache.full           # known once settled
@@ -117,16 +123,7 @@ def test_analysis_survives_a_failed_cache_write(tmp_path, monkeypatch):
     monkeypatch.setattr(blockcache, "default_budget", lambda folder=None: 0)
     plain = analyze([folder], opts).decomposition
     monkeypatch.setattr(blockcache, "default_budget", lambda folder=None: 1 << 30)
-    real = BlockCache._write
-    calls = []
-
-    def fifth_fails(self, payload):
-        calls.append(1)
-        if len(calls) == 5:
-            raise OSError(28, "No space left on device")
-        real(self, payload)
-
-    monkeypatch.setattr(BlockCache, "_write", fifth_fails)
+    calls = _fail_write(monkeypatch, 5)
     d = analyze([folder], opts).decomposition
     assert len(calls) >= 5
     np.testing.assert_array_equal(d.singular_values, plain.singular_values)
