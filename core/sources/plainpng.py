@@ -21,6 +21,7 @@ error -- gives None, and the caller asks Pillow as before (with its usual messag
 
 from __future__ import annotations
 
+import os
 import struct
 import zlib
 
@@ -36,6 +37,9 @@ _PIXEL_MODES = ("L", "RGB", "LA", "RGBA")
 _PLAIN = frozenset((b"PLTE", b"tRNS", b"gAMA", b"cHRM", b"sRGB", b"pHYs", b"bKGD", b"sBIT",
                     b"tIME"))
 _HEAD_BYTES = 4096
+# largest file whose pixels are read here: the whole file is held in memory while it decodes
+# (Pillow's own reader streams it in blocks), so large photos go the usual way
+_PIXEL_FILE_BYTES = 16 * 2 ** 20
 
 
 def plain_png(path: str, pixels: bool = False):
@@ -43,10 +47,13 @@ def plain_png(path: str, pixels: bool = False):
 
     With ``pixels``, return ``(rows, cols, mode, values)`` instead, ``values`` the decoded
     uint8 array (rows x cols, or rows x cols x channels), for files of the modes in
-    ``_PIXEL_MODES`` without interlacing; None for every other file.
+    ``_PIXEL_MODES`` without interlacing and of at most ``_PIXEL_FILE_BYTES``; None for every
+    other file.
     """
     try:
         with open(path, "rb") as fh:
+            if pixels and os.fstat(fh.fileno()).st_size > _PIXEL_FILE_BYTES:
+                return None
             head = fh.read() if pixels else fh.read(_HEAD_BYTES)
             found = _walk(fh, head, pixels)
     except (OSError, struct.error):
@@ -57,7 +64,8 @@ def plain_png(path: str, pixels: bool = False):
     if mode not in _PIXEL_MODES or interlace:
         return None
     try:
-        image = Image.frombytes(mode, (cols, rows), b"".join(parts), "zip", mode)
+        data = parts[0] if len(parts) == 1 else b"".join(parts)
+        image = Image.frombytes(mode, (cols, rows), data, "zip", mode)
         values = np.asarray(image)
     except Exception:  # noqa: BLE001 - damaged data: Pillow's own path gives the message
         return None

@@ -187,3 +187,14 @@ def test_collection_reads_alike_with_and_without_the_plain_reader(tmp_path, monk
         assert fast.images == slow.images
         for a, b in zip(fast_blocks, slow_blocks, strict=True):
             np.testing.assert_array_equal(a, b)
+
+
+def test_large_files_left_to_pillow_for_their_pixels(tmp_path, monkeypatch):
+    # the whole file is held while it decodes: above the size limit Pillow's streaming reader
+    # takes over (the header is still read from the chunks)
+    from modescope.core.sources import plainpng
+    path = _write(tmp_path / "a.png", _pillow_png("L", rows=40, cols=50))
+    assert plain_png(path, pixels=True) is not None
+    monkeypatch.setattr(plainpng, "_PIXEL_FILE_BYTES", Path(path).stat().st_size - 1)
+    assert plain_png(path, pixels=True) is None
+    assert plain_png(path) == (40, 50, "L")
