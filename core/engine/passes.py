@@ -14,7 +14,7 @@ import numpy as np
 
 from modescope.core.engine.blockcache import BlockCache, rows_into
 from modescope.core.engine.options import AnalysisOptions, Clock, block_size_for
-from modescope.core.engine.refine import (PassAccumulator, RitzStep, Workspace,
+from modescope.core.engine.refine import (PassAccumulator, RitzStep, Workspace, columns_into,
                                           rayleigh_ritz_step, rounding_error)
 from modescope.core.errors import SourceError
 from modescope.core.sources.decode import analysis_shape, iter_blocks
@@ -96,17 +96,13 @@ def _blocks(used: SourceSet, options: AnalysisOptions, workers: int, cancel,
                 attempted = range(block.start, min(block.start + block_size, stop - start))
                 failed = sorted(set(attempted) - set(block.indices.tolist()))
                 raise _Changed([start + i for i in failed], block.problems)
-            yield block.data.shape[1], functools.partial(_columns_into, block.data)
+            yield block.data.shape[1], functools.partial(columns_into, block.data)
 
     yield from from_files(0, cache_start)
     if cached:
         for _entry, rows in cache.stored():
             yield rows.shape[0], functools.partial(rows_into, rows)
     yield from from_files(cache_start + cached, used.n_images)
-
-
-def _columns_into(data: np.ndarray, out: np.ndarray) -> None:
-    out[...] = data.T
 
 
 def pass_lanes(options: AnalysisOptions) -> int:
@@ -127,25 +123,21 @@ def _one_pass(basis, mean, used, options, workers, cancel, cache, cache_start, c
     """
     acc = PassAccumulator(basis, mean, used.n_images, want_y=want_y)
     lanes = pass_lanes(options)
-    blocks = _blocks(used, options, workers, cancel, cache, cache_start)
     works = [Workspace() for _ in range(lanes)]
-    if lanes == 1:
-        for m, put in blocks:
-            acc.fill(put, acc.reserve(m), acc.yt, works[0])
-            clock.report(acc.done)
-            if cancel():
-                return None
-        return acc if acc.done == used.n_images else None
     sums = [acc.yt] + [np.zeros_like(acc.yt) for _ in range(lanes - 1)] if want_y else None
     running: list = [None] * lanes
     with ThreadPoolExecutor(lanes, thread_name_prefix="modescope-pass") as pool:
         # leaving the block (return, or an error such as _Changed) waits for running blocks
-        for i, (m, put) in enumerate(blocks):
+        for i, (m, put) in enumerate(_blocks(used, options, workers, cancel, cache,
+                                             cache_start)):
             lane = i % lanes
-            if running[lane] is not None:
-                running[lane].result()
-            running[lane] = pool.submit(acc.fill, put, acc.reserve(m),
-                                        None if sums is None else sums[lane], works[lane])
+            job = (put, acc.reserve(m), None if sums is None else sums[lane], works[lane])
+            if lanes == 1:
+                acc.fill(*job)                    # one lane: in this thread
+            else:
+                if running[lane] is not None:
+                    running[lane].result()
+                running[lane] = pool.submit(acc.fill, *job)
             clock.report(acc.done)
             if cancel():
                 return None

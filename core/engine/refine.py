@@ -20,13 +20,15 @@ Computations", 4th ed., Sec. 8.2.4) and another pass follows, up to a pass limit
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
+from typing import Callable
 
 import numpy as np
 
 from modescope.core.decomposition import fix_signs
 
-__all__ = ["PassAccumulator", "RitzStep", "Workspace", "angle_bounds", "certify",
+__all__ = ["PassAccumulator", "RitzStep", "Workspace", "angle_bounds", "certify", "columns_into",
            "rayleigh_ritz_step", "project_block", "rounding_error", "row_energy"]
 
 # unit roundoff of float32 (2**-24): the pixel-sized products run in float32
@@ -77,18 +79,21 @@ def _project_centred(basis: np.ndarray, centred: np.ndarray, want_y: bool,
     in ``work``'s arrays when given."""
     m, pixels = centred.shape
     q = basis.shape[1]
+
+    def into(name: str, shape: tuple):
+        return None if work is None else work.array(name, shape)
+
     wt = centred @ basis                                                   # m x q
     energy = row_energy(centred)
-    yt = None
-    if want_y:                                                             # q x pixels
-        yt = wt.T @ centred if work is None else np.matmul(
-            wt.T, centred, out=work.array("yt", (q, pixels)))
-    if work is None:
-        centred -= wt @ basis.T                                            # now the remainder
-    else:
-        centred -= np.matmul(wt, basis.T, out=work.array("product", (m, pixels)))
+    yt = np.matmul(wt.T, centred, out=into("yt", (q, pixels))) if want_y else None
+    centred -= np.matmul(wt, basis.T, out=into("product", (m, pixels)))   # now the remainder
     residual = row_energy(centred)
     return wt.T, residual, energy, yt
+
+
+def columns_into(data: np.ndarray, out: np.ndarray) -> None:
+    """Write a column block (pixels x m) into ``out`` as rows (m x pixels, float32)."""
+    out[...] = data.T
 
 
 class Workspace:
@@ -173,7 +178,8 @@ class PassAccumulator:
 
     def add(self, block: np.ndarray) -> None:
         """Project the next block of columns (in order), shape (pixels, m)."""
-        self.fill(block, self.reserve(block.shape[1]), self.yt)
+        self.fill(functools.partial(columns_into, block), self.reserve(block.shape[1]),
+                  self.yt, Workspace())
 
     def reserve(self, m: int) -> slice:
         """Return the columns of the next ``m`` images (in order) for :meth:`fill`."""
@@ -183,24 +189,20 @@ class PassAccumulator:
         self.done += m
         return slice(self.done - m, self.done)
 
-    def fill(self, block, columns: slice, yt: np.ndarray | None,
-             work: Workspace | None = None) -> None:
-        """Project ``block`` into the ``columns`` reserved for it and add its share of ``M U``
+    def fill(self, put: Callable[[np.ndarray], None], columns: slice, yt: np.ndarray | None,
+             work: Workspace) -> None:
+        """Project a block into the ``columns`` reserved for it and add its share of ``M U``
         to ``yt`` (``self.yt`` or another array of its shape; None without ``want_y``).
 
-        ``block`` is a float32 column block (pixels x m), or with ``work`` a callable that
-        writes the block's images as rows into the float32 array (m x pixels) it is given.
-        Blocks given to different ``yt`` arrays (and workspaces) may be filled at the same
-        time from several threads (the products release the interpreter lock); the caller adds
-        those arrays into ``self.yt`` when every block is in.
+        ``put`` writes the block's images as rows into the float32 array (m x pixels) it is
+        given (one of ``work``'s). Blocks given to different ``yt`` arrays and workspaces may
+        be filled at the same time from several threads (the products release the interpreter
+        lock); the caller adds those arrays into ``self.yt`` when every block is in.
         """
-        if work is None:
-            w, res, en, part = _project_rows(self.basis, self.mean, block, yt is not None)
-        else:
-            rows = work.array("centred", (columns.stop - columns.start, self.basis.shape[0]))
-            block(rows)
-            rows -= self.mean
-            w, res, en, part = _project_centred(self.basis, rows, yt is not None, work)
+        rows = work.array("centred", (columns.stop - columns.start, self.basis.shape[0]))
+        put(rows)
+        rows -= self.mean
+        w, res, en, part = _project_centred(self.basis, rows, yt is not None, work)
         self.weights[:, columns] = w
         self.residual[columns] = res
         self.energy[columns] = en

@@ -406,7 +406,7 @@ def load_preview(path, page: int = 0, *, max_side: int = 64,
 
 def _decode_chunk(jobs, source_set: SourceSet, f: int, buffer: np.ndarray,
                   shape: tuple[int, int, int], raw: np.ndarray | None = None,
-                  draft: bool = True) -> tuple[list[tuple[int, str]], bool]:
+                  draft: bool = True) -> tuple[list[tuple[int, str]], bool, float]:
     """Decode each (row, ref) of ``jobs`` into ``buffer[row]`` (and ``raw[row]``).
 
     Returns the failures, whether every decoded image was exact 8-bit data, and the CPU
@@ -534,7 +534,6 @@ def _generate_blocks(source_set: SourceSet, block_size: int, f: int, workers: in
     n = len(images)
     pixels = math.prod(shape)
     executor = ThreadPoolExecutor(max_workers=workers, thread_name_prefix="modescope-decode")
-
     pace = _Pace(workers)
 
     def submit(start: int):
